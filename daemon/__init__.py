@@ -1,0 +1,1 @@
+"""spinflip.daemon: acquisition, DSP, calibration, frames, archive and publishing."""

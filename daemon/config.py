@@ -1,0 +1,182 @@
+"""Configuration: one TOML file, every key with a default, strict validation.
+
+A wrong section, key, type or range raises :class:`ConfigError` whose message is one line
+naming the key, the value and what is allowed; the command line turns it into exit code 2.
+"""
+
+from __future__ import annotations
+
+import copy
+import math
+import tomllib
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from .lines import HI_REST_FREQ_HZ
+
+
+class ConfigError(ValueError):
+    """A configuration value that cannot be used (exit code 2)."""
+
+
+@dataclass(frozen=True)
+class Key:
+    """One configuration key: default, type and allowed range or choices."""
+
+    default: Any
+    kind: type
+    lo: float | None = None
+    hi: float | None = None
+    choices: tuple | None = None
+    doc: str = ""
+
+    def allowed(self) -> str:
+        if self.choices:
+            return "one of " + ", ".join(repr(c) for c in self.choices)
+        name = {float: "a number", int: "an integer", bool: "true or false", str: "a string"}[self.kind]
+        if self.lo is not None and self.hi is not None:
+            return f"{name} from {self.lo:g} to {self.hi:g}"
+        if self.lo is not None:
+            return f"{name} >= {self.lo:g}"
+        return name
+
+
+#: The schema: section -> key -> Key. The site, telescope and sky are fictional defaults.
+SCHEMA: dict[str, dict[str, Key]] = {
+    "site": {
+        "name": Key("Heron Ridge Field Station", str, doc="site name (fictional default)"),
+        "telescope": Key("HRFS 3 m dish", str, doc="TELESCOP keyword"),
+        "lat": Key(46.82, float, -90, 90, doc="geodetic latitude, deg"),
+        "lon": Key(8.37, float, -180, 360, doc="east longitude, deg"),
+        "height_m": Key(640.0, float, -500, 9000, doc="height above the ellipsoid, m"),
+        "dish_diameter_m": Key(3.0, float, 0.1, 100, doc="aperture diameter for the beam, m"),
+    },
+    "source": {
+        "kind": Key("sim", str, choices=("sim", "rtlsdr", "replay")),
+        "device": Key("0", str, doc="rtlsdr: device index or serial number"),
+        "sample_rate": Key(2.4e6, float, 0.9e6, 3.2e6, doc="complex samples per second"),
+        "center_freq": Key(HI_REST_FREQ_HZ, float, 24e6, 1.766e9, doc="signal-phase LO, Hz"),
+        "gain": Key(40.2, float, 0, 50, doc="tuner gain, dB (manual, AGC off)"),
+        "ppm": Key(0, int, -200, 200, doc="crystal correction, parts per million"),
+        "bias_tee": Key(False, bool, doc="power the LNA through the coax"),
+        "path": Key("", str, doc="replay: .cu8 file"),
+        "block_samples": Key(262144, int, 16384, 4194304, doc="complex samples per block"),
+    },
+    "sim": {
+        "start": Key("now", str, doc="UTC ISO time of the first sample, or 'now'"),
+        "seed": Key(1, int, 0, 2**32 - 1),
+        "receiver_k": Key(55.0, float, 1, 2000, doc="receiver noise temperature, K"),
+        "spillover_k": Key(12.0, float, 0, 300, doc="ground pick-up through sidelobes, K"),
+        "gain_drift": Key(0.02, float, 0, 0.5, doc="peak fractional gain drift"),
+        "gain_drift_period_s": Key(900.0, float, 1, 1e6, doc="period of the gain drift, s"),
+        "rfi": Key(False, bool, doc="inject interference (carriers and bursts)"),
+    },
+    "spectrometer": {
+        "channels": Key(1024, int, 64, 65536, doc="power of two"),
+        "method": Key("pfb", str, choices=("pfb", "fft")),
+        "taps": Key(4, int, 2, 16, doc="PFB taps per channel"),
+        "integration_s": Key(10.0, float, 0.5, 3600, doc="observing time per saved row, s"),
+    },
+    "switching": {
+        "mode": Key("frequency", str, choices=("frequency", "none")),
+        "offset_hz": Key(-0.8e6, float, -10e6, 10e6, doc="reference LO minus signal LO, Hz"),
+        "dwell_s": Key(0.5, float, 0.05, 60, doc="time in each phase, s"),
+        "settle_s": Key(0.02, float, 0, 1, doc="samples blanked after each hop, s"),
+    },
+    "calibration": {
+        "tsys_k": Key(85.0, float, 1, 5000, doc="system temperature used for the kelvin scale, K"),
+        "noise_source_k": Key(70.0, float, 0, 5000, doc="calibration noise source excess, K"),
+    },
+    "rfi": {
+        "flag_dc": Key(True, bool, doc="flag the channel at the LO (DC spike)"),
+    },
+    "pointing": {
+        "frame": Key("auto", str, choices=("auto", "galactic", "azel", "radec")),
+        "lon": Key(30.0, float, -360, 360, doc="l, az or RA in deg"),
+        "lat": Key(0.0, float, -90, 90, doc="b, el or Dec in deg"),
+        "object": Key("", str, doc="OBJECT name; empty: made from the position"),
+        "min_elevation": Key(10.0, float, -5, 89, doc="lowest usable elevation, deg"),
+    },
+    "output": {
+        "dir": Key("spinflip-data", str),
+    },
+    "publish": {
+        "data": Key("tcp://127.0.0.1:5621", str),
+        "control": Key("tcp://127.0.0.1:5622", str),
+        "keys": Key("", str, doc="folder of CURVE keys"),
+        "allow_insecure": Key(False, bool),
+    },
+}
+
+
+def defaults() -> dict[str, dict[str, Any]]:
+    """A fresh dictionary of every key's default."""
+    return {s: {k: copy.copy(v.default) for k, v in keys.items()} for s, keys in SCHEMA.items()}
+
+
+def _check(section: str, key: str, value: Any) -> Any:
+    spec = SCHEMA[section][key]
+    where = f"{section}.{key}"
+    ok_type = isinstance(value, spec.kind) and not (spec.kind is not bool and isinstance(value, bool))
+    if spec.kind is float and isinstance(value, int) and not isinstance(value, bool):
+        value, ok_type = float(value), True
+    if not ok_type:
+        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+    if spec.kind is float and not math.isfinite(value):
+        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+    if spec.choices and value not in spec.choices:
+        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+    if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
+        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+    return value
+
+
+def merge(cfg: dict, overrides: dict, origin: str = "config") -> dict:
+    """Validate ``overrides`` (section -> key -> value) and merge them into ``cfg``."""
+    for section, keys in overrides.items():
+        if section not in SCHEMA:
+            raise ConfigError(
+                f"{origin}: unknown section [{section}]: allowed sections are " + ", ".join(SCHEMA))
+        if not isinstance(keys, dict):
+            raise ConfigError(f"{origin}: [{section}] must be a table of keys, got {keys!r}")
+        for key, value in keys.items():
+            if key not in SCHEMA[section]:
+                raise ConfigError(f"{origin}: unknown key {section}.{key}: allowed keys are "
+                                  + ", ".join(SCHEMA[section]))
+            cfg[section][key] = _check(section, key, value)
+    _cross_checks(cfg)
+    return cfg
+
+
+def _cross_checks(cfg: dict) -> None:
+    n = cfg["spectrometer"]["channels"]
+    if n & (n - 1):
+        raise ConfigError(f"config spectrometer.channels = {n}: expected a power of two")
+    sw = cfg["switching"]
+    if sw["mode"] == "frequency" and sw["settle_s"] >= sw["dwell_s"]:
+        raise ConfigError(f"config switching.settle_s = {sw['settle_s']}: must be shorter than "
+                          f"switching.dwell_s = {sw['dwell_s']}")
+    if sw["mode"] == "frequency" and abs(sw["offset_hz"]) < 4 * cfg["source"]["sample_rate"] / n:
+        raise ConfigError(f"config switching.offset_hz = {sw['offset_hz']:g}: must be at least four "
+                          "channels wide for frequency switching")
+
+
+def load(path: str | Path | None = None) -> dict:
+    """Defaults, overlaid by the TOML file at ``path`` (if given), validated."""
+    cfg = defaults()
+    if path is None:
+        _cross_checks(cfg)
+        return cfg
+    path = Path(path)
+    try:
+        text = path.read_bytes().decode("utf-8")
+    except FileNotFoundError:
+        raise ConfigError(f"config file {path}: not found") from None
+    except (OSError, UnicodeDecodeError) as exc:
+        raise ConfigError(f"config file {path}: cannot be read ({exc})") from None
+    try:
+        data = tomllib.loads(text)
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(f"config file {path}: not valid TOML ({exc})") from None
+    return merge(cfg, data, origin=f"config file {path}")
