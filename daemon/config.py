@@ -55,7 +55,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
     "source": {
         "kind": Key("sim", str, choices=("sim", "rtlsdr", "replay")),
         "device": Key("0", str, doc="rtlsdr: device index or serial number"),
-        "sample_rate": Key(2.4e6, float, 0.9e6, 3.2e6, doc="complex samples per second"),
+        "sample_rate": Key(2.4e6, float, 225001, 3.2e6,
+                           doc="complex samples per second: 225001-300000 or 900001-3200000"),
         "center_freq": Key(HI_REST_FREQ_HZ, float, 24e6, 1.766e9, doc="signal-phase LO, Hz"),
         "gain": Key(40.2, float, 0, 50, doc="tuner gain, dB (manual, AGC off)"),
         "ppm": Key(0, int, -200, 200, doc="crystal correction, parts per million"),
@@ -153,6 +154,10 @@ def _cross_checks(cfg: dict) -> None:
     n = cfg["spectrometer"]["channels"]
     if n & (n - 1):
         raise ConfigError(f"config spectrometer.channels = {n}: expected a power of two")
+    fs = cfg["source"]["sample_rate"]
+    if not (225001 <= fs <= 300000 or 900001 <= fs <= 3.2e6):
+        raise ConfigError(f"config source.sample_rate = {fs:g}: the RTL2832U supports 225001-300000 "
+                          "or 900001-3200000 samples/s")
     sw = cfg["switching"]
     if sw["mode"] == "frequency" and sw["settle_s"] >= sw["dwell_s"]:
         raise ConfigError(f"config switching.settle_s = {sw['settle_s']}: must be shorter than "

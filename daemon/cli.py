@@ -1,0 +1,121 @@
+"""The ``spinflip`` command line: one entry point with subcommands.
+
+Exit codes: 0 success, 1 a fault while running (device gone, disk error), 2 bad input
+(configuration, options, files), each with one line on standard error naming what was wrong.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import sys
+from pathlib import Path
+
+from .config import ConfigError
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def _positive_seconds(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a positive number of seconds")
+    return v
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="spinflip", description="21 cm hydrogen-line spectrometer daemon and tools.")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    r = sub.add_parser("run", help="run the acquisition daemon in the foreground")
+    r.add_argument("--config", metavar="FILE", help="TOML configuration (every key has a default)")
+    r.add_argument("--source", metavar="SRC", help="sim, rtlsdr or replay:PATH (overrides [source] kind)")
+    r.add_argument("--duration", type=_positive_seconds, metavar="S",
+                   help="observing time in seconds (simulated time with --fast); default: until stopped")
+    r.add_argument("--out", metavar="DIR", help="output folder (overrides [output] dir)")
+    r.add_argument("--fast", action="store_true",
+                   help="simulator and replay run as fast as the CPU allows")
+    r.add_argument("--sample-rate", type=float, metavar="HZ", help="overrides [source] sample_rate")
+    r.add_argument("--center-freq", type=float, metavar="HZ", help="overrides [source] center_freq")
+    i = sub.add_parser("inspect", help="summary of a saved FITS scan")
+    i.add_argument("file", metavar="FILE")
+    i.add_argument("--json", action="store_true", help="machine-readable output")
+    b = sub.add_parser("bench", help="DSP throughput and radiometer efficiency against a baseline")
+    b.add_argument("--json", action="store_true", help="machine-readable output")
+    b.add_argument("--seconds", type=_positive_seconds, default=2.0,
+                   help="seconds of 2.4 MS/s data per measurement (default 2)")
+    return p
+
+
+def _cmd_run(args) -> int:
+    from . import config as config_mod
+    from .pipeline import Daemon
+    from .sources import parse_source_option
+    cfg = config_mod.load(args.config)
+    over: dict = {}
+    if args.source:
+        over.setdefault("source", {}).update(parse_source_option(args.source))
+    if args.sample_rate is not None:
+        over.setdefault("source", {})["sample_rate"] = args.sample_rate
+    if args.center_freq is not None:
+        over.setdefault("source", {})["center_freq"] = args.center_freq
+    if args.out:
+        over["output"] = {"dir": args.out}
+    config_mod.merge(cfg, over, origin="command line")
+    daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration)
+    daemon.install_signal_handlers()
+    src = cfg["source"]["kind"]
+    daemon.log(f"spinflip: observing {daemon.pointing.object} with the {src} source"
+               f"{' (fast)' if args.fast else ''}; integrations of "
+               f"{daemon.blocks_per_integration * daemon.block_s:.1f} s")
+    result = daemon.run()
+    for f in result.files:
+        print(f"saved {result.rows} integrations ({result.observed_s:.1f} s observed) to {f}")
+    if not result.files:
+        print(f"no integration finished; nothing saved in {daemon.out_dir}")
+    if result.lost_samples:
+        print(f"warning: {result.lost_samples} samples lost", file=sys.stderr)
+    return 0
+
+
+def _cmd_inspect(args) -> int:
+    from .inspect_file import format_summary, summarize
+    summary = summarize(Path(args.file))
+    print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
+    return 0
+
+
+def _cmd_bench(args) -> int:
+    from .bench import format_bench, run_bench
+    result = run_bench(seconds=args.seconds)
+    print(json.dumps(result, indent=2) if args.json else format_bench(result))
+    return 0
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    handler = {"run": _cmd_run, "inspect": _cmd_inspect, "bench": _cmd_bench}[args.command]
+    from .sources import SourceError
+    try:
+        return handler(args)
+    except ConfigError as exc:
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 2
+    except ValueError as exc:
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 2
+    except SourceError as exc:
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 1
+    except OSError as exc:
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 1
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,186 @@
+"""The built-in simulated telescope: sky, dish and receiver down to the dongle's 8-bit samples.
+
+Signal model, per block of samples at LO frequency f_LO (baseband frequency f, sky nu = f_LO + f):
+
+    P(f) = g(t) B(f) [T_line(nu) + T_cont + T_spill + T_rx + T_cal]      (noise power density)
+    P_img(f) = eps_img P(-f)                                               (IQ-imbalance image)
+
+- T_line: the model galaxy's brightness temperature (``galaxy.ModelGalaxy``) smoothed by the
+  dish beam (HPBW ~ 1.2 lambda/D, common practice), on the LSRK radio-velocity axis, moved to
+  the topocentric frame with the true VFRAME for the simulated time and site
+  (v_topo = v_LSRK - VFRAME).
+- T_cont continuum, T_spill ground spillover, T_rx receiver, T_cal the noise source when on.
+- g(t) = 1 + a sin(2 pi t / P): slow gain drift. B(f): the tuner's band-pass, a flat top with
+  ripple and a steep roll-off toward the band edges.
+- Samples are complex Gaussian noise with that spectrum, made by shaping white noise in the
+  frequency domain (X_k = sqrt(N P_k / 2)(a_k + i b_k), x = IFFT(X), so E|x|^2 = mean P), plus a
+  DC offset (the spike at the LO), optional interference (a steady carrier, an intermittent
+  carrier, impulsive bursts), garbage for a few ms after each retune, then 8-bit quantisation
+  with clipping at the rails; the input level follows the tuner gain setting.
+"""
+
+from __future__ import annotations
+
+import time as _time
+from dataclasses import dataclass
+
+import numpy as np
+import scipy.fft
+from astropy import units as u
+from astropy.time import Time
+
+from . import frames
+from .block import SIG, Block
+from .galaxy import ModelGalaxy
+from .lines import C_M_S, HI_REST_FREQ_HZ
+from .samples import complex_to_u8
+from .switching import Schedule
+
+_CHUNK = 65536                 # samples per frequency-domain shaping chunk
+_GAIN_REF_DB = 40.2            # gain at which the rms per component is _RMS_REF of full scale
+_RMS_REF = 0.16
+_GARBAGE_S = 0.004             # samples after a retune that are junk (PLL relocking)
+_SKY_REFRESH_S = 5.0           # recompute the sky spectrum this often (simulated seconds)
+
+
+def tuner_bandpass(f_hz: np.ndarray, sample_rate: float) -> np.ndarray:
+    """Relative power response of the simulated tuner + decimation filter chain.
+
+    A Butterworth-like roll-off, |H|^2 = 1 / (1 + (f / f_c)^16) with f_c = 0.43 fs, times a
+    3 % ripple of period 280 kHz and a slight tilt.
+    """
+    fc = 0.43 * sample_rate
+    ripple = 1.0 + 0.03 * np.cos(2 * np.pi * f_hz / 280e3 + 0.7) + 0.04 * f_hz / sample_rate
+    return ripple / (1.0 + (f_hz / fc) ** 16)
+
+
+@dataclass
+class TrueSky:
+    """What the simulator put in, for tests and for the calibration issue."""
+
+    tsys_k: float         # band-centre system temperature without the line, cal off
+    t_cont_k: float
+    vframe_m_s: float
+
+
+class SimSource:
+    """Simulated telescope source; yields Blocks like the dongle would (see module docstring)."""
+
+    kind = "sim"
+
+    def __init__(self, cfg: dict, fast: bool = False):
+        self.cfg = cfg
+        self.fast = fast
+        src, sim, site = cfg["source"], cfg["sim"], cfg["site"]
+        self.fs = src["sample_rate"]
+        self.block_samples = (src["block_samples"] // _CHUNK) * _CHUNK or _CHUNK
+        self.schedule = Schedule.from_config(cfg)
+        self.rng = np.random.default_rng(sim["seed"])
+        self.location = frames.site_location(site["lat"], site["lon"], site["height_m"])
+        start = sim["start"]
+        self.t_start = Time.now() if start == "now" else Time(start, scale="utc")
+        self.galaxy = ModelGalaxy()
+        lam = C_M_S / HI_REST_FREQ_HZ
+        self.beam_fwhm_deg = float(np.degrees(1.2 * lam / site["dish_diameter_m"]))
+        self.base_freq = scipy.fft.fftfreq(_CHUNK, 1.0 / self.fs)
+        self.bandpass = tuner_bandpass(self.base_freq, self.fs)
+        self.amplitude = _RMS_REF * 10 ** ((src["gain"] - _GAIN_REF_DB) / 20)
+        self.cal_on = False
+        self.pointing = None      # set by the pipeline: callable(time) -> SkyCoord
+        self._sky_cache: dict = {}
+        self._index = 0
+        self._wall0 = None
+        self.truth = None
+
+    # -- the sky ---------------------------------------------------------------------------
+    def _sky_psd(self, t: Time, lo_hz: float) -> np.ndarray:
+        """Noise power density (K) over the chunk's baseband grid, line and continuum."""
+        bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz)
+        if bucket in self._sky_cache:
+            return self._sky_cache[bucket]
+        coord = self.pointing(t)
+        pos = frames.describe(coord, self.location, t)
+        vframe = frames.vframe_lsrk_m_s(coord, self.location, t)
+        v_grid = np.linspace(-400.0, 400.0, 1601)
+        tb = self.galaxy.brightness_temperature(pos["GLON"], pos["GLAT"], v_grid,
+                                                beam_fwhm_deg=self.beam_fwhm_deg)
+        nu = lo_hz + self.base_freq
+        v_lsrk_kms = (C_M_S * (HI_REST_FREQ_HZ - nu) / HI_REST_FREQ_HZ + vframe) / 1e3
+        line = np.interp(v_lsrk_kms, v_grid, tb, left=0.0, right=0.0)
+        t_cont = self.galaxy.continuum_temperature(pos["GLON"], pos["GLAT"])
+        sim = self.cfg["sim"]
+        base = t_cont + sim["spillover_k"] + sim["receiver_k"]
+        self.truth = TrueSky(tsys_k=base, t_cont_k=t_cont, vframe_m_s=vframe)
+        if len(self._sky_cache) > 8:
+            self._sky_cache.clear()
+        self._sky_cache[bucket] = (line + base, pos)
+        return self._sky_cache[bucket]
+
+    def _gain(self, t_rel_s: float) -> float:
+        sim = self.cfg["sim"]
+        return 1.0 + sim["gain_drift"] * np.sin(2 * np.pi * t_rel_s / sim["gain_drift_period_s"])
+
+    # -- the receiver ----------------------------------------------------------------------
+    def _samples(self, t_rel_s: float, lo_hz: float, hop: bool) -> np.ndarray:
+        t = self.t_start + t_rel_s * u.s
+        temp, _ = self._sky_psd(t, lo_hz)
+        temp = temp + (self.cfg["calibration"]["noise_source_k"] if self.cal_on else 0.0)
+        psd = self._gain(t_rel_s) * self.bandpass * temp
+        psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
+        # scale so that the mean temperature at the nominal Tsys gives the reference rms
+        scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * 85.0)
+        amp = np.sqrt(_CHUNK * psd * scale / 2).astype(np.float32)
+        n_chunks = self.block_samples // _CHUNK
+        w = self.rng.standard_normal((n_chunks, 2, _CHUNK), dtype=np.float32)
+        spec = (w[:, 0] + 1j * w[:, 1]) * amp
+        x = scipy.fft.ifft(spec, axis=1, workers=1).reshape(-1)
+        x += np.complex64(0.006 + 0.004j)                                     # DC offset
+        if self.cfg["sim"]["rfi"]:
+            self._add_rfi(x, t_rel_s, lo_hz)
+        if hop:
+            n = int(_GARBAGE_S * self.fs)
+            x[:n] = (self.rng.uniform(-1, 1, n) + 1j * self.rng.uniform(-1, 1, n)).astype(np.complex64)
+        return x
+
+    def _add_rfi(self, x: np.ndarray, t_rel_s: float, lo_hz: float) -> None:
+        """A steady carrier, a carrier on 30 % of the time, impulsive bursts (broadband)."""
+        n = x.size
+        tt = t_rel_s + np.arange(n) / self.fs
+        for f_sky, amp, duty in ((1420.9e6, 0.02, 1.0), (1419.65e6, 0.03, 0.3)):
+            f = f_sky - lo_hz
+            if abs(f) < self.fs / 2 and (duty >= 1 or (t_rel_s % 10.0) < 10.0 * duty):
+                x += (amp * np.exp(2j * np.pi * f * tt)).astype(np.complex64)
+        period = int(0.25 * self.fs)                    # a 200 us burst every 250 ms
+        start = (-int(round(t_rel_s * self.fs))) % period
+        for s in range(start, n, period):
+            m = min(n, s + int(200e-6 * self.fs)) - s
+            x[s:s + m] += (0.5 * (self.rng.standard_normal(m) + 1j * self.rng.standard_normal(m))
+                           ).astype(np.complex64)
+
+    # -- the Source interface --------------------------------------------------------------
+    def open(self) -> None:
+        self._wall0 = _time.monotonic()
+
+    def close(self) -> None:
+        pass
+
+    def set_cal(self, on: bool) -> None:
+        self.cal_on = bool(on)
+
+    def read(self) -> Block:
+        """Next block; paced to real time unless ``fast``."""
+        i = self._index
+        self._index += 1
+        sch = self.schedule
+        phase = sch.phase_of_block(i)
+        lo = sch.lo_of(phase)
+        t_rel = i * self.block_samples / self.fs
+        hop = sch.is_hop(i)
+        x = self._samples(t_rel, lo, hop)
+        if not self.fast:
+            delay = self._wall0 + t_rel + self.block_samples / self.fs - _time.monotonic()
+            if delay > 0:
+                _time.sleep(delay)
+        return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs,
+                     t0_unix_s=float(self.t_start.unix) + t_rel, phase=phase, cal_on=self.cal_on,
+                     lost_before=0, settle_samples=sch.settle_samples if hop else 0)

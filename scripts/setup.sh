@@ -1,0 +1,27 @@
+#!/usr/bin/env bash
+# Set up spinflip in a virtual environment (.venv) on Debian / Raspberry Pi OS, Python >= 3.11.
+# Idempotent: a second run only checks. Installs python3-venv with apt-get when it is missing.
+set -euo pipefail
+cd "$(dirname "$0")/.."
+PY=${PYTHON:-python3}
+if ! command -v "$PY" >/dev/null; then
+  echo "setup: $PY not found: install Python >= 3.11 (sudo apt-get install python3)" >&2; exit 2
+fi
+if ! "$PY" -c 'import sys; sys.exit(sys.version_info < (3, 11))'; then
+  echo "setup: $($PY --version) is too old: spinflip needs Python >= 3.11" >&2; exit 2
+fi
+if [ ! -x .venv/bin/python ]; then
+  if ! "$PY" -m venv .venv 2>/dev/null; then
+    rm -rf .venv
+    echo "setup: installing python3-venv with apt-get" >&2
+    SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
+    $SUDO apt-get update -qq && $SUDO apt-get install -y -qq python3-venv
+    "$PY" -m venv .venv
+  fi
+fi
+stamp=.venv/.spinflip-installed
+if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
+  .venv/bin/python -m pip install -q --upgrade pip
+  .venv/bin/python -m pip install -q -e '.[test]'
+  touch "$stamp"
+fi
