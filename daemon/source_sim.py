@@ -93,8 +93,8 @@ class SimSource:
         self.truth = None
 
     # -- the sky ---------------------------------------------------------------------------
-    def _sky_psd(self, t: Time, lo_hz: float) -> np.ndarray:
-        """Noise power density (K) over the chunk's baseband grid, line and continuum."""
+    def _sky_psd(self, t: Time, lo_hz: float) -> tuple[np.ndarray, dict]:
+        """(Antenna + receiver temperature in K over the chunk's baseband grid, position)."""
         bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz)
         if bucket in self._sky_cache:
             return self._sky_cache[bucket]
