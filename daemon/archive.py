@@ -320,6 +320,11 @@ def read_journal(path: Path) -> JournalContents:
     return out
 
 
+def count_rows(path: Path) -> int:
+    """Number of intact integration records in a journal (a torn tail is not counted)."""
+    return len(read_journal(path).rows)
+
+
 # ----------------------------------------------------------------------------------------------
 # FITS
 # ----------------------------------------------------------------------------------------------
@@ -599,5 +604,6 @@ def read_scan(path: Path):
     with fits.open(path, memmap=False) as hdul:
         hdr = hdul[EXTNAME].header
         header = {k: v for k, v in hdr.items() if k and not _is_structural(k)}
-    table = Table.read(path, hdu=EXTNAME, format="fits", memmap=False)
+    table = Table.read(path, hdu=EXTNAME, format="fits", memmap=False,
+                       character_as_bytes=False)
     return header, table

@@ -126,6 +126,8 @@ def _check(section: str, key: str, value: Any) -> Any:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
     if spec.kind is float and not math.isfinite(value):
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+    if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
+        raise ConfigError(f"config {where} = {value!r}: expected printable ASCII (it goes into FITS headers)")
     if spec.choices and value not in spec.choices:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:

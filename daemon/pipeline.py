@@ -56,15 +56,6 @@ def check_output_dir(path: Path) -> Path:
     return path
 
 
-def unique_scan_name(out_dir: Path, base: str) -> str:
-    """``base``, or ``base-2``, ``base-3`` ... so that no earlier scan is ever overwritten."""
-    name, n = base, 1
-    while any((out_dir / (name + ext)).exists() for ext in (".fits", ".journal", ".fits.tmp")):
-        n += 1
-        name = f"{base}-{n}"
-    return name
-
-
 class Pointing:
     """Resolves the configured pointing to a sky position at any time."""
 
@@ -209,7 +200,7 @@ class Daemon:
         result.recovered = archive.recover(self.out_dir)
         for p in result.recovered:
             self.log(f"recovered integrations of an interrupted scan into {p}")
-        scan = unique_scan_name(self.out_dir, "scan-" + self.t_start.strftime("%Y%m%dT%H%M%S"))
+        scan = "scan-" + self.t_start.strftime("%Y%m%dT%H%M%S")   # the writer adds -1, -2 if taken
         writer = archive.ScanWriter(self.out_dir, scan, self._header(), self.nchan)
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         rows_q: queue.Queue = queue.Queue()

@@ -1,0 +1,254 @@
+"""Summary of a saved scan (``spinflip inspect FILE``): time, pointing, Tsys, and the line.
+
+The line is found in the scan average on the LSRK radio-velocity axis. For (0-based) channel
+``i`` of a row, the FITS WCS paper III linear frequency axis gives the topocentric sky frequency
+
+    f_i = CRVAL1 + (i + 1 - CRPIX1) * CDELT1                       (CRPIX1 is 1-based)
+
+its topocentric radio velocity
+
+    v_topo,i = c (RESTFREQ - f_i) / RESTFREQ
+
+and, with the row's VFRAME (the LSRK radio velocity of a source at rest relative to the
+telescope), its LSRK radio velocity
+
+    v_LSRK,i = v_topo,i + VFRAME.
+
+VFRAME changes from row to row as the Earth turns, so each row is linearly interpolated
+(``np.interp``) onto the LSRK velocity grid of the first row before averaging; flagged
+channels get zero weight (normalised convolution: the interpolated ``DATA * good`` divided by
+the interpolated ``good``), and parts of the grid that a row does not cover get no weight.
+
+References
+----------
+Greisen, E. W., Calabretta, M. R., Valdes, F. G. & Allen, S. L. 2006, A&A 446, 747
+(FITS WCS paper III: linear spectral axes, radio velocity convention).
+Garwood, R. W. 2000, ASP Conf. Ser. 216, 243 (single-dish FITS convention).
+"""
+
+from __future__ import annotations
+
+import math
+import warnings
+from pathlib import Path
+
+import numpy as np
+
+from .archive import EXTNAME, REQUIRED_ROW_KEYS
+from .lines import C_M_S, radio_velocity_m_s
+
+
+def frequency_axis_hz(crval1: float, cdelt1: float, crpix1: float, nchan: int) -> np.ndarray:
+    """Sky frequency of each channel, Hz: ``f_i = CRVAL1 + (i + 1 - CRPIX1) CDELT1``.
+
+    References
+    ----------
+    Greisen et al. 2006, A&A 446, 747, eq. 1 with a linear FREQ axis (CRPIX1 is 1-based).
+    """
+    pix = np.arange(nchan, dtype=np.float64) + 1.0
+    return crval1 + (pix - crpix1) * cdelt1
+
+
+def velocity_axis_lsrk_m_s(crval1: float, cdelt1: float, crpix1: float, restfreq: float,
+                           vframe_m_s: float, nchan: int) -> np.ndarray:
+    """LSRK radio velocity of each channel, m/s: ``c (RESTFREQ - f_i) / RESTFREQ + VFRAME``.
+
+    References
+    ----------
+    Greisen et al. 2006, A&A 446, 747, table 1 (radio convention, VRAD).
+    """
+    f = frequency_axis_hz(crval1, cdelt1, crpix1, nchan)
+    return radio_velocity_m_s(f, restfreq) + vframe_m_s
+
+
+def scan_average_lsrk(data: np.ndarray, flagged: np.ndarray, crval1, cdelt1, crpix1, restfreq,
+                      vframe_m_s):
+    """Average the rows of a scan on the LSRK velocity grid of its first row.
+
+    Parameters
+    ----------
+    data : (nrow, nchan) array
+    flagged : (nrow, nchan) bool array; flagged or non-finite channels get no weight
+    crval1, cdelt1, crpix1, restfreq, vframe_m_s : (nrow,) arrays, per-row axis description
+
+    Returns
+    -------
+    v_grid_m_s : (nchan,) LSRK radio velocity of the first row's channels, m/s
+    mean : (nchan,) equal-weight average (NaN where no row has an unflagged value)
+    """
+    data = np.asarray(data, dtype=np.float64)
+    nrow, nchan = data.shape
+    good = ~np.asarray(flagged, dtype=bool) & np.isfinite(data)
+    clean = np.where(good, data, 0.0)
+    v_grid = velocity_axis_lsrk_m_s(crval1[0], cdelt1[0], crpix1[0], restfreq[0], vframe_m_s[0],
+                                    nchan)
+    num = np.zeros(nchan)
+    den = np.zeros(nchan)
+    for k in range(nrow):
+        v = velocity_axis_lsrk_m_s(crval1[k], cdelt1[k], crpix1[k], restfreq[k], vframe_m_s[k],
+                                   nchan)
+        order = np.argsort(v)  # np.interp needs increasing abscissae; CDELT1 > 0 makes v fall
+        num += np.interp(v_grid, v[order], clean[k][order], left=0.0, right=0.0)
+        den += np.interp(v_grid, v[order], good[k][order].astype(float), left=0.0, right=0.0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(den > 1e-9, num / den, np.nan)
+    return v_grid, mean
+
+
+def _circular_mean_deg(angles_deg: np.ndarray) -> float:
+    """Mean direction of angles (so 359 deg and 1 deg average to 0 deg, not 180 deg)."""
+    a = np.radians(np.asarray(angles_deg, dtype=np.float64))
+    mean = float(np.degrees(math.atan2(np.mean(np.sin(a)), np.mean(np.cos(a)))) % 360.0)
+    return 0.0 if mean > 360.0 - 1e-9 else mean  # -1e-14 % 360 would read as 360.00
+
+
+def _first_line(exc: Exception) -> str:
+    text = str(exc).strip().splitlines()
+    return text[0] if text else type(exc).__name__
+
+
+def _load(path: Path):
+    """(header, column dict, DATA unit) of a spinflip scan, or ValueError naming the file."""
+    from astropy.io import fits
+    from astropy.utils.exceptions import AstropyWarning
+
+    if not path.exists():
+        raise ValueError(f"{path}: no such file")
+    if path.is_dir():
+        raise ValueError(f"{path}: is a folder, not a FITS file")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", AstropyWarning)
+            with fits.open(path, memmap=False) as hdul:
+                if EXTNAME not in hdul:
+                    raise ValueError(f"{path}: not a spinflip scan (no '{EXTNAME}' table)")
+                hdu = hdul[EXTNAME]
+                if not isinstance(hdu, fits.BinTableHDU):
+                    raise ValueError(f"{path}: not a spinflip scan ('{EXTNAME}' is not a table)")
+                names = set(hdu.columns.names)
+                missing = [k for k in REQUIRED_ROW_KEYS if k not in names]
+                if missing:
+                    raise ValueError(f"{path}: not a spinflip scan (no column "
+                                     f"{', '.join(missing)})")
+                header = dict(hdu.header)
+                unit = hdu.columns["DATA"].unit or ""
+                cols = {k: np.array(hdu.data[k]) for k in REQUIRED_ROW_KEYS}
+    except ValueError as exc:
+        if str(exc).startswith(str(path)):
+            raise
+        raise ValueError(f"{path}: unreadable FITS table ({_first_line(exc)})") from None
+    except (OSError, TypeError, KeyError, IndexError) as exc:
+        raise ValueError(f"{path}: not a FITS file ({_first_line(exc)})") from None
+    return header, cols, unit
+
+
+def summarize(path: Path) -> dict:
+    """Summary of one saved scan, as plain JSON-ready values with units in the key names.
+
+    Keys: ``file``, ``origin``, ``telescope``, ``rows``, ``nchan``, ``objects``, ``object``,
+    ``date_obs_first``, ``date_obs_last`` (UTC, mid-integration), ``duration_s`` (between the
+    first and last mid-integration times), ``exposure_s`` (sum of EXPOSURE), ``glon_deg``,
+    ``glat_deg``, ``azimuth_deg``, ``elevation_deg`` (means; circular means for the longitudes),
+    ``tsys_mean_k``, ``tsys_min_k``, ``tsys_max_k`` (None where no row carries a Tsys),
+    ``data_unit``, ``channel_width_hz``, ``channel_width_km_s``, ``restfreq_hz``, ``specsys``,
+    ``line_peak`` (maximum of the scan average, in ``data_unit``), ``line_velocity_lsrk_km_s``
+    (LSRK radio velocity of that channel), ``flagged_fraction``.
+
+    Raises
+    ------
+    ValueError
+        The file is missing, not FITS, or not a scan in the layout of
+        :mod:`spinflip.daemon.archive` (one line naming the file and the problem).
+    """
+    from astropy.time import Time
+
+    path = Path(path)
+    header, c, unit = _load(path)
+    nrow = len(c["TSYS"])
+    if nrow == 0:
+        raise ValueError(f"{path}: the scan holds no integrations")
+    data = np.asarray(c["DATA"], dtype=np.float64).reshape(nrow, -1)
+    flagged = np.asarray(c["FLAGGED"], dtype=bool).reshape(nrow, -1)
+    nchan = data.shape[1]
+    f64 = {k: np.asarray(c[k], dtype=np.float64) for k in
+           ("TSYS", "EXPOSURE", "CRVAL1", "CDELT1", "CRPIX1", "RESTFREQ", "VFRAME", "GLON",
+            "GLAT", "AZIMUTH", "ELEVATIO")}
+    dates = [str(d).strip() for d in c["DATE-OBS"]]
+    try:
+        times = Time(dates, format="isot", scale="utc")
+    except ValueError as exc:
+        raise ValueError(f"{path}: DATE-OBS is not an ISO time ({_first_line(exc)})") from None
+    first, last = times.argmin(), times.argmax()
+
+    v_grid, mean = scan_average_lsrk(data, flagged, f64["CRVAL1"], f64["CDELT1"],
+                                     f64["CRPIX1"], f64["RESTFREQ"], f64["VFRAME"])
+    if np.all(np.isnan(mean)):
+        peak, v_peak = None, None
+    else:
+        ipk = int(np.nanargmax(mean))
+        peak, v_peak = float(mean[ipk]), float(v_grid[ipk] / 1e3)
+
+    tsys = f64["TSYS"][np.isfinite(f64["TSYS"]) & (f64["TSYS"] > 0)]
+    objects = list(dict.fromkeys(str(o).strip() for o in c["OBJECT"]))
+    cdelt = float(f64["CDELT1"][0])
+    return {
+        "file": str(path),
+        "origin": str(header.get("ORIGIN", "")),
+        "telescope": str(header.get("TELESCOP", "")),
+        "rows": int(nrow),
+        "nchan": int(nchan),
+        "object": objects[0],
+        "objects": objects,
+        "date_obs_first": dates[first],
+        "date_obs_last": dates[last],
+        "duration_s": float((times[last] - times[first]).sec),
+        "exposure_s": float(np.sum(f64["EXPOSURE"])),
+        "glon_deg": _circular_mean_deg(f64["GLON"]),
+        "glat_deg": float(np.mean(f64["GLAT"])),
+        "azimuth_deg": _circular_mean_deg(f64["AZIMUTH"]),
+        "elevation_deg": float(np.mean(f64["ELEVATIO"])),
+        "tsys_mean_k": float(np.mean(tsys)) if tsys.size else None,
+        "tsys_min_k": float(np.min(tsys)) if tsys.size else None,
+        "tsys_max_k": float(np.max(tsys)) if tsys.size else None,
+        "data_unit": unit,
+        "channel_width_hz": abs(cdelt),
+        # radio convention: dv = c |df| / RESTFREQ
+        "channel_width_km_s": float(C_M_S * abs(cdelt) / f64["RESTFREQ"][0] / 1e3),
+        "restfreq_hz": float(f64["RESTFREQ"][0]),
+        "specsys": str(header.get("SPECSYS", "")),
+        "line_peak": peak,
+        "line_velocity_lsrk_km_s": v_peak,
+        "flagged_fraction": float(np.mean(flagged)),
+    }
+
+
+def format_summary(d: dict) -> str:
+    """Human-readable text of :func:`summarize`'s dict, a unit on every number."""
+    unit = d["data_unit"] or "(no unit)"
+    if d["tsys_mean_k"] is None:
+        tsys = "n/a (no row carries a system temperature)"
+    else:
+        tsys = (f"mean {d['tsys_mean_k']:.1f} K (min {d['tsys_min_k']:.1f} K, "
+                f"max {d['tsys_max_k']:.1f} K)")
+    if d["line_peak"] is None:
+        line = "n/a (every channel flagged)"
+    else:
+        line = (f"peak {d['line_peak']:.4g} {unit} at v_LSRK = "
+                f"{d['line_velocity_lsrk_km_s']:+.2f} km/s (radio convention)")
+    objects = ", ".join(d["objects"])
+    lines = [
+        f"file      {d['file']}  (written by {d['origin'] or 'unknown'}; "
+        f"telescope {d['telescope'] or 'unnamed'})",
+        f"rows      {d['rows']} integrations, {d['exposure_s']:.1f} s total exposure",
+        f"time      {d['date_obs_first']} .. {d['date_obs_last']} UTC (mid-integration), "
+        f"span {d['duration_s']:.1f} s",
+        f"pointing  {objects}: l = {d['glon_deg']:.2f} deg, b = {d['glat_deg']:+.2f} deg; "
+        f"az = {d['azimuth_deg']:.1f} deg, el = {d['elevation_deg']:.1f} deg (means)",
+        f"Tsys      {tsys}",
+        f"spectrum  {d['nchan']} channels of {d['channel_width_hz'] / 1e3:.3f} kHz "
+        f"({d['channel_width_km_s']:.3f} km/s), rest frequency {d['restfreq_hz'] / 1e6:.6f} MHz, "
+        f"DATA in {unit}, axis {d['specsys'] or '?'}; "
+        f"{100 * d['flagged_fraction']:.1f} % of channels flagged",
+        f"line      {line}",
+    ]
+    return "\n".join(lines)
