@@ -219,6 +219,13 @@ class Daemon:
             while not self.stop_event.is_set():
                 block = blocks_q.get()
                 if block is _STOP:
+                    partial = n_blocks % self.blocks_per_integration
+                    if partial and counters["error"] is None and not self.stop_event.is_set():
+                        # the source ended (a replay's file): its last, shorter integration is kept
+                        rows_q.put(self._row(self.spectrometer.take()))
+                        result.rows += 1
+                        result.observed_s += partial * self.block_s
+                        n_blocks += self.blocks_per_integration - partial
                     break
                 self.spectrometer.add(block)
                 result.lost_samples += block.lost_before

@@ -81,8 +81,16 @@ def test_sim_line_where_the_model_galaxy_puts_it(sim_scan):
     assert 0 < peak_v < 120
     strong = ok & (sm > 0.3 * sm[ok].max())
     assert v[strong].min() > -30 and v[strong].max() < 140
-    line_free = ok & ((v < -150) | (v > 200))
-    assert abs(np.median(sm[line_free])) < 0.1 * sm[ok].max()
+    # The folded spectrum of in-band switching is T(v) - [T(v + dv) + T(v - dv)] / 2 with dv the
+    # switch offset in velocity (negative ghosts, common practice); the model galaxy's own
+    # profile, folded the same way, must match the measured shape.
+    from spinflip.daemon.galaxy import ModelGalaxy
+    vg = np.linspace(-600, 600, 4801)
+    tb = ModelGalaxy().brightness_temperature(30.0, 0.0, vg, beam_fwhm_deg=np.degrees(1.2 * 0.2110 / 3.0))
+    dv = 299792.458 * 0.8e6 / d["RESTFREQ"][0]
+    model = np.interp(v, vg, tb) - 0.5 * (np.interp(v + dv, vg, tb) + np.interp(v - dv, vg, tb))
+    r = np.corrcoef(sm[ok][8:-8], model[ok][8:-8])[0, 1]
+    assert r > 0.95
     assert 20 < sm[ok].max() < 200          # K: HI in the plane peaks at tens of kelvin
 
 
@@ -160,21 +168,21 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
                              str(cfg), "--out", str(out)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+    from spinflip.daemon import archive
     journal = None
     deadline = time.monotonic() + 60
-    while time.monotonic() < deadline:       # real-time pacing: wait for a few rows
+    while time.monotonic() < deadline:       # real-time pacing: wait for three finished rows
         js = list(out.glob("*.journal"))
-        if js and js[0].stat().st_size > 3 * 4 * 1024 + 4096:
+        if js and archive.count_rows(js[0]) >= 3:
             journal = js[0]
             break
-        time.sleep(0.2)
+        time.sleep(0.1)
     assert journal is not None, "no journal grew"
-    time.sleep(1.5)
+    time.sleep(0.5)                          # kill in the middle of the next integration
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait()
     assert not list(out.glob("*.fits"))
-    from spinflip.daemon import archive
-    n_rows_in_journal = archive.count_rows(journal) if hasattr(archive, "count_rows") else None
+    n_rows_in_journal = archive.count_rows(journal)
     r = _run(["run", "--config", str(cfg), "--fast", "--duration", "2", "--out", str(out)])
     assert r.returncode == 0, r.stderr
     assert "recovered" in r.stderr
@@ -183,6 +191,4 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     assert not list(out.glob("*.journal"))
     with fits.open(files[0]) as h:
         rows = len(h[1].data)
-    assert rows >= 3
-    if n_rows_in_journal is not None:
-        assert rows == n_rows_in_journal
+    assert rows >= 3 and rows == n_rows_in_journal
