@@ -189,6 +189,8 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     files = sorted(out.glob("*.fits"))
     assert len(files) == 2
     assert not list(out.glob("*.journal"))
-    with fits.open(files[0]) as h:
+    recovered = out / (journal.stem + ".fits")
+    assert recovered in files
+    with fits.open(recovered) as h:
         rows = len(h[1].data)
     assert rows >= 3 and rows == n_rows_in_journal
