@@ -70,12 +70,12 @@ class Spectrometer:
             self._last_lo = block.lo_hz
         skip = min(block.settle_samples, x.size)
         x = x[skip:]
-        power = self.channelizer.power(x)
+        s1, s2, m = self.channelizer.sums(x)
         ph = integ.sums[block.phase]
-        ph.s1 += power.sum(axis=0, dtype=np.float64)
-        ph.s2 += np.square(power, dtype=np.float64).sum(axis=0)
-        ph.m += power.shape[0]
-        ph.exposure_s += power.shape[0] * self.nchan / block.sample_rate
+        ph.s1 += s1
+        ph.s2 += s2
+        ph.m += m
+        ph.exposure_s += m * self.nchan / block.sample_rate
         ph.lo_hz = block.lo_hz
         if integ.t_first_s is None:
             integ.t_first_s = block.t0_unix_s
