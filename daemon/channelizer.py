@@ -1,7 +1,7 @@
 """Channelizers: critically sampled polyphase filterbank (default) and windowed FFT.
 
 PFB (Crochiere & Rabiner 1983; Price 2016, arXiv:1607.03579): a prototype low-pass
-h[n] = sinc((n - (L-1)/2)/N) w[n], L = taps*N, Hann window w. Spectrum j from samples
+h[n] = sinc(1.2 (n - (L-1)/2)/N) w[n], L = taps*N, Hann window w. Spectrum j from samples
 x[jN .. jN + L): y_j[k] = sum_t h[tN + k] x[jN + tN + k] (weighted overlap-add), X_j = FFT(y_j).
 Each spectrum consumes N new samples; the last (taps-1)*N samples are kept as history so that
 contiguous calls give the same spectra as one long call, and ``reset()`` drops them (after a
@@ -14,6 +14,9 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 import scipy.signal
+
+
+_WIDTH = 1.2   # prototype passband width in channels (common practice: about -3 dB crossover)
 
 
 class Channelizer:
@@ -38,8 +41,7 @@ class Channelizer:
         if self._history.size:
             x = np.concatenate([self._history, x])
         m = max(0, (x.size - (t - 1) * n) // n)
-        keep = (t - 1) * n
-        self._history = (x[m * n: m * n + keep] if m else x[x.size - keep:]).copy() if keep else x[:0]
+        self._history = x[m * n:].copy()       # every sample not yet consumed by a spectrum
         rows = x[: (m + t - 1) * n].view(np.float32).reshape(-1, 2 * n) if m else None
         return rows, m
 
@@ -97,7 +99,10 @@ def make_channelizer(method: str, nchan: int, taps: int = 4) -> Channelizer:
     if method == "pfb":
         L = taps * nchan
         n = np.arange(L)
-        h = np.sinc((n - (L - 1) / 2) / nchan) * scipy.signal.get_window("hann", L, fftbins=False)
+        # the sinc is widened by 1.2 so neighbouring channels cross near -3 dB (about -3.2 dB)
+        # and the channel's ENBW is close to one bin; at 1.0 they would cross at -6 dB
+        h = np.sinc(_WIDTH * (n - (L - 1) / 2) / nchan) * scipy.signal.get_window(
+            "hann", L, fftbins=False)
         return Channelizer(nchan, h, taps)
     if method == "fft":
         return Channelizer(nchan, scipy.signal.get_window("hann", nchan), 1)
