@@ -29,7 +29,7 @@ from .lines import HI_REST_FREQ_HZ
 from .sources import SourceError, make_source
 from .spectrometer import Spectrometer
 
-_QUEUE_BLOCKS = 32
+_QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
 _STOP = object()
 
 
