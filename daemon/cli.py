@@ -103,19 +103,12 @@ def main(argv=None) -> int:
     from .sources import SourceError
     try:
         return handler(args)
-    except ConfigError as exc:
+    except (ConfigError, ValueError) as exc:     # bad input: configuration, options, files
         print(f"spinflip {args.command}: {exc}", file=sys.stderr)
         return 2
-    except ValueError as exc:
-        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
-        return 2
-    except SourceError as exc:
+    except (SourceError, OSError) as exc:        # a fault while running: device, disk
         print(f"spinflip {args.command}: {exc}", file=sys.stderr)
         return 1
-    except OSError as exc:
-        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
-        return 1
-
 
 if __name__ == "__main__":
     sys.exit(main())

@@ -197,6 +197,7 @@ class Daemon:
     def run(self) -> RunResult:
         """Acquire until the duration is reached, the source ends, or a stop signal."""
         result = RunResult()
+        self.source.open()            # a source that cannot start leaves nothing behind
         result.recovered = archive.recover(self.out_dir)
         for p in result.recovered:
             self.log(f"recovered integrations of an interrupted scan into {p}")
@@ -205,7 +206,6 @@ class Daemon:
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         rows_q: queue.Queue = queue.Queue()
         counters = {"dropped": 0, "written": 0, "error": None, "write_error": None}
-        self.source.open()
         reader = threading.Thread(target=self._reader, args=(blocks_q, counters), daemon=True,
                                   name="reader")
         wthread = threading.Thread(target=self._writer, args=(rows_q, writer, counters),

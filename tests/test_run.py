@@ -194,3 +194,14 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     with fits.open(recovered) as h:
         rows = len(h[1].data)
     assert rows >= 3 and rows == n_rows_in_journal
+
+
+def test_rtlsdr_without_librtlsdr_says_how_to_fix(tmp_path):
+    # no dongle library on this machine: one line naming the fix, exit 1, nothing written
+    out = tmp_path / "o"
+    r = _run(["run", "--source", "rtlsdr", "--duration", "1", "--out", str(out)])
+    if r.returncode == 1 and "librtlsdr not found" in r.stderr:
+        assert "apt-get install librtlsdr0" in r.stderr
+    else:   # a machine with librtlsdr but no dongle
+        assert r.returncode == 1 and "no RTL-SDR dongle" in r.stderr
+    assert not list(out.glob("*"))
