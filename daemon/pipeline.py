@@ -193,6 +193,17 @@ class Daemon:
             "SAMPRATE": self.cfg["source"]["sample_rate"], "GAIN": cfg["source"]["gain"],
         }
 
+    def _keep_partial(self, n_blocks: int, rows_q: queue.Queue, result: RunResult) -> int:
+        """At a planned end (duration reached, replay file ended) keep the last, shorter
+        integration if it holds at least one whole switching cycle; its EXPOSURE says how long."""
+        partial = n_blocks % self.blocks_per_integration
+        if partial >= self.source.schedule.blocks_per_cycle:
+            rows_q.put(self._row(self.spectrometer.take()))
+            result.rows += 1
+            result.observed_s += partial * self.block_s
+            return n_blocks + self.blocks_per_integration - partial
+        return n_blocks
+
     # -- the run ---------------------------------------------------------------------------
     def run(self) -> RunResult:
         """Acquire until the duration is reached, the source ends, or a stop signal."""
@@ -219,13 +230,8 @@ class Daemon:
             while not self.stop_event.is_set():
                 block = blocks_q.get()
                 if block is _STOP:
-                    partial = n_blocks % self.blocks_per_integration
-                    if partial and counters["error"] is None and not self.stop_event.is_set():
-                        # the source ended (a replay's file): its last, shorter integration is kept
-                        rows_q.put(self._row(self.spectrometer.take()))
-                        result.rows += 1
-                        result.observed_s += partial * self.block_s
-                        n_blocks += self.blocks_per_integration - partial
+                    if counters["error"] is None and not self.stop_event.is_set():
+                        n_blocks = self._keep_partial(n_blocks, rows_q, result)   # replay's end
                     break
                 self.spectrometer.add(block)
                 result.lost_samples += block.lost_before
@@ -235,6 +241,7 @@ class Daemon:
                     result.rows += 1
                     result.observed_s += self.blocks_per_integration * self.block_s
                 if max_blocks is not None and n_blocks >= max_blocks:
+                    n_blocks = self._keep_partial(n_blocks, rows_q, result)   # planned end
                     break
         finally:
             self.stop_event.set()
