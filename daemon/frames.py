@@ -21,7 +21,7 @@ import functools
 
 import numpy as np
 from astropy import units as u
-from astropy.coordinates import (AltAz, CartesianRepresentation, EarthLocation, Galactic, ICRS,
+from astropy.coordinates import (AltAz, EarthLocation, Galactic, ICRS,
                                  LSRK, SkyCoord)
 from astropy.time import Time
 from astropy.utils import iers

@@ -14,12 +14,9 @@ import queue
 import signal
 import sys
 import threading
-import time as _time
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import numpy as np
-from astropy import units as u
 from astropy.time import Time
 
 from . import archive, frames
@@ -179,7 +176,7 @@ class Daemon:
 
     def _header(self) -> dict:
         cfg = self.cfg
-        site, sw = cfg["site"], cfg["switching"]
+        site = cfg["site"]
         sch = self.source.schedule
         unit = "K" if sch.mode == "frequency" else "count"
         return {

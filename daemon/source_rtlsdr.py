@@ -13,7 +13,6 @@ retune belong to the old LO, which the settle blanking (``switching.settle_s``) 
 
 from __future__ import annotations
 
-import os
 import threading
 import time as _time
 from pathlib import Path

@@ -30,7 +30,7 @@ from astropy import units as u
 from astropy.time import Time
 
 from . import frames
-from .block import SIG, Block
+from .block import Block
 from .galaxy import ModelGalaxy
 from .lines import C_M_S, HI_REST_FREQ_HZ
 from .samples import complex_to_u8

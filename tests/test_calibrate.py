@@ -23,7 +23,6 @@ def test_fold_recovers_line_and_cancels_bandpass():
     n, shift, tsys = 512, -100, 100.0
     k = np.arange(n)
     bandpass = 1 + 0.3 * np.cos(k / 40.0)
-    sky_sig = np.zeros(n)
     line_chan = 200
     line = 5.0 * np.exp(-0.5 * ((k - line_chan) / 4.0) ** 2)
     sig = bandpass * (tsys + line)

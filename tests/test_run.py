@@ -5,13 +5,11 @@ import signal
 import subprocess
 import sys
 import time
-from pathlib import Path
 
 import numpy as np
 import pytest
 from astropy.io import fits
 
-from spinflip.daemon.cli import main
 from spinflip.daemon.samples import complex_to_u8
 
 SIM_CONFIG = """

@@ -3,7 +3,6 @@
 import numpy as np
 from astropy import units as u
 from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
-from astropy.time import Time
 
 from spinflip.daemon import config
 from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
@@ -32,7 +31,6 @@ def test_simulated_line_shift_matches_astropy_spectralcoord():
     src.galaxy = NarrowLine()
     temp, pos = src._sky_psd(src.t_start, HI_REST_FREQ_HZ)
     f_peak = HI_REST_FREQ_HZ + src.base_freq[np.argmax(temp)]
-    site = cfg["site"]
     loc = src.location
     target = SkyCoord(l=30 * u.deg, b=0 * u.deg, frame=Galactic(), distance=1 * u.kpc,
                       radial_velocity=0 * u.km / u.s, pm_l_cosb=0 * u.mas / u.yr, pm_b=0 * u.mas / u.yr)
