@@ -76,6 +76,7 @@ class Pointing:
         return frames.pointing_coord(self.frame, self.lon, self.lat, self.location, t)
 
 
+
 class Daemon:
     """One observation run; see :meth:`run`."""
 
@@ -112,6 +113,7 @@ class Daemon:
         self.block_s = block_s
         cycle = sch.blocks_per_cycle
         self.blocks_per_integration = cycle * max(1, math.ceil(sp["integration_s"] / (block_s * cycle)))
+
 
     # -- the threads -----------------------------------------------------------------------
     def _reader(self, q: queue.Queue, counters: dict) -> None:
