@@ -1,12 +1,62 @@
-"""Channelizers: critically sampled polyphase filterbank (default) and windowed FFT.
+"""Channelizers for complex64 baseband samples: polyphase filterbank (default) and windowed FFT.
 
-PFB (Crochiere & Rabiner 1983; Price 2016, arXiv:1607.03579): a prototype low-pass
-h[n] = sinc(1.2 (n - (L-1)/2)/N) w[n], L = taps*N, Hann window w. Spectrum j from samples
-x[jN .. jN + L): y_j[k] = sum_t h[tN + k] x[jN + tN + k] (weighted overlap-add), X_j = FFT(y_j).
-Each spectrum consumes N new samples; the last (taps-1)*N samples are kept as history so that
-contiguous calls give the same spectra as one long call, and ``reset()`` drops them (after a
-retune). Power |X|^2 is normalised by sum(h^2) so white noise of variance s^2 per complex sample
-has mean power s^2 in every channel; channels are fftshifted (DC at index N//2).
+Both turn a stream of complex samples x[n] at rate fs into power spectra of N = ``nchan``
+channels, one spectrum per N new samples (critically sampled), channel spacing fs / N.
+
+Polyphase filterbank (``"pfb"``)
+    Prototype low-pass of length L = taps * N (Crochiere & Rabiner 1983, ch. 7; Price 2016)::
+
+        h[n] = sinc(W (n - (L - 1) / 2) / N) * w[n],    n = 0 .. L - 1,
+
+    a sinc of passband width W = 1.2 channels tapered by a symmetric window w (Hann by default;
+    Hamming, Blackman or Kaiser with beta 8.6 on request). Spectrum j uses the L samples
+    x[jN .. jN + L): weighted overlap-add of the taps into one frame of N samples, then a DFT::
+
+        y_j[k] = sum_{t=0}^{taps-1} h[tN + k] x[jN + tN + k],      X_j = DFT_N(y_j).
+
+    Channel k then sees the input through the band-pass h[n] exp(2 pi i k n / N): the
+    prototype's frequency response H(f) moved to the channel's centre, decimated by N.
+
+Windowed FFT (``"fft"``)
+    The same with taps = 1 and h = w a periodic window of length N (Hann by default):
+    non-overlapping segments, one DFT each (the periodogram of each segment).
+
+Normalisation
+    P_j[k] = |X_j[k]|^2 / sum(h^2). For white noise of variance s^2 per complex sample
+    (E|x|^2 = s^2) the mean power is E P = s^2 in every channel. This is the level of
+    ``scipy.signal.welch(..., scaling="density")`` times fs, and of its ``scaling="spectrum"``
+    result times N / ENBW_bins.
+
+Channel order
+    fftshifted: channel i has frequency offset (i - N // 2) fs / N from the LO, so DC sits at
+    index N // 2 and the lowest frequency comes first.
+
+Stateless and streaming use
+    :class:`Channelizer` is stateless: a call with n samples yields
+    floor((n - (taps - 1) N) / N) spectra (0 if n < taps N), the first spectrum starting at the
+    first sample. :class:`StreamingChannelizer` (what :func:`make_channelizer` returns by default)
+    keeps every sample not yet consumed by a spectrum (at least the last (taps - 1) N) and puts
+    it in front of the next call, so contiguous chunks give exactly the spectra of one long call;
+    ``reset()`` drops that history (after every LO retune, so no spectrum mixes two tunings).
+
+Speed
+    The frames are a float32 view of the complex samples ((re, im) interleaved, so the real
+    coefficients are interleaved too) worked on in runs of 128 spectra, which keeps the working
+    set in the CPU cache. The DFT is ``scipy.fft.fft(..., workers=1)`` on complex64: measured on
+    this project's machine for 128 x 1024 points, 0.31 ms against 2.1 ms for ``numpy.fft.fft``.
+    |X|^2 is formed as re^2 + im^2 in float32. ``scipy.signal`` is deliberately not imported here
+    (it costs the daemon about 70 MB of memory).
+
+References
+----------
+.. [1] R. E. Crochiere and L. R. Rabiner, *Multirate Digital Signal Processing*,
+       Prentice-Hall, 1983, ch. 7 (filter banks, polyphase structure).
+.. [2] D. C. Price, "Spectrometers and Polyphase Filterbanks in Radio Astronomy",
+       arXiv:1607.03579, 2016.
+.. [3] F. J. Harris, "On the use of windows for harmonic analysis with the discrete Fourier
+       transform", Proc. IEEE 66, 51-83, 1978 (ENBW, scalloping loss).
+.. [4] P. D. Welch, "The use of fast Fourier transform for the estimation of power spectra",
+       IEEE Trans. Audio Electroacoust. 15, 70-73, 1967.
 """
 
 from __future__ import annotations
@@ -14,96 +64,314 @@ from __future__ import annotations
 import numpy as np
 import scipy.fft
 
+__all__ = ["Channelizer", "StreamingChannelizer", "make_channelizer", "power_sums",
+           "accumulate", "WINDOWS", "PROTOTYPE_WIDTH"]
 
-_WIDTH = 1.2   # prototype passband width in channels (common practice: about -3 dB crossover)
+#: Passband width W of the PFB prototype's sinc, in channels. At 1.0 neighbouring channels cross
+#: at -6 dB; at 1.2 (with the Hann taper over 4 taps) they cross near -3 dB and the channel's
+#: equivalent noise bandwidth is close to one channel (common practice: about -3 dB crossover).
+PROTOTYPE_WIDTH = 1.2
+
+#: Kaiser window parameter used for ``window="kaiser"`` (beta 8.6 is close to Blackman; from
+#: the numpy.kaiser documentation).
+KAISER_BETA = 8.6
+
+#: Window names accepted by :func:`make_channelizer`.
+WINDOWS = ("hann", "hamming", "blackman", "kaiser")
+
+_CHUNK = 128   # spectra per pass: keeps the working set (128 x taps x N x 8 bytes) in cache
+
+
+def _window(name: str, length: int, periodic: bool) -> np.ndarray:
+    """Window of ``length`` points, float64; periodic (DFT-even) or symmetric.
+
+    A periodic window of length L is the symmetric one of length L + 1 without its last point
+    (Harris 1978, section III): the form for spectral analysis with an L-point DFT.
+    """
+    if name not in WINDOWS:
+        raise ValueError(f"unknown window {name!r}: expected one of {', '.join(WINDOWS)}")
+    n = length + 1 if periodic else length
+    if name == "hann":
+        w = np.hanning(n)
+    elif name == "hamming":
+        w = np.hamming(n)
+    elif name == "blackman":
+        w = np.blackman(n)
+    else:
+        w = np.kaiser(n, KAISER_BETA)
+    return w[:length] if periodic else w
 
 
 class Channelizer:
-    def __init__(self, nchan: int, coeffs: np.ndarray, taps: int):
-        self.nchan = nchan
-        self.taps = taps
+    """Stateless channelizer: power spectra of each call's samples on their own.
+
+    Parameters
+    ----------
+    nchan : int
+        Number of channels N (the DFT length); each spectrum consumes N new samples.
+    coeffs : array_like
+        Filter coefficients h[n], length taps * N (the PFB prototype, or the FFT window for
+        taps = 1).
+    taps : int
+        Number of taps: each spectrum uses taps * N samples.
+    method, window : str, optional
+        What the coefficients are, for display (``"pfb"``/``"fft"``, window name).
+
+    Notes
+    -----
+    A call with n samples yields floor((n - (taps - 1) N) / N) spectra. See the module
+    docstring for the maths and the normalisation.
+    """
+
+    def __init__(self, nchan: int, coeffs: np.ndarray, taps: int, method: str = "pfb",
+                 window: str = "hann"):
+        coeffs = np.asarray(coeffs, dtype=np.float64)
+        if coeffs.size != taps * nchan:
+            raise ValueError(f"need taps * nchan = {taps * nchan} coefficients, got {coeffs.size}")
+        self.nchan = int(nchan)
+        self.taps = int(taps)
+        self.method = method
+        self.window = window
         self.coeffs = coeffs.astype(np.float32).reshape(taps, nchan)
-        # the same real coefficients interleaved (re, im) to weight complex samples viewed as float
+        # the same real coefficients interleaved (re, im) to weight complex samples seen as floats
         self._coeffs_iq = np.repeat(self.coeffs, 2, axis=1)
-        self.norm = np.float32(1.0 / np.sum(coeffs.astype(np.float64) ** 2))
-        self._history = np.zeros(0, dtype=np.complex64)
+        #: 1 / sum(h^2): white noise of variance s^2 gives mean power s^2 per channel
+        self.norm = np.float32(1.0 / np.sum(coeffs ** 2))
+        self._enbw_bins = self._enbw_from_response(coeffs, self.nchan)
 
-    def reset(self) -> None:
-        self._history = np.zeros(0, dtype=np.complex64)
+    # ----------------------------------------------------------------- sizes
+    @property
+    def history_samples(self) -> int:
+        """Samples of history each spectrum needs beyond its N new ones: (taps - 1) N."""
+        return (self.taps - 1) * self.nchan
 
-    _CHUNK = 128   # spectra per pass: keeps the working set in the CPU cache
+    def n_spectra(self, nsamples: int) -> int:
+        """Spectra from ``nsamples`` contiguous samples: floor((n - (taps - 1) N) / N), >= 0."""
+        return max(0, (int(nsamples) - self.history_samples) // self.nchan)
 
-    def _frames(self, x: np.ndarray):
-        """Prepend the history, keep the new history, return (float view rows, m spectra)."""
-        n, t = self.nchan, self.taps
-        x = np.asarray(x, dtype=np.complex64)
-        if self._history.size:
-            x = np.concatenate([self._history, x])
-        m = max(0, (x.size - (t - 1) * n) // n)
-        self._history = x[m * n:].copy()       # every sample not yet consumed by a spectrum
-        rows = x[: (m + t - 1) * n].view(np.float32).reshape(-1, 2 * n) if m else None
-        return rows, m
+    # --------------------------------------------------------------- frames
+    def _prepare(self, x: np.ndarray):
+        """Samples to work on and the number m of spectra they give (stateless: x itself)."""
+        x = np.asarray(x, dtype=np.complex64).reshape(-1)
+        return x, self.n_spectra(x.size)
+
+    def _rows(self, x: np.ndarray, m: int) -> np.ndarray:
+        """Rows of N samples as float32 (re, im) pairs: shape (m + taps - 1, 2N), a view."""
+        return x[: (m + self.taps - 1) * self.nchan].view(np.float32).reshape(-1, 2 * self.nchan)
 
     def _chunk_power(self, rows: np.ndarray, j: int, k: int) -> np.ndarray:
-        """Power of spectra j..k-1 (FFT order): weighted overlap-add, FFT, |X|^2."""
-        # y_j = sum_t c_t * x_(j + t) on the (re, im) float view, the coefficients interleaved
+        """Power of spectra j .. k-1 in DFT order (not shifted), float32 (k - j, N)."""
+        # weighted overlap-add: y_j = sum_t h_t * x_(j + t), rows being consecutive N-sample frames
         y = rows[j:k] * self._coeffs_iq[0]
         for t in range(1, self.taps):
             y += rows[j + t:k + t] * self._coeffs_iq[t]
         spec = scipy.fft.fft(y.view(np.complex64), axis=1, workers=1, overwrite_x=True)
-        p = spec.real ** 2
+        p = spec.real ** 2          # |X|^2 = re^2 + im^2, float32
         p += spec.imag ** 2
         p *= self.norm
         return p
 
+    # --------------------------------------------------------------- output
     def power(self, x: np.ndarray) -> np.ndarray:
-        """Power spectra (m, nchan) float32 of ``x`` after the history, fftshifted (DC at nchan // 2)."""
-        rows, m = self._frames(x)
+        """Power spectra of the samples ``x``.
+
+        Parameters
+        ----------
+        x : ndarray of complex64
+            Contiguous baseband samples.
+
+        Returns
+        -------
+        ndarray of float32, shape (m, nchan)
+            P_j[k] = |X_j[k]|^2 / sum(h^2), channels fftshifted (DC at index nchan // 2).
+        """
+        x, m = self._prepare(x)
         out = np.empty((m, self.nchan), dtype=np.float32)
-        for j in range(0, m, self._CHUNK):
-            k = min(m, j + self._CHUNK)
-            out[j:k] = self._chunk_power(rows, j, k)
+        if m:
+            rows = self._rows(x, m)
+            for j in range(0, m, _CHUNK):
+                k = min(m, j + _CHUNK)
+                out[j:k] = self._chunk_power(rows, j, k)
         return np.fft.fftshift(out, axes=1)
 
     def sums(self, x: np.ndarray):
-        """(S1 = sum P, S2 = sum P^2, M) of the spectra of ``x``, fftshifted, S1 and S2 float64.
+        """Sums of power and of power squared over the spectra of ``x``, never all held at once.
 
-        Summed in float32 over runs of 128 spectra (relative rounding below 1e-5), accumulated
-        in float64; the power spectra themselves are never all held at once.
+        Equivalent to ``power_sums(self.power(x))`` with less memory traffic: each run of
+        128 spectra is summed in float32 (relative rounding below 1e-5) and accumulated in
+        float64.
+
+        Returns
+        -------
+        s1, s2 : ndarray of float64, shape (nchan,)
+            S1 = sum_j P_j, S2 = sum_j P_j^2, fftshifted.
+        m : int
+            Number of spectra summed.
         """
-        rows, m = self._frames(x)
+        x, m = self._prepare(x)
         s1 = np.zeros(self.nchan)
         s2 = np.zeros(self.nchan)
-        for j in range(0, m, self._CHUNK):
-            p = self._chunk_power(rows, j, min(m, j + self._CHUNK))
-            s1 += p.sum(axis=0)
-            p *= p
-            s2 += p.sum(axis=0)
+        if m:
+            rows = self._rows(x, m)
+            for j in range(0, m, _CHUNK):
+                p = self._chunk_power(rows, j, min(m, j + _CHUNK))
+                s1 += p.sum(axis=0)
+                p *= p
+                s2 += p.sum(axis=0)
         return np.fft.fftshift(s1), np.fft.fftshift(s2), m
+
+    def reset(self) -> None:
+        """Nothing to drop: a stateless channelizer keeps no history."""
+
+    # -------------------------------------------------------------- response
+    @staticmethod
+    def _enbw_from_response(h: np.ndarray, nchan: int, oversample: int = 8) -> float:
+        """ENBW of one channel in channels, from the filter's sampled frequency response.
+
+        ENBW = integral |H(f)|^2 df / |H(0)|^2 with f in channels (Harris 1978, eq. 11 for a
+        window). |H|^2 is sampled on ``oversample`` x L points of the unit circle by a
+        zero-padded DFT; for a length-L filter that sum is exact (discrete Parseval), so the
+        result equals N sum(h^2) / (sum h)^2.
+        """
+        H2 = np.abs(np.fft.fft(h, oversample * h.size)) ** 2
+        return float(nchan * H2.mean() / H2[0])
 
     @property
     def enbw_bins(self) -> float:
-        """Equivalent noise bandwidth of one channel in bins: integral |H|^2 / |H(0)|^2."""
-        # Parseval: mean of |H|^2 over the circle is sum h^2, |H(0)|^2 = (sum h)^2, one bin 1/N
-        h = self.coeffs.reshape(-1).astype(np.float64)
-        return float(self.nchan * np.sum(h ** 2) / np.sum(h) ** 2)
+        """Equivalent noise bandwidth of one channel, in channels (Hann FFT: 1.50, Harris 1978)."""
+        return self._enbw_bins
 
     def enbw_hz(self, sample_rate: float) -> float:
-        return self.enbw_bins * sample_rate / self.nchan
+        """Equivalent noise bandwidth of one channel in Hz: ENBW_bins * sample_rate / nchan."""
+        return self._enbw_bins * float(sample_rate) / self.nchan
+
+    def frame_correlation(self) -> np.ndarray:
+        """rho_l = sum_n h[n] h[n + lN] / sum h^2 for l = 0 .. taps - 1.
+
+        For white noise the complex output of a channel has correlation rho_l between spectra
+        l apart (the modulation exp(2 pi i k n / N) is the same after a shift of lN), so powers
+        l apart have correlation rho_l^2 (Gaussian moment theorem).
+        """
+        h = self.coeffs.reshape(-1).astype(np.float64)
+        n = self.nchan
+        return np.array([np.dot(h[: h.size - l * n], h[l * n:]) for l in range(self.taps)]) \
+            / np.dot(h, h)
+
+    @property
+    def expected_radiometer_efficiency(self) -> float:
+        """eta = 1 / sqrt(ENBW_bins * sum_l rho_l^2), from the coefficients alone.
+
+        Averaging M spectra of white noise leaves a relative scatter
+        sqrt(sum_{l=-(taps-1)}^{taps-1} rho_l^2 / M); the radiometer equation with B = ENBW and
+        tau = M N / fs gives 1 / sqrt(ENBW_bins M). Their ratio is eta: 1 / sqrt(1.5) = 0.816
+        for the Hann FFT without overlap (independent spectra, ENBW 1.5), close to 1 for the PFB.
+        """
+        rho = self.frame_correlation()
+        s = 1.0 + 2.0 * float(np.sum(rho[1:] ** 2))
+        return 1.0 / np.sqrt(self._enbw_bins * s)
+
+    def __repr__(self) -> str:
+        return (f"{type(self).__name__}(method={self.method!r}, nchan={self.nchan}, "
+                f"taps={self.taps}, window={self.window!r})")
 
 
-def make_channelizer(method: str, nchan: int, taps: int = 4) -> Channelizer:
-    """``pfb``: polyphase filterbank with ``taps`` taps; ``fft``: Hann-windowed FFT."""
+class StreamingChannelizer(Channelizer):
+    """Channelizer that carries history across calls, so chunks equal one long call.
+
+    Every sample not yet consumed by a spectrum (at least the last (taps - 1) N, plus any
+    partial frame) is kept and put in front of the next call's samples. :meth:`reset` drops it:
+    call it after every LO retune, and the next spectrum starts at the next sample given.
+    """
+
+    def __init__(self, *args, **kwargs):
+        super().__init__(*args, **kwargs)
+        self._history = np.zeros(0, dtype=np.complex64)
+
+    @property
+    def pending_samples(self) -> int:
+        """Samples held for the next call."""
+        return int(self._history.size)
+
+    def _prepare(self, x: np.ndarray):
+        x = np.asarray(x, dtype=np.complex64).reshape(-1)
+        if self._history.size:
+            x = np.concatenate([self._history, x])
+        m = self.n_spectra(x.size)
+        self._history = x[m * self.nchan:].copy()   # the next spectrum starts at sample m N
+        return x, m
+
+    def reset(self) -> None:
+        """Drop the history (after an LO retune)."""
+        self._history = np.zeros(0, dtype=np.complex64)
+
+
+def make_channelizer(method: str, nchan: int, taps: int = 4, window: str = "hann",
+                     streaming: bool = True) -> Channelizer:
+    """Build a channelizer.
+
+    Parameters
+    ----------
+    method : {"pfb", "fft"}
+        ``"pfb"``: critically sampled polyphase filterbank, prototype a sinc of width
+        :data:`PROTOTYPE_WIDTH` channels tapered by a symmetric ``window`` of length taps * N.
+        ``"fft"``: periodic ``window`` of length N, one DFT per N samples, no overlap
+        (``taps`` is ignored and set to 1).
+    nchan : int
+        Number of channels N (>= 2).
+    taps : int, optional
+        PFB taps (>= 1), default 4.
+    window : {"hann", "hamming", "blackman", "kaiser"}, optional
+        Taper of the PFB prototype or the FFT window; default Hann. Kaiser uses beta 8.6.
+    streaming : bool, optional
+        True (default): a :class:`StreamingChannelizer`, history kept across calls. False: the
+        stateless :class:`Channelizer`.
+
+    Returns
+    -------
+    Channelizer
+    """
+    nchan = int(nchan)
+    if nchan < 2:
+        raise ValueError(f"nchan must be at least 2, got {nchan}")
+    cls = StreamingChannelizer if streaming else Channelizer
     if method == "pfb":
+        taps = int(taps)
+        if taps < 1:
+            raise ValueError(f"taps must be at least 1, got {taps}")
         L = taps * nchan
         n = np.arange(L)
-        # the sinc is widened by 1.2 so neighbouring channels cross near -3 dB (about -3.2 dB)
-        # and the channel's ENBW is close to one bin; at 1.0 they would cross at -6 dB
-        h = np.sinc(_WIDTH * (n - (L - 1) / 2) / nchan) * np.hanning(L)   # symmetric Hann
-        return Channelizer(nchan, h, taps)
+        h = np.sinc(PROTOTYPE_WIDTH * (n - (L - 1) / 2) / nchan) * _window(window, L, False)
+        return cls(nchan, h, taps, method="pfb", window=window)
     if method == "fft":
-        k = np.arange(nchan)                      # periodic Hann, as for spectral analysis
-        return Channelizer(nchan, 0.5 - 0.5 * np.cos(2 * np.pi * k / nchan), 1)
+        return cls(nchan, _window(window, nchan, True), 1, method="fft", window=window)
     raise ValueError(f"unknown channelizer method {method!r}: expected 'pfb' or 'fft'")
 
 
+def power_sums(power: np.ndarray):
+    """Sums over spectra of power and power squared, for averages and spectral kurtosis.
+
+    Parameters
+    ----------
+    power : ndarray, shape (m, nchan)
+        Power spectra, e.g. from :meth:`Channelizer.power`.
+
+    Returns
+    -------
+    s1, s2 : ndarray of float64, shape (nchan,)
+        S1 = sum_j P_j and S2 = sum_j P_j^2, accumulated in float64.
+    m : int
+        Number of spectra.
+
+    Notes
+    -----
+    The spectral-kurtosis estimator (Nita & Gary 2010, MNRAS 406, L60) is
+    SK = (M + 1)/(M - 1) (M S2 / S1^2 - 1), which needs exactly these two sums.
+    """
+    p = np.asarray(power, dtype=np.float64)
+    if p.ndim != 2:
+        raise ValueError(f"power must be 2-D (m, nchan), got shape {p.shape}")
+    return p.sum(axis=0), (p * p).sum(axis=0), int(p.shape[0])
+
+
+#: Alias of :func:`power_sums`.
+accumulate = power_sums
