@@ -65,7 +65,7 @@ import numpy as np
 import scipy.fft
 
 __all__ = ["Channelizer", "StreamingChannelizer", "make_channelizer", "power_sums",
-           "accumulate", "WINDOWS", "PROTOTYPE_WIDTH"]
+           "WINDOWS", "PROTOTYPE_WIDTH"]
 
 #: Passband width W of the PFB prototype's sinc, in channels. At 1.0 neighbouring channels cross
 #: at -6 dB; at 1.2 (with the Hann taper over 4 taps) they cross near -3 dB and the channel's
@@ -374,4 +374,3 @@ def power_sums(power: np.ndarray):
 
 
 #: Alias of :func:`power_sums`.
-accumulate = power_sums

@@ -37,7 +37,6 @@ class RunResult:
     observed_s: float = 0.0
     lost_samples: int = 0
     recovered: list = field(default_factory=list)
-    dropped_partial: bool = False
 
 
 def check_output_dir(path: Path) -> Path:
@@ -108,8 +107,7 @@ class Daemon:
         self.nchan = sp["channels"]
         self.spectrometer = Spectrometer(self.nchan, sp["method"], sp["taps"])
         sch = self.source.schedule
-        block_s = self.source.block_samples / self.source.sample_rate if hasattr(
-            self.source, "sample_rate") else self.source.block_samples / cfg["source"]["sample_rate"]
+        block_s = self.source.block_samples / cfg["source"]["sample_rate"]
         self.block_s = block_s
         cycle = sch.blocks_per_cycle
         self.blocks_per_integration = cycle * max(1, math.ceil(sp["integration_s"] / (block_s * cycle)))
@@ -146,7 +144,6 @@ class Daemon:
                 break
             try:
                 writer.append(row)
-                counters["written"] += 1
             except OSError as exc:
                 counters["write_error"] = exc
                 self.log(f"error: cannot write integration to {writer}: {exc}")
@@ -215,7 +212,7 @@ class Daemon:
         writer = archive.ScanWriter(self.out_dir, scan, self._header(), self.nchan)
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         rows_q: queue.Queue = queue.Queue()
-        counters = {"dropped": 0, "written": 0, "error": None, "write_error": None}
+        counters = {"dropped": 0, "error": None, "write_error": None}
         reader = threading.Thread(target=self._reader, args=(blocks_q, counters), daemon=True,
                                   name="reader")
         wthread = threading.Thread(target=self._writer, args=(rows_q, writer, counters),
@@ -245,7 +242,6 @@ class Daemon:
         finally:
             self.stop_event.set()
             if n_blocks % self.blocks_per_integration:
-                result.dropped_partial = True
                 self.log(f"note: the unfinished integration ({(n_blocks % self.blocks_per_integration) * self.block_s:.1f} s) "
                          "was dropped; every finished one is saved")
             rows_q.put(_STOP)

@@ -40,6 +40,7 @@ _CHUNK = 65536                 # samples per frequency-domain shaping chunk
 _GAIN_REF_DB = 40.2            # gain at which the rms per component is _RMS_REF of full scale
 _RMS_REF = 0.16
 _GARBAGE_S = 0.004             # samples after a retune that are junk (PLL relocking)
+_TSYS_NOMINAL_K = 85.0         # Tsys at which the input rms is _RMS_REF at the reference gain
 _SKY_REFRESH_S = 5.0           # recompute the sky spectrum this often (simulated seconds)
 
 
@@ -128,7 +129,7 @@ class SimSource:
         psd = self._gain(t_rel_s) * self.bandpass * temp
         psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
         # scale so that the mean temperature at the nominal Tsys gives the reference rms
-        scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * 85.0)
+        scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * _TSYS_NOMINAL_K)
         amp = np.sqrt(_CHUNK * psd * scale / 2).astype(np.float32)
         n_chunks = self.block_samples // _CHUNK
         w = self.rng.standard_normal((n_chunks, 2, _CHUNK), dtype=np.float32)

@@ -95,7 +95,12 @@ def test_sim_line_where_the_model_galaxy_puts_it(sim_scan):
 def test_inspect_reports_line(sim_scan):
     r = _run(["inspect", str(sim_scan), "--json"])
     assert r.returncode == 0, r.stderr
-    assert "rows" in r.stdout
+    import json
+    summary = json.loads(r.stdout)
+    assert summary["rows"] >= 5 and summary["data_unit"] == "K"
+    # peak of first-quadrant gas at l = 30 deg lies between 0 and +120 km/s (fact of the trade)
+    assert 0 < summary["line_velocity_lsrk_km_s"] < 120
+    assert summary["tsys_mean_k"] == 85.0          # calibration.tsys_k default, as the header cites
 
 
 def _cu8(path, n, seed=3):
