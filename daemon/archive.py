@@ -19,7 +19,9 @@ integration::
               [row records only] DATA as float32[nchan], FLAGGED as uint8[nchan]
 
 The header record's meta is ``{"kind": "header", "format": 1, "scan", "nchan", "header"}``;
-a row record's meta is ``{"kind": "row", ...}`` with every scalar of the row. A reader walks
+a row record's meta is ``{"kind": "row", ...}`` with every scalar of the row. A system
+temperature record (one firing of the noise source) has meta ``{"kind": "tsys", ...}`` with
+its scalars (see :data:`TSYS_SCALARS`) and the per-channel T_sys as float32[nchan]. A reader walks
 the records in order and stops at the first one whose magic, length or CRC does not check
 out: since each record is fsync'ed before the next is begun, only the last record can be torn
 by a crash, and the CRC tells a torn or zero-filled tail from a whole record (the chance that
@@ -97,12 +99,27 @@ ROW_SCALARS = {
     "ELEVATIO": ("f", "deg"),
     "OBJECT": ("s", None),
 }
+#: Scalars of a system-temperature history record: name -> (kind, FITS unit or None).
+TSYS_SCALARS = {
+    "DATE-OBS": ("s", None),
+    "TSYS": ("f", "K"),
+    "TSYSSIG": ("f", "K"),
+    "TSYSREF": ("f", "K"),
+    "TCAL": ("f", "K"),
+    "ONOFF": ("f", None),
+    "NCHANUSE": ("f", None),
+    "STATUS": ("s", None),
+}
+TSYS_EXTNAME = "TSYS HISTORY"
 #: Every key a row must carry.
 REQUIRED_ROW_KEYS = ("DATA", "FLAGGED", *ROW_SCALARS)
 #: Units DATA may be stored in (header key ``BUNIT``).
 DATA_UNITS = ("K", "count")
 #: Unit of an extra column guessed from its name's suffix (LO_HZ -> Hz).
 _SUFFIX_UNITS = {"_HZ": "Hz", "_K": "K", "_S": "s", "_DEG": "deg", "_MS": "m/s"}
+#: Units of the extra columns the daemon writes (FITS keyword names cannot carry a suffix).
+EXTRA_UNITS = {"RA": "deg", "DEC": "deg", "CRVAL1A": "m/s", "CDELT1A": "m/s", "TSYSAGE": "s",
+               "CALTIME": "s", "UNKNTIME": "s"}
 #: Header keywords the FITS table structure owns (indexed ones: NAXISn, TTYPEn, ...).
 _STRUCTURAL_EXACT = {"SIMPLE", "XTENSION", "BITPIX", "PCOUNT", "GCOUNT", "TFIELDS", "EXTEND",
                      "THEAP", "END", "COMMENT", "HISTORY", "CONTINUE"}
@@ -258,6 +275,7 @@ class JournalContents:
     nchan: int | None = None
     header: dict | None = None
     rows: list = field(default_factory=list)
+    tsys: list = field(default_factory=list)
     intact_bytes: int = 0
     torn_bytes: int = 0
 
@@ -306,6 +324,12 @@ def read_journal(path: Path) -> JournalContents:
             if meta.get("kind") != "header" or meta.get("format") != JOURNAL_FORMAT:
                 break
             out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
+        elif meta.get("kind") == "tsys":
+            if len(arrays) != 4 * out.nchan:
+                break
+            rec = {k: meta[k] for k in TSYS_SCALARS if k in meta}
+            rec["TSYSCHAN"] = np.frombuffer(arrays, dtype="<f4", count=out.nchan).astype(np.float32)
+            out.tsys.append(rec)
         else:
             nchan = out.nchan
             if meta.get("kind") != "row" or len(arrays) != 5 * nchan:
@@ -332,8 +356,33 @@ def _utc_now_iso() -> str:
     return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None).isoformat(timespec="seconds")
 
 
-def _build_hdul(header: dict, nchan: int, rows: list):
-    """The FITS HDU list of one scan: empty primary HDU plus the SINGLE DISH BINTABLE."""
+def _tsys_hdu(tsys: list, nchan: int):
+    """The TSYS HISTORY BINTABLE: one row per firing of the noise source."""
+    from astropy.io import fits
+
+    cols = []
+    for key, (kind, unit) in TSYS_SCALARS.items():
+        if kind == "s":
+            values = [str(r.get(key, "")) for r in tsys]
+            width = max(8, max(len(v) for v in values))
+            cols.append(fits.Column(name=key, format=f"{width}A", array=np.array(values)))
+        else:
+            cols.append(fits.Column(name=key, format="D", unit=unit, array=np.array(
+                [float(r.get(key, np.nan)) for r in tsys], dtype=np.float64)))
+    cols.append(fits.Column(name="TSYSCHAN", format=f"{nchan}E", unit="K",
+                            array=np.stack([r["TSYSCHAN"] for r in tsys]).astype(np.float32)))
+    hdu = fits.BinTableHDU.from_columns(cols, nrows=len(tsys))
+    hdu.header["EXTNAME"] = (TSYS_EXTNAME, "system temperature from the noise source")
+    hdu.header["COMMENT"] = ("TSYS = TCAL sum(Poff) / sum(Pon - Poff) over line-free channels, "
+                             "mean of both switching phases; TSYSCHAN per channel, signal phase")
+    return hdu
+
+
+def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
+                products=None):
+    """The FITS HDU list of one scan: empty primary HDU, the SINGLE DISH BINTABLE, then the
+    TSYS HISTORY table (if the noise source fired) and any HDUs ``products(header, nchan, rows)``
+    returns (derived products, e.g. the baselined scan average)."""
     from astropy.io import fits
 
     now = _utc_now_iso()
@@ -361,7 +410,8 @@ def _build_hdul(header: dict, nchan: int, rows: list):
                 extra_keys.append(k)
     for key in extra_keys:
         values = [r.get(key) for r in rows]
-        unit = next((u for suf, u in _SUFFIX_UNITS.items() if key.endswith(suf)), None)
+        unit = EXTRA_UNITS.get(key) or next(
+            (u for suf, u in _SUFFIX_UNITS.items() if key.endswith(suf)), None)
         if all(isinstance(v, int) for v in values):  # every row has it, all integers
             cols.append(fits.Column(name=key, format="K", unit=unit,
                                     array=np.array(values, dtype=np.int64)))
@@ -390,14 +440,23 @@ def _build_hdul(header: dict, nchan: int, rows: list):
     primary.header["ORIGIN"] = (ORIGIN, "program that wrote this file")
     primary.header["DATE"] = (now, "UTC time this file was written")
     primary.header["TELESCOP"] = (str(header.get("TELESCOP", "")), "telescope")
-    return fits.HDUList([primary, table])
+    hdus = [primary, table]
+    if tsys:
+        hdus.append(_tsys_hdu(tsys, nchan))
+    if products is not None:
+        try:
+            hdus.extend(products(header, nchan, rows))
+        except Exception as exc:  # a derived product must never cost the measured data
+            log.error("derived products not written: %s", exc)
+    return fits.HDUList(hdus)
 
 
-def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows: list) -> Path:
+def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows: list,
+                       tsys: list | None = None, products=None) -> Path:
     """Write ``<scan>.fits`` via ``<scan>.fits.tmp`` + fsync + os.replace + fsync(folder)."""
     final = out_dir / f"{scan}.fits"
     tmp = out_dir / f"{scan}.fits.tmp"
-    hdul = _build_hdul(header, nchan, rows)
+    hdul = _build_hdul(header, nchan, rows, tsys, products)
     with open(tmp, "wb") as fh:  # "wb" truncates a .tmp a crashed run may have left
         hdul.writeto(fh)
         fh.flush()
@@ -434,7 +493,8 @@ class ScanWriter:
     before the error is raised, so later appends still land in a readable journal.
     """
 
-    def __init__(self, out_dir: Path, scan_name: str, header: dict, nchan: int):
+    def __init__(self, out_dir: Path, scan_name: str, header: dict, nchan: int, products=None):
+        self.products = products
         self.out_dir = Path(out_dir)
         self.nchan = int(nchan)
         if self.nchan < 1:
@@ -497,6 +557,26 @@ class ScanWriter:
         self._append_bytes(_row_record(row, self.nchan))
         self.rows += 1
 
+    def append_tsys(self, rec: dict) -> None:
+        """Write one system-temperature measurement (keys of :data:`TSYS_SCALARS` and
+        ``TSYSCHAN`` float[nchan]) to the journal; durable when this returns."""
+        if self._closed:
+            raise ValueError(f"{self.journal_path}: append after close")
+        meta: dict = {"kind": "tsys"}
+        for key, (kind, _unit) in TSYS_SCALARS.items():
+            value = rec[key]
+            if kind == "s":
+                if not isinstance(value, str) or not _is_ascii_text(value):
+                    raise ValueError(f"tsys {key}: {value!r} is not a printable ASCII string")
+                meta[key] = value
+            else:
+                meta[key] = float(value)
+        chan = rec.get("TSYSCHAN")
+        chan = np.full(self.nchan, np.nan) if chan is None else np.asarray(chan)
+        if chan.shape != (self.nchan,):
+            raise ValueError(f"tsys TSYSCHAN {chan.shape}: expected ({self.nchan},)")
+        self._append_bytes(_encode(meta, chan.astype("<f4").tobytes()))
+
     def close(self) -> Path | None:
         """Write ``<scan>.fits`` atomically from the journal and delete the journal.
 
@@ -513,7 +593,7 @@ class ScanWriter:
             path = None
             if contents.rows:
                 path = _write_fits_atomic(self.out_dir, self.scan_name, self.header,
-                                          self.nchan, contents.rows)
+                                          self.nchan, contents.rows, contents.tsys, self.products)
             self.journal_path.unlink()
             _fsync_dir(self.out_dir)
         finally:
@@ -525,7 +605,7 @@ class ScanWriter:
 # ----------------------------------------------------------------------------------------------
 # recovery and reading
 # ----------------------------------------------------------------------------------------------
-def recover(out_dir: Path) -> list[Path]:
+def recover(out_dir: Path, products=None) -> list[Path]:
     """Turn every journal a crashed run left in ``out_dir`` into its FITS file.
 
     For each ``*.journal`` not locked by a live writer: its intact records become
@@ -567,7 +647,7 @@ def recover(out_dir: Path) -> list[Path]:
                 continue
             if contents.rows:
                 path = _write_fits_atomic(out_dir, scan, contents.header, contents.nchan,
-                                          contents.rows)
+                                          contents.rows, contents.tsys, products)
                 written.append(path)
                 log.warning("recovered %d integrations of interrupted scan %s into %s; "
                             "dropped %d torn bytes", len(contents.rows), scan, path,

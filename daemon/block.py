@@ -21,9 +21,11 @@ class Block:
     sample_rate : complex samples per second
     t0_unix_s : time of the first sample, UTC, seconds since 1970 (simulated time for sim)
     phase : switching phase, ``"sig"`` or ``"ref"``
-    cal_on : whether the calibration noise source was on
+    cal_on : whether the calibration noise source was on; None when unknown (its switch failed):
+        such samples go neither into spectra nor into system-temperature measurements
     lost_before : complex samples lost between the previous block and this one
     settle_samples : leading samples to discard (the tuner settling after a hop)
+    index : number of this block in the run's switching schedule (0 for the first)
     """
 
     raw: np.ndarray
@@ -31,9 +33,10 @@ class Block:
     sample_rate: float
     t0_unix_s: float
     phase: str = SIG
-    cal_on: bool = False
+    cal_on: bool | None = False
     lost_before: int = 0
     settle_samples: int = 0
+    index: int = 0
 
     @property
     def n_samples(self) -> int:

@@ -1,22 +1,40 @@
 """From power sums to a spectrum: frequency-switched difference in kelvin, folding.
 
-Switched difference (per channel, baseband frequency f, reference LO = signal LO + offset):
+Per channel (baseband frequency f; reference LO = signal LO + offset) the mean powers are
+S(f) = G(f) [T_sys + T_s(f)] and R(f) = G(f) [T_sys + T_r(f)], with T_s, T_r the line seen in
+the signal and the reference phase and G(f) the receiver's gain and band-pass, which cancel in
+the ratios. Where only the signal phase holds the line (T_r = 0),
 
-    D(f) = T_sys (S(f) - R(f)) / R(f)
+    D_sig(f) = T_sys (S - R) / R = T_s(f)                               exactly;
 
-The receiver gain and band-pass cancel in the ratio. In sky frequency nu the line appears
-positive at nu_L and negative at nu_L - offset. In-band switching (|offset| less than half the
-band) is folded by shifting and averaging,
+where only the reference phase holds it (T_s = 0),
 
-    F(nu) = [D(nu) - D(nu - offset)] / 2,
+    D_ref(f) = T_sys (S - R) / S = -T_r(f)                              exactly.
+
+(The common single formula T_sys (S - R)/R would give -T_r T_sys/(T_sys + T_r) there: a
+strong line's negative copy would come out compressed, by 40 % for T_r = 60 K, T_sys = 85 K.)
+In sky frequency nu the line appears positive at nu_L in D_sig and negative at nu_L - offset in
+D_ref. In-band switching (|offset| less than half the band) is folded by shifting and averaging,
+
+    F(nu) = [D_sig(nu) - D_ref(nu - offset)] / 2,
 
 which puts both copies of the line on top of each other and lowers the noise by sqrt(2);
-channels without a partner in the band are flagged. Out-of-band switching is not folded.
-Total-power mode has no reference: its DATA stay in counts (mean power per channel).
+channels without a partner in the band are flagged. Folding leaves negative half-height
+ghosts at +- offset (choose an offset wider than the line). Out-of-band switching is not
+folded (D_sig alone). Total-power mode has no reference: its DATA stay in counts.
+
+Noise of the switched difference (radiometer equation, t_phase the time in each phase, B the
+channel's noise bandwidth): Delta D = sqrt(2) T_sys / sqrt(B t_phase); folding two independent
+copies divides it by sqrt(2).
+
+Main-beam scale: the antenna temperature T_A is divided by the main-beam efficiency,
+T_mb = T_A / eta_mb, when ``beam_efficiency`` < 1 (Kutner & Ulich 1981).
 
 References
 ----------
-Wilson, T. L., Rohlfs, K. & Huttemeister, S., Tools of Radio Astronomy (frequency switching).
+Wilson, T. L., Rohlfs, K. & Huttemeister, S., Tools of Radio Astronomy (frequency switching,
+radiometer equation).
+Kutner, M. L. & Ulich, B. L. 1981, ApJ 250, 341 (temperature scales, main-beam efficiency).
 """
 
 from __future__ import annotations
@@ -39,7 +57,7 @@ class Spectrum:
 
 
 def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: bool,
-              tsys_k: float, flag_dc: bool = True) -> Spectrum:
+              tsys_k: float, flag_dc: bool = True, beam_efficiency: float = 1.0) -> Spectrum:
     """Turn one integration's sums into a calibrated (or counts) spectrum.
 
     Parameters
@@ -50,7 +68,10 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
     switched : frequency switching on
     tsys_k : system temperature for the kelvin scale, K
     flag_dc : flag the channel at the LO (the dongle's DC spike), in both phases
+    beam_efficiency : main-beam efficiency eta_mb in (0, 1]; DATA = T_A / eta_mb
     """
+    if not 0 < beam_efficiency <= 1:
+        raise ValueError(f"main-beam efficiency {beam_efficiency!r}: expected 0 < eta <= 1")
     sig, ref = integ.sums[SIG], integ.sums[REF]
     flagged = np.zeros(nchan, dtype=bool)
     dc = nchan // 2
@@ -59,23 +80,26 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
             flagged[dc] = True
         return Spectrum(sig.mean().astype(np.float32), flagged, "count", sig.exposure_s, False)
     s, r = sig.mean(), ref.mean()
+    scale = tsys_k / beam_efficiency
     with np.errstate(divide="ignore", invalid="ignore"):
-        d = tsys_k * (s - r) / r
-    bad = ~np.isfinite(d)
-    d[bad] = 0.0
+        d_sig = scale * (s - r) / r            # the line seen in the signal phase
+        d_ref = scale * (s - r) / s            # minus the line seen in the reference phase
+    bad = ~np.isfinite(d_sig) | ~np.isfinite(d_ref)
+    d_sig[bad] = 0.0
+    d_ref[bad] = 0.0
     flagged |= bad
     exposure = sig.exposure_s + ref.exposure_s
     sh = int(shift_channels)
     if abs(sh) >= nchan // 2:
         if flag_dc:
             flagged[dc] = True
-        return Spectrum(d.astype(np.float32), flagged, "K", exposure, False)
-    # fold: F[k] = (D[k] - D[k - sh]) / 2 where 0 <= k - sh < nchan
+        return Spectrum(d_sig.astype(np.float32), flagged, "K", exposure, False)
+    # fold: F[k] = (D_sig[k] - D_ref[k - sh]) / 2 where 0 <= k - sh < nchan
     k = np.arange(nchan)
     partner = k - sh
     ok = (partner >= 0) & (partner < nchan)
     f = np.zeros(nchan)
-    f[ok] = 0.5 * (d[k[ok]] - d[partner[ok]])
+    f[ok] = 0.5 * (d_sig[k[ok]] - d_ref[partner[ok]])
     fl = ~ok | flagged
     fl[ok] |= flagged[partner[ok]]
     if flag_dc:

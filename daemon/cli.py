@@ -42,6 +42,15 @@ def build_parser() -> argparse.ArgumentParser:
                    help="simulator and replay run as fast as the CPU allows")
     r.add_argument("--sample-rate", type=float, metavar="HZ", help="overrides [source] sample_rate")
     r.add_argument("--center-freq", type=float, metavar="HZ", help="overrides [source] center_freq")
+    lo = sub.add_parser("loads", help="hot/cold-load (Y-factor) calibration, guided step by step")
+    lo.add_argument("--config", metavar="FILE", help="TOML configuration (every key has a default)")
+    lo.add_argument("--source", metavar="SRC", help="sim or rtlsdr (overrides [source] kind)")
+    lo.add_argument("--out", metavar="DIR", help="output folder (overrides [output] dir); the "
+                    "record goes to calibration.records or DIR/calibration")
+    lo.add_argument("--fast", action="store_true", help="simulator as fast as the CPU allows")
+    lo.add_argument("--yes", action="store_true",
+                    help="do not wait for Enter at each step (the loads are already in place, "
+                    "or the simulator places them)")
     i = sub.add_parser("inspect", help="summary of a saved FITS scan")
     i.add_argument("file", metavar="FILE")
     i.add_argument("--json", action="store_true", help="machine-readable output")
@@ -83,6 +92,43 @@ def _cmd_run(args) -> int:
     return 0
 
 
+def _cmd_loads(args) -> int:
+    from . import config as config_mod
+    from . import loads as loads_mod
+    from .loads_session import LoadsSession
+    from .pipeline import records_dir
+    from .sources import parse_source_option
+    cfg = config_mod.load(args.config)
+    over: dict = {}
+    if args.source:
+        over.setdefault("source", {}).update(parse_source_option(args.source))
+    if args.out:
+        over["output"] = {"dir": args.out}
+    config_mod.merge(cfg, over, origin="command line")
+
+    def prompt(step):
+        print(step.instruction if not args.yes else f"Step {step.number} of {step.total}: "
+              f"{step.title.lower()} ...", flush=True)
+        if not args.yes:
+            try:
+                input()
+            except EOFError:
+                raise KeyboardInterrupt from None
+
+    session = LoadsSession(cfg, prompt, fast=args.fast)
+    try:
+        record = session.run()
+    except KeyboardInterrupt:
+        print("cancelled: no calibration record written", file=sys.stderr)
+        return 130
+    path = loads_mod.save_record(record, records_dir(cfg))
+    tcal = (f", noise source {record.noise_source_k:.2f} K" if record.noise_source_k else "")
+    print(f"Y = {record.y:.4f}: Trx = {record.trx_k:.2f} K, Tsys on the cold sky = "
+          f"{record.tsys_cold_k:.2f} K, gain {record.gain_counts_per_k:.4g} counts/K{tcal}")
+    print(f"saved calibration record {record.name} to {path}")
+    return 0
+
+
 def _cmd_inspect(args) -> int:
     from .inspect_file import format_summary, summarize
     summary = summarize(Path(args.file))
@@ -99,7 +145,8 @@ def _cmd_bench(args) -> int:
 
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
-    handler = {"run": _cmd_run, "inspect": _cmd_inspect, "bench": _cmd_bench}[args.command]
+    handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
+               "bench": _cmd_bench}[args.command]
     from .sources import SourceError
     try:
         return handler(args)

@@ -34,7 +34,8 @@ class Key:
     def allowed(self) -> str:
         if self.choices:
             return "one of " + ", ".join(repr(c) for c in self.choices)
-        name = {float: "a number", int: "an integer", bool: "true or false", str: "a string"}[self.kind]
+        name = {float: "a number", int: "an integer", bool: "true or false", str: "a string",
+                list: "a list"}[self.kind]
         if self.lo is not None and self.hi is not None:
             return f"{name} from {self.lo:g} to {self.hi:g}"
         if self.lo is not None:
@@ -72,6 +73,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "gain_drift": Key(0.02, float, 0, 0.5, doc="peak fractional gain drift"),
         "gain_drift_period_s": Key(900.0, float, 1, 1e6, doc="period of the gain drift, s"),
         "rfi": Key(False, bool, doc="inject interference (carriers and bursts)"),
+        "noise_source_k": Key(70.0, float, 0, 5000,
+                              doc="true excess temperature of the simulated noise source, K"),
+        "ambient_k": Key(290.0, float, 200, 330, doc="physical temperature of the hot load, K"),
+        "cold_sky_k": Key(5.0, float, 2.7, 100, doc="true sky temperature toward the cold load, K"),
     },
     "spectrometer": {
         "channels": Key(1024, int, 64, 65536, doc="power of two"),
@@ -86,8 +91,38 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "settle_s": Key(0.02, float, 0, 1, doc="samples blanked after each hop, s"),
     },
     "calibration": {
-        "tsys_k": Key(85.0, float, 1, 5000, doc="system temperature used for the kelvin scale, K"),
-        "noise_source_k": Key(70.0, float, 0, 5000, doc="calibration noise source excess, K"),
+        "tsys_from": Key("noise_source", str, choices=("noise_source", "loads", "fixed"),
+                         doc="where Tsys for the kelvin scale comes from"),
+        "tsys_k": Key(85.0, float, 1, 5000, doc="tsys_from = 'fixed': the system temperature, K"),
+        "noise_source_k": Key(0.0, float, 0, 5000,
+                              doc="noise source excess temperature, K; 0: not given"),
+        "cal_interval_s": Key(60.0, float, 2, 86400, doc="noise source fired this often, s"),
+        "cal_on_s": Key(1.0, float, 0.05, 60,
+                        doc="noise source on per firing, s (whole switching cycles)"),
+        "tsys_max_age_s": Key(600.0, float, 10, 86400,
+                              doc="rows whose newest Tsys is older are flagged, s"),
+        "switch": Key("none", str, choices=("none", "command", "gpio"),
+                      doc="how the noise source is switched (the simulator has its own)"),
+        "switch_on_cmd": Key("", str, doc="switch = 'command': shell command turning it on"),
+        "switch_off_cmd": Key("", str, doc="switch = 'command': shell command turning it off"),
+        "switch_timeout_s": Key(5.0, float, 0.1, 60, doc="longest a switch command may take, s"),
+        "gpio_chip": Key("/dev/gpiochip0", str, doc="switch = 'gpio': GPIO character device"),
+        "gpio_line": Key(-1, int, -1, 1023, doc="switch = 'gpio': line offset; -1: not given"),
+        "gpio_active_low": Key(False, bool, doc="switch = 'gpio': the line is active low"),
+        "t_hot_k": Key(290.0, float, 200, 400, doc="hot load temperature (absorber), K"),
+        "t_cold_k": Key(10.0, float, 2.7, 150, doc="cold load temperature (cold sky), K"),
+        "loads_s": Key(5.0, float, 0.5, 600, doc="seconds measured on each load"),
+        "records": Key("", str, doc="folder of hot/cold records; empty: <output.dir>/calibration"),
+        "max_record_age_s": Key(21600.0, float, 60, 3.2e7,
+                                doc="a hot/cold record older than this is refused, s"),
+        "main_beam_efficiency": Key(1.0, float, 0.05, 1.0,
+                                    doc="eta_mb: DATA = T_A / eta_mb (1: antenna temperature)"),
+    },
+    "baseline": {
+        "mode": Key("auto", str, choices=("auto", "windows", "off"),
+                    doc="line-free channels found automatically, given as windows, or no fit"),
+        "order": Key(1, int, 0, 8, doc="polynomial order"),
+        "windows_km_s": Key([], list, doc="line-free LSRK velocity windows [[lo, hi], ...], km/s"),
     },
     "rfi": {
         "flag_dc": Key(True, bool, doc="flag the channel at the LO (DC spike)"),
@@ -112,8 +147,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
 
 
 def defaults() -> dict[str, dict[str, Any]]:
-    """A fresh dictionary of every key's default."""
-    return {s: {k: copy.copy(v.default) for k, v in keys.items()} for s, keys in SCHEMA.items()}
+    """A fresh dictionary of every key's default (deep copies: lists are not shared)."""
+    return {s: {k: copy.deepcopy(v.default) for k, v in keys.items()} for s, keys in SCHEMA.items()}
 
 
 def _check(section: str, key: str, value: Any) -> Any:
@@ -128,11 +163,27 @@ def _check(section: str, key: str, value: Any) -> Any:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
     if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
         raise ConfigError(f"config {where} = {value!r}: expected printable ASCII (it goes into FITS headers)")
+    if spec.kind is list:
+        return _check_windows(where, value)
     if spec.choices and value not in spec.choices:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
     return value
+
+
+def _check_windows(where: str, value: list) -> list:
+    """A list of [lo, hi] velocity pairs (km/s) with lo < hi."""
+    out = []
+    for w in value:
+        ok = (isinstance(w, list) and len(w) == 2
+              and all(isinstance(x, (int, float)) and not isinstance(x, bool)
+                      and math.isfinite(x) for x in w))
+        if not ok or not w[0] < w[1]:
+            raise ConfigError(f"config {where} = {value!r}: expected a list of [lo, hi] pairs of "
+                              f"numbers with lo < hi, e.g. [[-250, -150], [180, 250]]; {w!r} is not")
+        out.append([float(w[0]), float(w[1])])
+    return out
 
 
 def merge(cfg: dict, overrides: dict, origin: str = "config") -> dict:
@@ -167,6 +218,25 @@ def _cross_checks(cfg: dict) -> None:
     if sw["mode"] == "frequency" and abs(sw["offset_hz"]) < 4 * cfg["source"]["sample_rate"] / n:
         raise ConfigError(f"config switching.offset_hz = {sw['offset_hz']:g}: must be at least four "
                           "channels wide for frequency switching")
+    cal = cfg["calibration"]
+    if cal["cal_interval_s"] < 3 * cal["cal_on_s"]:
+        raise ConfigError(f"config calibration.cal_interval_s = {cal['cal_interval_s']:g}: must be "
+                          f"at least three times calibration.cal_on_s = {cal['cal_on_s']:g} (the "
+                          "noise source needs off time on both sides of each firing)")
+    if cal["t_cold_k"] >= cal["t_hot_k"]:
+        raise ConfigError(f"config calibration.t_cold_k = {cal['t_cold_k']:g}: must be below "
+                          f"calibration.t_hot_k = {cal['t_hot_k']:g}")
+    if cal["switch"] == "command":
+        for key, what in (("switch_on_cmd", "on"), ("switch_off_cmd", "off")):
+            if not cal[key].strip():
+                raise ConfigError(f"config calibration.{key} is empty: calibration.switch = "
+                                  f"'command' needs a command that turns the noise source {what}")
+    if cal["switch"] == "gpio" and cal["gpio_line"] < 0:
+        raise ConfigError("config calibration.gpio_line is not given: calibration.switch = 'gpio' "
+                          "needs the line offset (0-1023) on calibration.gpio_chip")
+    if cfg["baseline"]["mode"] == "windows" and not cfg["baseline"]["windows_km_s"]:
+        raise ConfigError("config baseline.windows_km_s is empty: baseline.mode = 'windows' needs "
+                          "at least one line-free [lo, hi] window in km/s")
 
 
 def load(path: str | Path | None = None) -> dict:

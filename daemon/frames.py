@@ -9,15 +9,36 @@ the correction is the projection of that velocity on the line of sight,
 
 since an observer moving toward the source at speed u sees it approach faster by u.
 
+Horizontal coordinates (azimuth from north through east, elevation above the horizon) come
+from astropy's AltAz frame with the air pressure set to zero, i.e. without refraction. At
+21 cm refraction lifts a source by some arcminutes at 10 deg elevation and less above (common
+practice), small against a small dish's beam of several degrees, and it would depend on the
+weather, which the daemon does not know.
+
+Offline Earth orientation. A dish often has no internet, so nothing here ever downloads:
+the Earth-orientation table (UT1-UTC, polar motion: the IERS-A "finals" file with about a
+year of predictions) and the leap-second table are the ones bundled in the
+``astropy-iers-data`` package. Beyond the table astropy holds UT1-UTC at its last value and
+uses a mean polar motion; UT1-UTC drifts by some tenths of a second a year, so positions
+degrade by a few arcseconds a year (15 arcsec per second of time), and VFRAME not measurably.
+:func:`check_eop` says so in one line (logged once per kind by every function here); the
+accuracy warnings that astropy and ERFA raise themselves in that case are silenced inside
+this module so that a ``-W error`` setting cannot stop the daemon over them.
+
 References
 ----------
 Gordon, M. A. 1976, in Methods of Experimental Physics 12C (the standard solar motion).
-Astropy Collaboration 2022, ApJ 935, 167 (astropy.coordinates, LSRK frame).
+Astropy Collaboration 2022, ApJ 935, 167 (astropy.coordinates, LSRK and AltAz frames).
+IERS Conventions 2010, IERS Technical Note 36 (UT1-UTC, polar motion, the finals tables).
 """
 
 from __future__ import annotations
 
+import contextlib
 import functools
+import logging
+import threading
+import warnings
 
 import numpy as np
 from astropy import units as u
@@ -25,71 +46,292 @@ from astropy.coordinates import (AltAz, EarthLocation, Galactic, ICRS,
                                  LSRK, SkyCoord)
 from astropy.time import Time
 from astropy.utils import iers
+from astropy.utils.exceptions import AstropyWarning
+from erfa import ErfaWarning
 
-# A dish often has no internet: never try to download Earth-orientation tables; the bundled
-# astropy-iers-data tables are used, and astropy warns itself when a time lies beyond them.
+# Never try to download Earth-orientation tables; use the bundled astropy-iers-data tables.
 iers.conf.auto_download = False
+# No age limit on the bundled table's predictions (astropy would refuse times past them).
 iers.conf.auto_max_age = None
+# Should the IERS-B table alone be in use, extrapolate with a warning instead of raising.
+iers.conf.iers_degraded_accuracy = "warn"
+
+#: The fix for an out-of-date table, quoted in :func:`check_eop`'s line.
+EOP_FIX = ("upgrade the astropy-iers-data package when the computer is online: "
+           "pip install -U astropy-iers-data")
+
+log = logging.getLogger("spinflip.frames")
+
+# warnings.catch_warnings changes process-wide state: one thread at a time in this module.
+_ASTROPY_LOCK = threading.RLock()
+_REPORTED: set = set()
 
 
+@contextlib.contextmanager
+def _quiet():
+    """Silence astropy's and ERFA's out-of-table accuracy warnings, one thread at a time.
+
+    Only accuracy warnings are silenced (IERS range/staleness, astropy's default polar motion
+    and UT1-UTC, ERFA's "dubious year"): deprecations and other warnings still show.
+    """
+    with _ASTROPY_LOCK, warnings.catch_warnings():
+        warnings.filterwarnings("ignore", category=iers.IERSWarning)
+        warnings.filterwarnings("ignore", category=iers.IERSDegradedAccuracyWarning)
+        warnings.filterwarnings("ignore", category=AstropyWarning,
+                                message=r".*(IERS|polar motion|UT1-UTC|leap.second)")
+        warnings.filterwarnings("ignore", category=ErfaWarning, message=r".*dubious year")
+        yield
+
+
+@contextlib.contextmanager
+def _offline(time: Time):
+    """:func:`_quiet`, and what astropy would have warned about logged once per kind."""
+    with _quiet():
+        _report_eop(time)
+        yield
+
+
+def _report_eop(time: Time) -> None:
+    cov = eop_coverage(time)
+    kind = (cov["beyond_eop"], cov["beyond_leap"])
+    if any(kind) and kind not in _REPORTED:
+        _REPORTED.add(kind)
+        log.warning(check_eop(time))
+
+
+def _float_or_array(x):
+    a = np.asarray(x, dtype=float)
+    return float(a) if a.ndim == 0 else a
+
+
+# ----------------------------------------------------------------------------------------------
+# Earth-orientation coverage
+# ----------------------------------------------------------------------------------------------
+@functools.lru_cache(maxsize=1)
+def _eop_limits() -> dict:
+    """Last MJD with UT1-UTC and polar motion, leap-second expiry MJD, their dates, table file.
+
+    Read once, offline (the tables cannot change while nothing is downloaded).
+    """
+    with _quiet():
+        table = iers.earth_orientation_table.get()
+        # Flags: B = bulletin B (final), I = IERS-A measured, P = IERS-A prediction; a row
+        # without a flag has no value.
+        has = (np.isin(np.asarray(table["UT1Flag"]), ["B", "I", "P"])
+               & np.isin(np.asarray(table["PolPMFlag"]), ["B", "I", "P"])
+               & np.isfinite(np.asarray(table["UT1_UTC"].value, dtype=float)))
+        end_mjd = float(np.asarray(table["MJD"].value)[has][-1])
+        leap_mjd = float(iers.LeapSeconds.auto_open().expires.mjd)
+    return {"eop_end_mjd": end_mjd, "eop_end_date": _mjd_date(end_mjd),
+            "leap_expires_mjd": leap_mjd, "leap_expires_date": _mjd_date(leap_mjd),
+            "eop_file": str(table.meta.get("data_path", "?"))}
+
+
+def _mjd_date(mjd: float) -> str:
+    with _quiet():
+        return Time(mjd, format="mjd", scale="utc").iso[:10]
+
+
+def eop_coverage(time: Time) -> dict:
+    """How far the bundled Earth-orientation and leap-second tables reach, and ``time``.
+
+    Parameters
+    ----------
+    time : an instant or an array of instants (the latest one is judged)
+
+    Returns
+    -------
+    dict with ``eop_end_mjd`` / ``eop_end_date`` (last day with UT1-UTC and polar motion,
+    IERS-A predictions included), ``leap_expires_mjd`` / ``leap_expires_date`` (expiry of the
+    leap-second table), ``time_mjd`` (latest instant asked, UTC), ``beyond_eop`` and
+    ``beyond_leap`` (bool), ``eop_file`` (path of the table read).
+
+    Notes
+    -----
+    Nothing is downloaded (``iers.conf.auto_download`` is False in this module).
+    """
+    limits = _eop_limits()
+    with _quiet():
+        t_mjd = float(np.max(np.atleast_1d(time.utc.mjd)))
+    return {**limits, "time_mjd": t_mjd, "beyond_eop": t_mjd > limits["eop_end_mjd"],
+            "beyond_leap": t_mjd > limits["leap_expires_mjd"]}
+
+
+def check_eop(time: Time) -> str | None:
+    """One line of warning when ``time`` lies beyond the bundled tables, else None.
+
+    Parameters
+    ----------
+    time : an instant or an array of instants (the latest one is judged)
+
+    Returns
+    -------
+    str or None : names the table's last date, what degrades, and the fix (:data:`EOP_FIX`).
+
+    Notes
+    -----
+    Past the Earth-orientation table astropy keeps UT1-UTC at its last value; UT1-UTC changes
+    by some tenths of a second a year and one second of time is 15 arcsec of sky, so az/el
+    drift by a few arcseconds a year (common practice). Past the leap-second table's expiry a
+    leap second may have been inserted that this computer does not know: times would be one
+    second off (15 arcsec). Both are small against a 21 cm beam; VFRAME is unaffected at the
+    m/s level.
+    """
+    cov = eop_coverage(time)
+    parts = []
+    if cov["beyond_eop"]:
+        parts.append(f"Earth-orientation predictions end {cov['eop_end_date']} (bundled IERS-A "
+                     f"table), so az/el for {_mjd_date(cov['time_mjd'])} use extrapolated "
+                     "UT1-UTC and mean polar motion (a few arcsec per year past the end)")
+    if cov["beyond_leap"]:
+        parts.append(f"the leap-second table expired {cov['leap_expires_date']}, so a later "
+                     "leap second would be missed (1 s = 15 arcsec)")
+    if not parts:
+        return None
+    return "; ".join(parts) + "; " + EOP_FIX
+
+
+# ----------------------------------------------------------------------------------------------
+# site, velocity, positions
+# ----------------------------------------------------------------------------------------------
 @functools.lru_cache(maxsize=8)
 def site_location(lat_deg: float, lon_deg: float, height_m: float) -> EarthLocation:
     """Geodetic site (WGS84) as an astropy EarthLocation."""
     return EarthLocation.from_geodetic(lon_deg * u.deg, lat_deg * u.deg, height_m * u.m)
 
 
-def vframe_lsrk_m_s(target: SkyCoord, location: EarthLocation, time: Time) -> float:
+def _altaz(location: EarthLocation, time: Time) -> AltAz:
+    """Horizontal frame at a site and time, without refraction (zero air pressure)."""
+    return AltAz(obstime=time, location=location, pressure=0 * u.hPa)
+
+
+def vframe_lsrk_m_s(target: SkyCoord, location: EarthLocation, time: Time):
     """LSRK radio velocity (m/s) of something at rest relative to the telescope.
 
     Parameters
     ----------
     target : direction observed (any frame)
     location : the site
-    time : UTC instant (mid-integration)
+    time : UTC instant (mid-integration); an array of instants gives an array
 
     Returns
     -------
-    float : VFRAME in m/s, so that v_LSRK = v_topocentric + VFRAME.
+    float (or ndarray for array input) : VFRAME in m/s, so that v_LSRK = v_topocentric + VFRAME.
+
+    Notes
+    -----
+    v_obs,LSRK is the site's GCRS velocity (rotation + orbit) carried into astropy's LSRK
+    frame; n_hat = (cos d cos a, cos d sin a, sin d) from the ICRS right ascension a and
+    declination d; VFRAME = v_obs,LSRK . n_hat.
     """
-    gcrs = location.get_gcrs(time)
-    lsrk = gcrs.transform_to(LSRK())
-    vel = lsrk.velocity  # CartesianDifferential in the LSRK (ICRS-aligned) axes
-    v = np.array([vel.d_x.to_value(u.m / u.s), vel.d_y.to_value(u.m / u.s),
-                  vel.d_z.to_value(u.m / u.s)])
-    icrs = target.transform_to(ICRS())
+    with _offline(time):
+        lsrk = location.get_gcrs(time).transform_to(LSRK())
+        v_m_s = lsrk.velocity.d_xyz.to_value(u.m / u.s)   # (3, ...) in ICRS-aligned axes
+        icrs = target.transform_to(ICRS())
     ra, dec = icrs.ra.rad, icrs.dec.rad
     n = np.array([np.cos(dec) * np.cos(ra), np.cos(dec) * np.sin(ra), np.sin(dec)])
-    return float(v @ n)
+    ndim = max(v_m_s.ndim, n.ndim)   # broadcast times against directions
+    v_m_s = v_m_s.reshape(v_m_s.shape + (1,) * (ndim - v_m_s.ndim))
+    n = n.reshape(n.shape + (1,) * (ndim - n.ndim))
+    return _float_or_array(np.sum(v_m_s * n, axis=0))
+
+
+def _sky_coord(frame: str, lon_deg, lat_deg) -> SkyCoord:
+    if frame == "galactic":
+        return SkyCoord(l=np.asarray(lon_deg) * u.deg, b=np.asarray(lat_deg) * u.deg,
+                        frame=Galactic())
+    if frame == "radec":
+        return SkyCoord(ra=np.asarray(lon_deg) * u.deg, dec=np.asarray(lat_deg) * u.deg,
+                        frame=ICRS())
+    raise ValueError(f"sky frame {frame!r} is not one of 'galactic', 'radec'")
+
+
+def sky_to_azel(frame: str, lon_deg, lat_deg, location: EarthLocation, time: Time):
+    """(azimuth, elevation) in deg of a sky position at a site and time; no refraction.
+
+    Parameters
+    ----------
+    frame : "galactic" (lon, lat = l, b) or "radec" (ICRS right ascension, declination)
+    lon_deg, lat_deg : the position, deg (scalars, or arrays broadcasting with ``time``)
+    location : the site (an EarthLocation, possibly an array)
+    time : UTC instant(s)
+
+    Returns
+    -------
+    (az_deg, el_deg) : azimuth from north through east and elevation, deg (floats for
+    scalar input).
+
+    Raises
+    ------
+    ValueError : for a frame other than "galactic" or "radec".
+    """
+    coord = _sky_coord(frame, lon_deg, lat_deg)
+    with _offline(time):
+        aa = coord.transform_to(_altaz(location, time))
+    return _float_or_array(aa.az.deg), _float_or_array(aa.alt.deg)
+
+
+def azel_to_sky(az_deg, el_deg, location: EarthLocation, time: Time) -> dict:
+    """GLON, GLAT, RA, DEC (deg) seen at a fixed azimuth and elevation (a drift scan).
+
+    Parameters
+    ----------
+    az_deg, el_deg : azimuth from north through east and elevation, deg; no refraction
+    location : the site (an EarthLocation, possibly an array)
+    time : UTC instant(s); arrays give arrays (the sky drifting through the beam)
+
+    Returns
+    -------
+    dict : ``GLON``, ``GLAT`` (Galactic), ``RA``, ``DEC`` (ICRS), deg.
+    """
+    aa = SkyCoord(az=np.asarray(az_deg) * u.deg, alt=np.asarray(el_deg) * u.deg,
+                  frame=_altaz(location, time))
+    with _offline(time):
+        icrs = aa.transform_to(ICRS())
+        gal = icrs.transform_to(Galactic())
+    return {"GLON": _float_or_array(gal.l.deg), "GLAT": _float_or_array(gal.b.deg),
+            "RA": _float_or_array(icrs.ra.deg), "DEC": _float_or_array(icrs.dec.deg)}
 
 
 def galactic_to_altaz(glon_deg: float, glat_deg: float, location: EarthLocation,
                       time: Time) -> tuple[float, float]:
     """(azimuth, elevation) in deg of a Galactic position; no refraction."""
-    aa = SkyCoord(l=glon_deg * u.deg, b=glat_deg * u.deg, frame=Galactic()).transform_to(
-        AltAz(obstime=time, location=location))
-    return float(aa.az.deg), float(aa.alt.deg)
+    return sky_to_azel("galactic", glon_deg, glat_deg, location, time)
 
 
 def pointing_coord(frame: str, lon_deg: float, lat_deg: float, location: EarthLocation,
                    time: Time) -> SkyCoord:
     """The sky position observed at ``time`` for a pointing (``azel`` = fixed, drifting)."""
-    if frame == "galactic":
-        return SkyCoord(l=lon_deg * u.deg, b=lat_deg * u.deg, frame=Galactic())
-    if frame == "radec":
-        return SkyCoord(ra=lon_deg * u.deg, dec=lat_deg * u.deg, frame=ICRS())
+    if frame in ("galactic", "radec"):
+        return _sky_coord(frame, lon_deg, lat_deg)
     if frame == "azel":
-        aa = SkyCoord(az=lon_deg * u.deg, alt=lat_deg * u.deg,
-                      frame=AltAz(obstime=time, location=location))
-        return aa.transform_to(ICRS())
-    raise ValueError(f"unknown pointing frame {frame!r}")
+        aa = SkyCoord(az=lon_deg * u.deg, alt=lat_deg * u.deg, frame=_altaz(location, time))
+        with _offline(time):
+            return aa.transform_to(ICRS())
+    raise ValueError(f"unknown pointing frame {frame!r}: use 'galactic', 'radec' or 'azel'")
 
 
 def describe(coord: SkyCoord, location: EarthLocation, time: Time) -> dict:
-    """GLON, GLAT, AZIMUTH, ELEVATIO (deg) of a position at a time and site."""
-    gal = coord.transform_to(Galactic())
-    aa = coord.transform_to(AltAz(obstime=time, location=location))
-    return {"GLON": float(gal.l.deg), "GLAT": float(gal.b.deg),
-            "AZIMUTH": float(aa.az.deg), "ELEVATIO": float(aa.alt.deg)}
+    """Where a position is: GLON, GLAT, RA, DEC, AZIMUTH, ELEVATIO (deg) at a time and site.
+
+    Parameters
+    ----------
+    coord : the position (any frame)
+    location : the site
+    time : UTC instant(s)
+
+    Returns
+    -------
+    dict : ``GLON``, ``GLAT`` (Galactic), ``RA``, ``DEC`` (ICRS), ``AZIMUTH`` (from north
+    through east), ``ELEVATIO`` (no refraction), deg; floats for a scalar position and time.
+    """
+    with _offline(time):
+        icrs = coord.transform_to(ICRS())
+        gal = icrs.transform_to(Galactic())
+        aa = icrs.transform_to(_altaz(location, time))
+    return {"GLON": _float_or_array(gal.l.deg), "GLAT": _float_or_array(gal.b.deg),
+            "RA": _float_or_array(icrs.ra.deg), "DEC": _float_or_array(icrs.dec.deg),
+            "AZIMUTH": _float_or_array(aa.az.deg), "ELEVATIO": _float_or_array(aa.alt.deg)}
 
 
 def best_plane_longitude(location: EarthLocation, time: Time, min_elevation_deg: float) -> float:
@@ -99,9 +341,7 @@ def best_plane_longitude(location: EarthLocation, time: Time, min_elevation_deg:
     higher than ``min_elevation_deg + 15``; otherwise the highest point of the plane.
     """
     grid = np.arange(0.0, 360.0, 5.0)
-    aa = SkyCoord(l=grid * u.deg, b=np.zeros_like(grid) * u.deg, frame=Galactic()).transform_to(
-        AltAz(obstime=time, location=location))
-    el = aa.alt.deg
+    _az, el = sky_to_azel("galactic", grid, np.zeros_like(grid), location, time)
     first = (grid >= 20) & (grid <= 90)
     if np.max(el[first]) > min_elevation_deg + 15:
         return float(grid[first][np.argmax(el[first])])

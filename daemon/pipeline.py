@@ -1,5 +1,15 @@
 """The acquisition daemon's main loop: source -> spectrometer -> calibrator -> archive.
 
+System temperature (:class:`TsysPlan` says where it comes from, and the FITS header cites it):
+``calibration.tsys_from = "noise_source"`` fires the noise source on the schedule's cadence and
+measures T_sys at every firing (:mod:`spinflip.daemon.tsys`); each row takes the newest
+measurement finished by the time the row is, and its age (TSYSAGE). Rows finished before the
+first measurement wait for it. A failed measurement is an error event; a row whose newest
+T_sys is older than ``calibration.tsys_max_age_s`` is saved with every channel flagged, so no
+spectrum is ever silently on a wrong scale. ``"loads"`` takes T_sys on the cold sky from the
+newest hot/cold record (:mod:`spinflip.daemon.loads`), refused when too old or measured at other
+receiver settings; ``"fixed"`` takes ``calibration.tsys_k``.
+
 Threads: a reader thread pulls Blocks from the source into a bounded queue; the DSP loop (the
 calling thread; numpy releases the GIL) consumes it; finished rows go to a writer thread whose
 journal append (with fsync) never blocks the DSP loop. For a live source (the dongle, or the
@@ -17,14 +27,24 @@ import threading
 from dataclasses import dataclass, field
 from pathlib import Path
 
+import numpy as np
 from astropy.time import Time
 
+import functools
+
 from . import archive, frames
+from . import loads as loads_mod
+from .cal_control import CalControl
 from .calibrate import calibrate
 from .config import ConfigError
-from .lines import HI_REST_FREQ_HZ
+from .kinematics import expected_velocity_range_km_s
+from .lines import HI_REST_FREQ_HZ, radio_velocity_m_s
+from .noise_switch import NoiseSwitchError, make_noise_switch
+from .scan_product import scan_products
 from .sources import SourceError, make_source
+from .spectral_axis import velocity_wcs_m_s
 from .spectrometer import Spectrometer
+from .tsys import TsysMeter
 
 _QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
 _STOP = object()
@@ -50,6 +70,82 @@ def check_output_dir(path: Path) -> Path:
     except OSError as exc:
         raise ConfigError(f"output folder {path}: not writable ({exc.strerror or exc})") from None
     return path
+
+
+@dataclass
+class TsysPlan:
+    """Where the kelvin scale's system temperature comes from, and the FITS cards citing it."""
+
+    kind: str                 # "noise_source", "loads", "fixed" or "none"
+    tsys_k: float = float("nan")       # loads / fixed: the value
+    tcal_k: float = float("nan")       # noise_source: the source's excess temperature
+    text: str = ""                     # TSYSSRC
+    cards: dict = field(default_factory=dict)
+    record: object = None
+
+
+def records_dir(cfg: dict) -> Path:
+    """Folder of hot/cold records: ``calibration.records`` or ``<output.dir>/calibration``."""
+    folder = cfg["calibration"]["records"] or str(Path(cfg["output"]["dir"]) / "calibration")
+    return Path(folder).expanduser()
+
+
+def _usable_record(cfg: dict, now_unix_s: float):
+    """The newest hot/cold record, checked for age and receiver settings (LoadsError if not)."""
+    folder = records_dir(cfg)
+    record = loads_mod.latest_record(folder)
+    if record is None:
+        return None
+    cal, src = cfg["calibration"], cfg["source"]
+    loads_mod.check_record_age(record, now_unix_s, cal["max_record_age_s"])
+    loads_mod.check_record_matches(record, src["gain"], src["center_freq"], src["sample_rate"])
+    return record
+
+
+def plan_tsys(cfg: dict, source_kind: str, now_unix_s: float) -> TsysPlan:
+    """Resolve ``[calibration]`` into a :class:`TsysPlan`, or ConfigError (exit 2) naming why."""
+    cal = cfg["calibration"]
+    how = cal["tsys_from"]
+    if source_kind == "replay" and how == "noise_source":
+        return TsysPlan("none", text="none: a capture cannot fire a noise source")
+    if how == "fixed":
+        return TsysPlan("fixed", tsys_k=cal["tsys_k"], text="fixed: calibration.tsys_k",
+                        cards={"TSYSFIX": cal["tsys_k"]})
+    try:
+        record = _usable_record(cfg, now_unix_s)
+    except loads_mod.LoadsError as exc:
+        if how == "loads" or (how == "noise_source" and cal["noise_source_k"] <= 0
+                              and source_kind != "sim"):
+            raise ConfigError(str(exc)) from None
+        record = None
+    if how == "loads":
+        if record is None:
+            raise ConfigError(f"calibration.tsys_from = 'loads' but there is no hot/cold record in "
+                              f"{records_dir(cfg)}: run 'spinflip loads' first")
+        return TsysPlan("loads", tsys_k=record.tsys_cold_k, record=record,
+                        text=f"loads record {record.name}: Trx + Tcold",
+                        cards=loads_mod.header_cards(record))
+    # the noise source
+    if cal["noise_source_k"] > 0:
+        tcal, why = cal["noise_source_k"], "calibration.noise_source_k"
+    elif record is not None and record.noise_source_k:
+        tcal, why = record.noise_source_k, f"loads record {record.name}"
+    elif source_kind == "sim":
+        tcal, why = cfg["sim"]["noise_source_k"], "sim.noise_source_k (simulated)"
+    else:
+        raise ConfigError("config calibration.noise_source_k is not given (0): calibration.tsys_from"
+                          " = 'noise_source' needs the noise source's excess temperature in K "
+                          "(> 0), or a hot/cold record that measured it, or tsys_from = 'loads' "
+                          "or 'fixed'")
+    if source_kind == "rtlsdr" and cal["switch"] == "none":
+        raise ConfigError("config calibration.switch = 'none': calibration.tsys_from = "
+                          "'noise_source' needs a way to switch it ('command' or 'gpio')")
+    cards = {"TCAL": tcal, "TCALSRC": why, "CALEVERY": cal["cal_interval_s"],
+             "CALON": cal["cal_on_s"]}
+    if record is not None and why.startswith("loads"):
+        cards.update(loads_mod.header_cards(record))
+    return TsysPlan("noise_source", tcal_k=tcal, cards=cards,
+                    text=f"noise source, TCAL {tcal:g} K from {why}", record=record)
 
 
 class Pointing:
@@ -85,6 +181,7 @@ class Daemon:
         self.fast = fast
         self.duration_s = duration_s
         self.log = log or (lambda msg: print(msg, file=sys.stderr, flush=True))
+        self.events: list = []          # (severity, text), newest last
         self.stop_event = threading.Event()
         self.out_dir = check_output_dir(Path(cfg["output"]["dir"]))
         self.source = make_source(cfg, fast=fast)
@@ -92,6 +189,14 @@ class Daemon:
         self.location = frames.site_location(site["lat"], site["lon"], site["height_m"])
         t_start = getattr(self.source, "t_start", None) or Time.now()
         self.t_start = t_start
+        self.tsys_plan = plan_tsys(cfg, self.source.kind, float(Time.now().unix))
+        try:
+            self.switch = make_noise_switch(cfg["calibration"])
+        except ValueError as exc:
+            raise ConfigError(str(exc)) from None
+        if hasattr(self.source, "cal"):
+            self.source.cal = CalControl(self.switch if self.switch.can_switch else None,
+                                         event=self.event)
         self.pointing = Pointing(cfg, self.location, t_start)
         if self.pointing.frame != "azel":
             el = frames.describe(self.pointing(t_start), self.location, t_start)["ELEVATIO"]
@@ -103,6 +208,9 @@ class Daemon:
                               f"{cfg['pointing']['min_elevation']:g} deg")
         if hasattr(self.source, "pointing"):
             self.source.pointing = self.pointing
+        eop = frames.check_eop(t_start)
+        if eop:
+            self.event("warning", eop)
         sp = cfg["spectrometer"]
         self.nchan = sp["channels"]
         self.spectrometer = Spectrometer(self.nchan, sp["method"], sp["taps"])
@@ -111,7 +219,29 @@ class Daemon:
         self.block_s = block_s
         cycle = sch.blocks_per_cycle
         self.blocks_per_integration = cycle * max(1, math.ceil(sp["integration_s"] / (block_s * cycle)))
+        self.meter = (TsysMeter(cycle, self.nchan, self.tsys_plan.tcal_k, self._emission_mask)
+                      if self.tsys_plan.kind == "noise_source" else None)
+        self.tsys_now = None            # newest good TsysMeasurement
+        self.pending: list = []         # integrations waiting for the first measurement
+        self._warned: set = set()
 
+    def _emission_mask(self, phase: str, t_unix_s: float) -> np.ndarray:
+        """bool[nchan]: channels of ``phase`` where HI of the current pointing may appear."""
+        t = Time(t_unix_s, format="unix", scale="utc")
+        coord = self.pointing(t)
+        pos = frames.describe(coord, self.location, t)
+        vframe = frames.vframe_lsrk_m_s(coord, self.location, t)
+        v_lo, v_hi = expected_velocity_range_km_s(pos["GLON"], pos["GLAT"])
+        sch = self.source.schedule
+        f = sch.lo_of(phase) + (np.arange(self.nchan) - self.nchan // 2) * sch.channel_hz
+        v = (radio_velocity_m_s(f) + vframe) / 1e3
+        return (v >= v_lo) & (v <= v_hi)
+
+    def event(self, severity: str, text: str) -> None:
+        """An event the observer must see: logged now (and kept for the publisher)."""
+        self.events.append((severity, text))
+        del self.events[:-200]
+        self.log(f"{severity}: {text}")
 
     # -- the threads -----------------------------------------------------------------------
     def _reader(self, q: queue.Queue, counters: dict) -> None:
@@ -143,60 +273,137 @@ class Daemon:
             if row is _STOP:
                 break
             try:
-                writer.append(row)
+                if isinstance(row, tuple):
+                    writer.append_tsys(row[1])
+                else:
+                    writer.append(row)
             except OSError as exc:
                 counters["write_error"] = exc
                 self.log(f"error: cannot write integration to {writer}: {exc}")
 
     # -- one row ---------------------------------------------------------------------------
+    def _warn_once(self, key: str, severity: str, text: str) -> None:
+        if key not in self._warned:
+            self._warned.add(key)
+            self.event(severity, text)
+
+    def _tsys_for(self, t_end_s: float) -> tuple[float, float, bool]:
+        """(T_sys for the kelvin scale, its age in s (NaN if not measured), trustworthy)."""
+        plan = self.tsys_plan
+        if plan.kind in ("fixed", "loads"):
+            return plan.tsys_k, float("nan"), True
+        if plan.kind == "none" or self.tsys_now is None:
+            return float("nan"), float("nan"), False
+        age = t_end_s - self.tsys_now.t_unix_s
+        return self.tsys_now.tsys_k, age, age <= self.cfg["calibration"]["tsys_max_age_s"]
+
     def _row(self, integ) -> dict:
         cfg = self.cfg
         sch = self.source.schedule
         switched = sch.mode == "frequency"
-        spec = calibrate(integ, self.nchan, sch.shift_channels, switched,
-                         cfg["calibration"]["tsys_k"], cfg["rfi"]["flag_dc"])
+        tsys, age, trusted = self._tsys_for(integ.t_last_s)
+        scale_k = tsys if np.isfinite(tsys) else cfg["calibration"]["tsys_k"]
+        spec = calibrate(integ, self.nchan, sch.shift_channels, switched, scale_k,
+                         cfg["rfi"]["flag_dc"], cfg["calibration"]["main_beam_efficiency"])
         t_mid = Time((integ.t_first_s + integ.t_last_s) / 2, format="unix", scale="utc")
         coord = self.pointing(t_mid)
         pos = frames.describe(coord, self.location, t_mid)
         vframe = frames.vframe_lsrk_m_s(coord, self.location, t_mid)
         fs = self.source.schedule.channel_hz * self.nchan
+        flagged = spec.flagged
+        if spec.unit == "K" and not trusted:
+            flagged = np.ones_like(flagged)      # on no trustworthy scale: kept, all flagged
+            if not np.isfinite(tsys):
+                self._warn_once("no-tsys", "error", "no system temperature measured yet: rows are"
+                                f" saved fully flagged, scaled with calibration.tsys_k = "
+                                f"{cfg['calibration']['tsys_k']:g} K as a placeholder")
+            else:
+                self._warn_once("old-tsys", "error", f"newest system temperature is {age:.0f} s old"
+                                f" (> calibration.tsys_max_age_s): rows are saved fully flagged")
+        if pos["ELEVATIO"] < cfg["pointing"]["min_elevation"]:
+            flagged = np.ones_like(flagged)
+            self._warn_once("low-el", "error", f"{self.pointing.object} is at elevation "
+                            f"{pos['ELEVATIO']:.1f} deg, below pointing.min_elevation = "
+                            f"{cfg['pointing']['min_elevation']:g} deg: rows are saved fully flagged")
+        crpix1 = self.nchan // 2 + 1.0
+        cdelt1 = fs / self.nchan
+        crval1a, cdelt1a = velocity_wcs_m_s(sch.sig_lo_hz, cdelt1, HI_REST_FREQ_HZ, vframe)
         row = {
-            "DATA": spec.data, "FLAGGED": spec.flagged,
-            "TSYS": cfg["calibration"]["tsys_k"] if spec.unit == "K" else 0.0,
+            "DATA": spec.data, "FLAGGED": flagged,
+            "TSYS": tsys,
             "EXPOSURE": spec.exposure_s,
             "DATE-OBS": t_mid.isot,
-            "CRVAL1": sch.sig_lo_hz, "CDELT1": fs / self.nchan, "CRPIX1": self.nchan // 2 + 1.0,
+            "CRVAL1": sch.sig_lo_hz, "CDELT1": cdelt1, "CRPIX1": crpix1,
             "CTYPE1": "FREQ", "RESTFREQ": HI_REST_FREQ_HZ, "VFRAME": vframe,
             "OBJECT": self.pointing.object, **pos,
+            "CRVAL1A": crval1a, "CDELT1A": cdelt1a, "CRPIX1A": crpix1,
+            "TSYSAGE": age,
             "LOSTSAMP": int(integ.lost_samples), "BLANKSMP": int(integ.blanked_samples),
-            "CALSTATE": int(integ.cal_on), "FOLDED": int(spec.folded),
+            "CALSTATE": int(integ.cal_s > 0), "CALTIME": float(integ.cal_s),
+            "UNKNTIME": float(integ.unknown_s), "FOLDED": int(spec.folded),
         }
         return row
+
+    def _finish(self, integ, rows_q: queue.Queue, result: RunResult, observed_s: float) -> None:
+        """Hand a finished integration on: now, or after the first T_sys measurement."""
+        result.rows += 1
+        result.observed_s += observed_s
+        if self.meter is not None and self.tsys_now is None and not self._gave_up_waiting:
+            self.pending.append(integ)
+            return
+        rows_q.put(self._row(integ))
+
+    def _flush_pending(self, rows_q: queue.Queue) -> None:
+        for integ in self.pending:
+            rows_q.put(self._row(integ))
+        self.pending.clear()
+
+    def _on_measurement(self, meas, rows_q: queue.Queue) -> None:
+        rec = {"DATE-OBS": Time(meas.t_unix_s, format="unix", scale="utc").isot,
+               "TSYS": meas.tsys_k, "TSYSSIG": meas.tsys_phase_k.get("sig", float("nan")),
+               "TSYSREF": meas.tsys_phase_k.get("ref", float("nan")), "TCAL": meas.tcal_k,
+               "ONOFF": meas.on_off, "NCHANUSE": meas.channels_used,
+               "STATUS": "ok" if meas.ok else meas.message[:60], "TSYSCHAN": meas.tsys_chan_k}
+        rows_q.put(("tsys", rec))
+        if meas.ok:
+            self.tsys_now = meas
+            self._flush_pending(rows_q)
+        else:
+            self.event("error", meas.message)
+            if self.pending:
+                self._gave_up_waiting = True
+                self._flush_pending(rows_q)
 
     def _header(self) -> dict:
         cfg = self.cfg
         site = cfg["site"]
         sch = self.source.schedule
         unit = "K" if sch.mode == "frequency" else "count"
-        return {
+        eta = cfg["calibration"]["main_beam_efficiency"]
+        head = {
             "TELESCOP": site["telescope"], "SITENAME": site["name"],
             "SITELAT": site["lat"], "SITELONG": site["lon"], "SITEELEV": site["height_m"],
             "SPECSYS": "TOPOCENT", "SSYSOBS": "TOPOCENT", "VELDEF": "RADI-LSR", "BUNIT": unit,
+            "CTYPE1A": "VRAD", "CUNIT1A": "m/s", "SPECSYSA": "LSRK",
             "SOURCE": self.source.kind, "SWMODE": sch.mode, "SWOFFSET": sch.shift_channels *
             sch.channel_hz, "SWDWELL": sch.blocks_per_dwell * self.block_s,
             "CHANMETH": cfg["spectrometer"]["method"], "PFBTAPS": cfg["spectrometer"]["taps"],
-            "TSYSSRC": "config calibration.tsys_k" if unit == "K" else "none",
+            "TSYSSRC": self.tsys_plan.text,
+            "TEMPSCAL": ("TMB" if eta < 1 else "TA") if unit == "K" else "COUNTS",
+            "BEAMEFF": eta,
+            "CALSWTCH": self.switch.describe() if self.tsys_plan.kind == "noise_source" else "none",
             "SAMPRATE": self.cfg["source"]["sample_rate"], "GAIN": cfg["source"]["gain"],
+            "PNTFRAME": self.pointing.frame,
         }
+        head.update(self.tsys_plan.cards)
+        return head
 
     def _keep_partial(self, n_blocks: int, rows_q: queue.Queue, result: RunResult) -> int:
         """At a planned end (duration reached, replay file ended) keep the last, shorter
         integration if it holds at least one whole switching cycle; its EXPOSURE says how long."""
         partial = n_blocks % self.blocks_per_integration
         if partial >= self.source.schedule.blocks_per_cycle:
-            rows_q.put(self._row(self.spectrometer.take()))
-            result.rows += 1
-            result.observed_s += partial * self.block_s
+            self._finish(self.spectrometer.take(), rows_q, result, partial * self.block_s)
             return n_blocks + self.blocks_per_integration - partial
         return n_blocks
 
@@ -204,12 +411,27 @@ class Daemon:
     def run(self) -> RunResult:
         """Acquire until the duration is reached, the source ends, or a stop signal."""
         result = RunResult()
-        self.source.open()            # a source that cannot start leaves nothing behind
-        result.recovered = archive.recover(self.out_dir)
+        self._gave_up_waiting = False
+        if self.tsys_plan.kind == "noise_source" and self.switch.can_switch:
+            try:                      # prove the switch works before any data is taken
+                self.switch.open()
+                self.switch.set(False)
+            except (NoiseSwitchError, OSError) as exc:
+                self.switch.close()
+                raise ConfigError(f"noise source switch ({self.switch.describe()}) failed at "
+                                  f"start-up: {exc}") from None
+        try:
+            self.source.open()        # a source that cannot start leaves nothing behind
+        except BaseException:
+            self.switch.close()
+            raise
+        products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
+        result.recovered = archive.recover(self.out_dir, products=products)
         for p in result.recovered:
             self.log(f"recovered integrations of an interrupted scan into {p}")
         scan = "scan-" + self.t_start.strftime("%Y%m%dT%H%M%S")   # the writer adds -1, -2 if taken
-        writer = archive.ScanWriter(self.out_dir, scan, self._header(), self.nchan)
+        writer = archive.ScanWriter(self.out_dir, scan, self._header(), self.nchan,
+                                    products=products)
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         rows_q: queue.Queue = queue.Queue()
         counters = {"dropped": 0, "error": None, "write_error": None}
@@ -229,13 +451,16 @@ class Daemon:
                     if counters["error"] is None and not self.stop_event.is_set():
                         n_blocks = self._keep_partial(n_blocks, rows_q, result)   # replay's end
                     break
-                self.spectrometer.add(block)
+                s1, m = self.spectrometer.add(block)
+                if self.meter is not None:
+                    meas = self.meter.add(block, s1, m)
+                    if meas is not None:
+                        self._on_measurement(meas, rows_q)
                 result.lost_samples += block.lost_before
                 n_blocks += 1
                 if n_blocks % self.blocks_per_integration == 0:
-                    rows_q.put(self._row(self.spectrometer.take()))
-                    result.rows += 1
-                    result.observed_s += self.blocks_per_integration * self.block_s
+                    self._finish(self.spectrometer.take(), rows_q, result,
+                                 self.blocks_per_integration * self.block_s)
                 if max_blocks is not None and n_blocks >= max_blocks:
                     n_blocks = self._keep_partial(n_blocks, rows_q, result)   # planned end
                     break
@@ -244,10 +469,14 @@ class Daemon:
             if n_blocks % self.blocks_per_integration:
                 self.log(f"note: the unfinished integration ({(n_blocks % self.blocks_per_integration) * self.block_s:.1f} s) "
                          "was dropped; every finished one is saved")
+            if self.pending:           # no measurement ever came: keep them, fully flagged
+                self._gave_up_waiting = True
+                self._flush_pending(rows_q)
             rows_q.put(_STOP)
             wthread.join()
             reader.join(timeout=5)
             self.source.close()
+            self.switch.close()
             path = writer.close()
             if path:
                 result.files.append(path)

@@ -31,7 +31,8 @@ class ReplaySource:
         self.path = Path(src["path"]).expanduser()
         self.fs = src["sample_rate"]
         self.block_samples = src["block_samples"]
-        self.schedule = replace(Schedule.from_config(cfg), mode="none", shift_channels=0)
+        self.schedule = replace(Schedule.from_config(cfg, noise_source=False), mode="none",
+                                shift_channels=0)
         if not src["path"]:
             raise ConfigError("source.path is empty: replay needs a .cu8 file (--source replay:PATH)")
         try:
@@ -62,7 +63,7 @@ class ReplaySource:
             self._fh.close()
             self._fh = None
 
-    def set_cal(self, on: bool) -> None:
+    def set_cal(self, on: bool | None) -> None:
         if on:
             raise ConfigError("replay cannot switch a calibration noise source")
 
@@ -79,4 +80,5 @@ class ReplaySource:
             if delay > 0:
                 _time.sleep(delay)
         return Block(raw=np.frombuffer(data, dtype=np.uint8), lo_hz=self.cfg["source"]["center_freq"],
-                     sample_rate=self.fs, t0_unix_s=float(self.t_start.unix) + t_rel, phase=SIG)
+                     sample_rate=self.fs, t0_unix_s=float(self.t_start.unix) + t_rel, phase=SIG,
+                     index=i)

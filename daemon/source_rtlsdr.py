@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from .block import Block
+from .cal_control import CalControl
 from .sources import SourceError
 from .switching import Schedule
 
@@ -54,6 +55,8 @@ class RtlSdrSource:
         self.fs = src["sample_rate"]
         self.block_samples = src["block_samples"]
         self.schedule = Schedule.from_config(cfg)
+        self.cal = CalControl()   # the pipeline gives it the configured switch and its events
+        self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
         self.sdr = None
         self._ring = np.zeros((_RING_TRANSFERS, _TRANSFER_BYTES), dtype=np.uint8)
         self._ring_len = np.zeros(_RING_TRANSFERS, dtype=np.int64)
@@ -130,9 +133,9 @@ class RtlSdrSource:
             self._lock.notify()
 
     # -- the Source interface --------------------------------------------------------------
-    def set_cal(self, on: bool) -> None:
-        if on:
-            raise SourceError("no noise-source switch is configured for the dongle yet")
+    def set_cal(self, on: bool | None) -> None:
+        """Hold the noise source on or off (True / False), or back to the schedule (None)."""
+        self.forced_cal = None if on is None else bool(on)
 
     def lost_samples_estimate(self) -> int:
         """max(ring overruns, wall-clock expectation minus bytes received), in samples."""
@@ -160,10 +163,16 @@ class RtlSdrSource:
         phase = sch.phase_of_block(i)
         hop = sch.is_hop(i)
         lo = sch.lo_of(phase)
+        wanted = sch.cal_on(i) if self.forced_cal is None else self.forced_cal
+        switched = wanted != getattr(self, "_cal_wanted", False)
+        self._cal_wanted = wanted
+        cal_state = self.cal.state_for(wanted)
         if lo != self._lo:
             self.sdr.center_freq = lo
             self._lo = lo
             self._pending = self._pending[:0]     # leftover samples of the old LO
+        elif switched:
+            self._pending = self._pending[:0]     # samples from before the noise source changed
         need = 2 * self.block_samples
         parts, have = [self._pending], self._pending.size
         while have < need:
@@ -176,8 +185,9 @@ class RtlSdrSource:
         lost = self.lost_samples_estimate()
         new_lost, self._lost_reported = lost - self._lost_reported, lost
         t0 = self._t0_wall + (self._received - have) / 2 / self.fs
+        settle = sch.settle_samples if (hop or switched) else 0
         return Block(raw=raw, lo_hz=lo, sample_rate=self.fs, t0_unix_s=t0, phase=phase,
-                     lost_before=max(0, new_lost), settle_samples=sch.settle_samples if hop else 0)
+                     cal_on=cal_state, lost_before=max(0, new_lost), settle_samples=settle, index=i)
 
     def close(self) -> None:
         if self.sdr is not None:

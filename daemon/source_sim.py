@@ -9,7 +9,11 @@ Signal model, per block of samples at LO frequency f_LO (baseband frequency f, s
   dish beam (HPBW ~ 1.2 lambda/D, common practice), on the LSRK radio-velocity axis, moved to
   the topocentric frame with the true VFRAME for the simulated time and site
   (v_topo = v_LSRK - VFRAME).
-- T_cont continuum, T_spill ground spillover, T_rx receiver, T_cal the noise source when on.
+- T_cont continuum, T_spill ground spillover, T_rx receiver, T_cal the noise source when on
+  (``sim.noise_source_k``, its true value; the schedule fires it through :class:`CalControl`).
+- Calibration loads (``load``): "hot", an absorber at ``sim.ambient_k`` covering the feed (it
+  replaces sky, line and spillover); "cold", the cold sky near the zenith (``sim.cold_sky_k``
+  plus spillover, no line).
 - g(t) = 1 + a sin(2 pi t / P): slow gain drift. B(f): the tuner's band-pass, a flat top with
   ripple and a steep roll-off toward the band edges.
 - Samples are complex Gaussian noise with that spectrum, made by shaping white noise in the
@@ -31,6 +35,7 @@ from astropy.time import Time
 
 from . import frames
 from .block import Block
+from .cal_control import CalControl
 from .galaxy import ModelGalaxy
 from .lines import C_M_S, HI_REST_FREQ_HZ
 from .samples import complex_to_u8
@@ -57,11 +62,23 @@ def tuner_bandpass(f_hz: np.ndarray, sample_rate: float) -> np.ndarray:
 
 @dataclass
 class TrueSky:
-    """What the simulator put in, for tests and for the calibration issue."""
+    """What the simulator put in, for tests of the calibration."""
 
-    tsys_k: float         # band-centre system temperature without the line, cal off
+    tsys_k: float         # system temperature without the line, noise source off
     t_cont_k: float
     vframe_m_s: float
+    tcal_k: float = 0.0   # the noise source's true excess temperature
+    v_grid_km_s: np.ndarray | None = None     # LSRK radio velocity grid of the line model
+    tb_k: np.ndarray | None = None            # beam-smoothed line brightness on that grid
+    glon_deg: float = 0.0
+    glat_deg: float = 0.0
+
+    @property
+    def line_integral_k_km_s(self) -> float:
+        """Integral of the model line over velocity, K km/s (0 for a load)."""
+        if self.tb_k is None:
+            return 0.0
+        return float(np.sum(self.tb_k) * (self.v_grid_km_s[1] - self.v_grid_km_s[0]))
 
 
 class SimSource:
@@ -75,7 +92,7 @@ class SimSource:
         src, sim, site = cfg["source"], cfg["sim"], cfg["site"]
         self.fs = src["sample_rate"]
         self.block_samples = (src["block_samples"] // _CHUNK) * _CHUNK or _CHUNK
-        self.schedule = Schedule.from_config(cfg)
+        self.schedule = Schedule.from_config(cfg, block_samples=self.block_samples)
         self.rng = np.random.default_rng(sim["seed"])
         self.location = frames.site_location(site["lat"], site["lon"], site["height_m"])
         start = sim["start"]
@@ -86,7 +103,10 @@ class SimSource:
         self.base_freq = scipy.fft.fftfreq(_CHUNK, 1.0 / self.fs)
         self.bandpass = tuner_bandpass(self.base_freq, self.fs)
         self.amplitude = _RMS_REF * 10 ** ((src["gain"] - _GAIN_REF_DB) / 20)
-        self.cal_on = False
+        self.cal = CalControl()   # the pipeline gives it the configured switch and its events
+        self.diode_on = False     # the simulated noise source's true state
+        self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
+        self.load = None          # None (the sky), "hot" or "cold"
         self.pointing = None      # set by the pipeline: callable(time) -> SkyCoord
         self._sky_cache: dict = {}
         self._index = 0
@@ -96,8 +116,16 @@ class SimSource:
     # -- the sky ---------------------------------------------------------------------------
     def _sky_psd(self, t: Time, lo_hz: float) -> tuple[np.ndarray, dict]:
         """(Antenna + receiver temperature in K over the chunk's baseband grid, position)."""
-        bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz)
+        bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz, self.load)
         if bucket in self._sky_cache:
+            return self._sky_cache[bucket]
+        sim = self.cfg["sim"]
+        if self.load is not None:
+            outside = sim["ambient_k"] if self.load == "hot" else sim["cold_sky_k"] + sim["spillover_k"]
+            base = outside + sim["receiver_k"]
+            self.truth = TrueSky(tsys_k=base, t_cont_k=0.0, vframe_m_s=0.0,
+                                 tcal_k=sim["noise_source_k"])
+            self._sky_cache[bucket] = (np.full(_CHUNK, base), {})
             return self._sky_cache[bucket]
         coord = self.pointing(t)
         pos = frames.describe(coord, self.location, t)
@@ -109,9 +137,10 @@ class SimSource:
         v_lsrk_kms = (C_M_S * (HI_REST_FREQ_HZ - nu) / HI_REST_FREQ_HZ + vframe) / 1e3
         line = np.interp(v_lsrk_kms, v_grid, tb, left=0.0, right=0.0)
         t_cont = self.galaxy.continuum_temperature(pos["GLON"], pos["GLAT"])
-        sim = self.cfg["sim"]
         base = t_cont + sim["spillover_k"] + sim["receiver_k"]
-        self.truth = TrueSky(tsys_k=base, t_cont_k=t_cont, vframe_m_s=vframe)
+        self.truth = TrueSky(tsys_k=base, t_cont_k=t_cont, vframe_m_s=vframe,
+                             tcal_k=sim["noise_source_k"], v_grid_km_s=v_grid, tb_k=tb,
+                             glon_deg=pos["GLON"], glat_deg=pos["GLAT"])
         if len(self._sky_cache) > 8:
             self._sky_cache.clear()
         self._sky_cache[bucket] = (line + base, pos)
@@ -125,7 +154,7 @@ class SimSource:
     def _samples(self, t_rel_s: float, lo_hz: float, hop: bool) -> np.ndarray:
         t = self.t_start + t_rel_s * u.s
         temp, _ = self._sky_psd(t, lo_hz)
-        temp = temp + (self.cfg["calibration"]["noise_source_k"] if self.cal_on else 0.0)
+        temp = temp + (self.cfg["sim"]["noise_source_k"] if self.diode_on else 0.0)
         psd = self._gain(t_rel_s) * self.bandpass * temp
         psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
         # scale so that the mean temperature at the nominal Tsys gives the reference rms
@@ -165,8 +194,9 @@ class SimSource:
     def close(self) -> None:
         pass
 
-    def set_cal(self, on: bool) -> None:
-        self.cal_on = bool(on)
+    def set_cal(self, on: bool | None) -> None:
+        """Hold the noise source on or off (True / False), or back to the schedule (None)."""
+        self.forced_cal = None if on is None else bool(on)
 
     def read(self) -> Block:
         """Next block; paced to real time unless ``fast``."""
@@ -177,11 +207,15 @@ class SimSource:
         lo = sch.lo_of(phase)
         t_rel = i * self.block_samples / self.fs
         hop = sch.is_hop(i)
+        wanted = sch.cal_on(i) if self.forced_cal is None else self.forced_cal
+        cal_state = self.cal.state_for(wanted)
+        if cal_state is not None:
+            self.diode_on = cal_state   # a failed switch leaves the diode as it was
         x = self._samples(t_rel, lo, hop)
         if not self.fast:
             delay = self._wall0 + t_rel + self.block_samples / self.fs - _time.monotonic()
             if delay > 0:
                 _time.sleep(delay)
         return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs,
-                     t0_unix_s=float(self.t_start.unix) + t_rel, phase=phase, cal_on=self.cal_on,
-                     lost_before=0, settle_samples=sch.settle_samples if hop else 0)
+                     t0_unix_s=float(self.t_start.unix) + t_rel, phase=phase, cal_on=cal_state,
+                     lost_before=0, settle_samples=sch.settle_samples if hop else 0, index=i)

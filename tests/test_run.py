@@ -100,7 +100,8 @@ def test_inspect_reports_line(sim_scan):
     assert summary["rows"] >= 5 and summary["data_unit"] == "K"
     # peak of first-quadrant gas at l = 30 deg lies between 0 and +120 km/s (fact of the trade)
     assert 0 < summary["line_velocity_lsrk_km_s"] < 120
-    assert summary["tsys_mean_k"] == 85.0          # calibration.tsys_k default, as the header cites
+    # measured with the simulated noise source: receiver 55 K + spillover 12 K + continuum ~7 K
+    assert 70 < summary["tsys_mean_k"] < 80
 
 
 def _cu8(path, n, seed=3):
@@ -202,7 +203,9 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
 def test_rtlsdr_without_librtlsdr_says_how_to_fix(tmp_path):
     # no dongle library on this machine: one line naming the fix, exit 1, nothing written
     out = tmp_path / "o"
-    r = _run(["run", "--source", "rtlsdr", "--duration", "1", "--out", str(out)])
+    cfg = tmp_path / "c.toml"
+    cfg.write_text('[calibration]\ntsys_from = "fixed"\n')
+    r = _run(["run", "--config", str(cfg), "--source", "rtlsdr", "--duration", "1", "--out", str(out)])
     if r.returncode == 1 and "librtlsdr not found" in r.stderr:
         assert "apt-get install librtlsdr0" in r.stderr
     else:   # a machine with librtlsdr but no dongle
