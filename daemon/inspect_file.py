@@ -16,7 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .archive import EXTNAME, REQUIRED_ROW_KEYS
+from .archive import EXTNAME, REQUIRED_ROW_KEYS, TSYS_EXTNAME
+from .scan_product import EXTNAME as PRODUCT_EXTNAME
 from .lines import C_M_S
 from .spectral_axis import (frequency_axis_hz, scan_average_lsrk,  # noqa: F401 (re-exported)
                             velocity_axis_lsrk_m_s)
@@ -60,6 +61,12 @@ def _load(path: Path):
                 header = dict(hdu.header)
                 unit = hdu.columns["DATA"].unit or ""
                 cols = {k: np.array(hdu.data[k]) for k in REQUIRED_ROW_KEYS}
+                extras = {}
+                if TSYS_EXTNAME in hdul:
+                    extras["tsys_history"] = np.array(hdul[TSYS_EXTNAME].data["TSYS"])
+                if PRODUCT_EXTNAME in hdul:
+                    extras["product"] = dict(hdul[PRODUCT_EXTNAME].header)
+                header["_extras"] = extras
     except ValueError as exc:
         if str(exc).startswith(str(path)):
             raise
@@ -116,6 +123,11 @@ def summarize(path: Path) -> dict:
         peak, v_peak = float(mean[ipk]), float(v_grid[ipk] / 1e3)
 
     tsys = f64["TSYS"][np.isfinite(f64["TSYS"]) & (f64["TSYS"] > 0)]
+    extras = header.pop("_extras", {})
+    product = extras.get("product", {})
+    history = extras.get("tsys_history", np.zeros(0))
+    v_axis = velocity_axis_lsrk_m_s(f64["CRVAL1"][0], f64["CDELT1"][0], f64["CRPIX1"][0],
+                                    f64["RESTFREQ"][0], f64["VFRAME"][0], nchan) / 1e3
     objects = list(dict.fromkeys(str(o).strip() for o in c["OBJECT"]))
     cdelt = float(f64["CDELT1"][0])
     return {
@@ -146,6 +158,21 @@ def summarize(path: Path) -> dict:
         "line_peak": peak,
         "line_velocity_lsrk_km_s": v_peak,
         "flagged_fraction": float(np.mean(flagged)),
+        "velocity_axis_lsrk_km_s": [float(v_axis.min()), float(v_axis.max())],
+        "vframe_km_s": [float(f64["VFRAME"].min() / 1e3), float(f64["VFRAME"].max() / 1e3)],
+        "tsys_source": str(header.get("TSYSSRC", "")),
+        "tsys_measurements": int(history.size),
+        "tsys_measured_mean_k": (float(np.nanmean(history)) if np.isfinite(history).any()
+                                 else None),
+        "calibration_record": str(header.get("CALFILE", "")) or None,
+        "temperature_scale": str(header.get("TEMPSCAL", "")),
+        "beam_efficiency": float(header.get("BEAMEFF", 1.0)),
+        "baseline": str(product.get("BLMODE", "")) or None,
+        "baseline_rms_k": float(product["BLRMS"]) if "BLRMS" in product else None,
+        "line_window_km_s": ([float(product["LINEVLO"]), float(product["LINEVHI"])]
+                             if "LINEVLO" in product else None),
+        "line_integral_k_km_s": float(product["LINEINT"]) if "LINEINT" in product else None,
+        "nhi_cm2": float(product["NHI"]) if "NHI" in product else None,
     }
 
 
@@ -177,5 +204,20 @@ def format_summary(d: dict) -> str:
         f"DATA in {unit}, axis {d['specsys'] or '?'}; "
         f"{100 * d['flagged_fraction']:.1f} % of channels flagged",
         f"line      {line}",
+        f"velocity  LSRK radio velocity {d['velocity_axis_lsrk_km_s'][0]:+.1f} .. "
+        f"{d['velocity_axis_lsrk_km_s'][1]:+.1f} km/s; VFRAME {d['vframe_km_s'][0]:+.3f} .. "
+        f"{d['vframe_km_s'][1]:+.3f} km/s",
+        f"calib     Tsys from {d['tsys_source'] or 'unknown'}; {d['tsys_measurements']} "
+        f"noise-source measurements"
+        + (f" (mean {d['tsys_measured_mean_k']:.2f} K)" if d["tsys_measured_mean_k"] else "")
+        + (f"; record {d['calibration_record']}" if d["calibration_record"] else "")
+        + (f"; scale {d['temperature_scale']}, eta_mb {d['beam_efficiency']:g}"
+           if d["temperature_scale"] else ""),
     ]
+    if d["line_integral_k_km_s"] is not None:
+        rms = (f", rms {d['baseline_rms_k']:.3f} K" if d["baseline_rms_k"] is not None else "")
+        lines.append(f"integral  {d['line_integral_k_km_s']:.1f} K km/s over "
+                     f"{d['line_window_km_s'][0]:+.1f} .. {d['line_window_km_s'][1]:+.1f} km/s "
+                     f"(LSRK); N(HI) = {d['nhi_cm2']:.3e} cm^-2 if optically thin; baseline "
+                     f"{d['baseline']}{rms}")
     return "\n".join(lines)

@@ -221,6 +221,11 @@ class Daemon:
         self.blocks_per_integration = cycle * max(1, math.ceil(sp["integration_s"] / (block_s * cycle)))
         self.meter = (TsysMeter(cycle, self.nchan, self.tsys_plan.tcal_k, self._emission_mask)
                       if self.tsys_plan.kind == "noise_source" else None)
+        if self.tsys_plan.kind == "noise_source" and self.switch.can_switch:
+            try:                      # prove the switch works (it turns the source off)
+                self.switch.open()
+            except (NoiseSwitchError, OSError) as exc:
+                raise ConfigError(f"noise source switch failed at start-up: {exc}") from None
         self.tsys_now = None            # newest good TsysMeasurement
         self.pending: list = []         # integrations waiting for the first measurement
         self._warned: set = set()
@@ -412,14 +417,6 @@ class Daemon:
         """Acquire until the duration is reached, the source ends, or a stop signal."""
         result = RunResult()
         self._gave_up_waiting = False
-        if self.tsys_plan.kind == "noise_source" and self.switch.can_switch:
-            try:                      # prove the switch works before any data is taken
-                self.switch.open()
-                self.switch.set(False)
-            except (NoiseSwitchError, OSError) as exc:
-                self.switch.close()
-                raise ConfigError(f"noise source switch ({self.switch.describe()}) failed at "
-                                  f"start-up: {exc}") from None
         try:
             self.source.open()        # a source that cannot start leaves nothing behind
         except BaseException:

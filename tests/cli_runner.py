@@ -1,0 +1,36 @@
+"""Test helper: run the ``spinflip`` command in a subprocess, and the simulator's truths."""
+
+import subprocess
+import sys
+
+import numpy as np
+
+from spinflip.daemon.galaxy import ModelGalaxy
+from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
+
+
+def run_cli(args, cwd=None, timeout=180, stdin=None):
+    """``python -m spinflip.daemon.cli ARGS`` -> CompletedProcess (text, captured)."""
+    return subprocess.run([sys.executable, "-m", "spinflip.daemon.cli", *map(str, args)],
+                          cwd=cwd, capture_output=True, text=True, timeout=timeout, input=stdin)
+
+
+def write_config(path, text):
+    path.write_text(text)
+    return path
+
+
+def beam_fwhm_deg(dish_m=3.0):
+    """HPBW ~ 1.2 lambda / D (common practice), as the simulator smooths its sky."""
+    return float(np.degrees(1.2 * (C_M_S / HI_REST_FREQ_HZ) / dish_m))
+
+
+def model_line(glon_deg, glat_deg, v_km_s):
+    """The simulator's beam-smoothed line brightness T_B(v), K."""
+    return ModelGalaxy().brightness_temperature(glon_deg, glat_deg, v_km_s,
+                                                beam_fwhm_deg=beam_fwhm_deg())
+
+
+def true_tsys_k(glon_deg, glat_deg, receiver_k=55.0, spillover_k=12.0):
+    """The simulator's true Tsys: continuum + spillover + receiver (noise source off)."""
+    return ModelGalaxy().continuum_temperature(glon_deg, glat_deg) + spillover_k + receiver_k
