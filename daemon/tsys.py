@@ -86,7 +86,7 @@ def line_free_channels(tsys_chan_k: np.ndarray, usable: np.ndarray) -> np.ndarra
             break
         med = np.median(vals)
         sigma = 1.4826 * np.median(np.abs(vals - med))
-        new = good & (sm < med + _CLIP_SIGMA * sigma)
+        new = good & (sm <= med + _CLIP_SIGMA * sigma)
         if np.array_equal(new, keep):
             break
         keep = new

@@ -1,6 +1,7 @@
 """Frequency-switched difference and folding on noiseless synthetic spectra."""
 
 import numpy as np
+import pytest
 
 from spinflip.daemon.block import REF, SIG
 from spinflip.daemon.calibrate import calibrate
@@ -31,8 +32,8 @@ def test_fold_recovers_line_and_cancels_bandpass():
     spec = calibrate(_integ(sig, ref), n, shift, True, tsys, flag_dc=True)
     assert spec.unit == "K" and spec.folded
     assert np.argmax(spec.data) == line_chan
-    # (S-R)/R Tsys = T_line (1 - small T_line/Tsys correction); within 5 % of the peak
-    assert abs(spec.data[line_chan] - 5.0) < 0.25
+    # D_sig = Tsys (S-R)/R and D_ref = Tsys (S-R)/S are exact where one phase holds the line
+    assert abs(spec.data[line_chan] - 5.0) < 1e-9
     assert spec.flagged[n // 2] and spec.flagged[n // 2 + shift]
     # channels without a fold partner are flagged
     assert spec.flagged[:(-shift)].sum() == 0 or spec.flagged[n + shift:].all()
@@ -45,3 +46,32 @@ def test_total_power_is_counts():
     spec = calibrate(_integ(np.full(n, 3.0), np.zeros(n)), n, 0, False, 100.0)
     assert spec.unit == "count"
     np.testing.assert_allclose(spec.data, 3.0)
+
+
+def test_strong_line_folds_without_compression():
+    # A 60 K line on Tsys = 85 K: with (S - R)/R alone the reference copy would read
+    # -60 * 85 / 145 = -35 K and the fold 47.5 K (common single-formula error); the exact
+    # pair (S - R)/R for the signal copy, (S - R)/S for the reference copy gives 60 K.
+    n, shift, tsys = 512, -150, 85.0
+    k = np.arange(n)
+    line = lambda c: 60.0 * np.exp(-0.5 * ((k - c) / 6.0) ** 2)
+    bandpass = 1 + 0.2 * np.sin(k / 25.0)
+    sig = bandpass * (tsys + line(200))
+    ref = bandpass * (tsys + line(200 - shift))
+    spec = calibrate(_integ(sig, ref), n, shift, True, tsys)
+    near = slice(170, 231)
+    np.testing.assert_allclose(spec.data[near], line(200)[near], atol=1e-4)
+    assert not spec.flagged[near].any()
+
+
+def test_main_beam_efficiency_scales_to_brightness_temperature():
+    # T_mb = T_A / eta_mb (Kutner & Ulich 1981)
+    n, shift, tsys = 256, -64, 100.0
+    k = np.arange(n)
+    sig = tsys + 4.0 * (k == 100)
+    ref = tsys + 4.0 * (k == 100 - shift)
+    ta = calibrate(_integ(sig, ref), n, shift, True, tsys)
+    tmb = calibrate(_integ(sig, ref), n, shift, True, tsys, beam_efficiency=0.8)
+    assert tmb.data[100] == pytest.approx(ta.data[100] / 0.8, rel=1e-6)
+    with pytest.raises(ValueError, match="main-beam efficiency"):
+        calibrate(_integ(sig, ref), n, shift, True, tsys, beam_efficiency=1.2)
