@@ -219,5 +219,7 @@ def format_summary(d: dict) -> str:
         lines.append(f"integral  {d['line_integral_k_km_s']:.1f} K km/s over "
                      f"{d['line_window_km_s'][0]:+.1f} .. {d['line_window_km_s'][1]:+.1f} km/s "
                      f"(LSRK); N(HI) = {d['nhi_cm2']:.3e} cm^-2 if optically thin; baseline "
-                     f"{d['baseline']}{rms}")
+                     f"{d['baseline']}{rms}"
+                     + (" (no line-free channels: widen switching.offset_hz)"
+                        if d["baseline"] == "none" else ""))
     return "\n".join(lines)

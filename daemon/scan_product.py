@@ -77,7 +77,7 @@ def analyse(data, flagged, crval1, cdelt1, crpix1, restfreq, vframe_m_s, glon_de
         if candidates.sum() >= max(16, 2 * (order + 1)):
             fit = fit_baseline(np.where(good, mean, 0.0), ~candidates, vk, order)
         else:
-            blmode = "none: no line-free channels (widen switching.offset_hz)"
+            blmode = "none"
     resid = fit.subtract(np.where(good, mean, np.nan)) if fit is not None else mean.copy()
     win = line & good
     integral = integrated_intensity_k_km_s(np.where(good, resid, 0.0), vk, good=win)
@@ -121,7 +121,9 @@ def scan_products(header: dict, nchan: int, rows: list, baseline_cfg: dict) -> l
     h["EXTNAME"] = (EXTNAME, "scan average on the LSRK grid of the first row")
     h["SPECSYS"] = ("LSRK", "frame of VRAD")
     h["VELDEF"] = ("RADI-LSR", "radio convention")
-    h["BLMODE"] = (a["blmode"][:68], "baseline: auto, windows or none")
+    h["BLMODE"] = (a["blmode"], "baseline: auto, windows or none")
+    if a["blmode"] == "none":
+        h["COMMENT"] = "No baseline: no line-free channels (widen switching.offset_hz)."
     if fit is not None:
         h["BLORDER"] = (fit.order, "polynomial order of the baseline")
         h["BLRMS"] = (float(fit.rms_k), "[K] rms of the line-free residual")

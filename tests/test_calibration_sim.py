@@ -204,6 +204,8 @@ def test_line_integral_in_band_folded_within_5_percent_of_the_model(inband):
     model, _, _ = _model_integral(30.0, 0.0)
     assert abs(ah["LINEINT"] / model - 1) < 0.05, (ah["LINEINT"], model)
     assert np.all(rows["FOLDED"] == 1)
+    # line and ghosts leave no line-free channel at this offset: no baseline, and it says so
+    assert ah["BLMODE"] == "none"
 
 
 def test_calibrated_noise_follows_the_radiometer_equation(outband):
