@@ -223,9 +223,6 @@ def _cross_checks(cfg: dict) -> None:
         raise ConfigError(f"config calibration.cal_interval_s = {cal['cal_interval_s']:g}: must be "
                           f"at least three times calibration.cal_on_s = {cal['cal_on_s']:g} (the "
                           "noise source needs off time on both sides of each firing)")
-    if cal["t_cold_k"] >= cal["t_hot_k"]:
-        raise ConfigError(f"config calibration.t_cold_k = {cal['t_cold_k']:g}: must be below "
-                          f"calibration.t_hot_k = {cal['t_hot_k']:g}")
     if cal["switch"] == "command":
         for key, what in (("switch_on_cmd", "on"), ("switch_off_cmd", "off")):
             if not cal[key].strip():

@@ -48,3 +48,31 @@ def test_int_accepted_for_float_and_merged(tmp_path):
     cfg = config.load(f)
     assert cfg["calibration"]["tsys_k"] == 120.0 and isinstance(cfg["calibration"]["tsys_k"], float)
     assert cfg["pointing"]["lon"] == 45.0
+
+
+@pytest.mark.parametrize("text, fragments", [
+    ("[calibration]\ncal_interval_s = 2.0\ncal_on_s = 1.0\n", ["calibration.cal_interval_s", "three times"]),
+    ("[calibration]\nt_cold_k = 120.0\nt_hot_k = 110.0\n", ["calibration.t_hot_k", "110"]),
+    ("[calibration]\nswitch = 'command'\nswitch_on_cmd = 'relay on'\n", ["calibration.switch_off_cmd is empty"]),
+    ("[calibration]\ntsys_from = 'guess'\n", ["calibration.tsys_from", "'noise_source'"]),
+    ("[calibration]\nmain_beam_efficiency = 1.5\n", ["calibration.main_beam_efficiency", "0.05 to 1"]),
+    ("[baseline]\nwindows_km_s = [[1, 2, 3]]\n", ["baseline.windows_km_s", "[lo, hi]"]),
+    ("[baseline]\nmode = 'windows'\n", ["baseline.windows_km_s is empty"]),
+    ("[baseline]\norder = 9\n", ["baseline.order", "0 to 8"]),
+])
+def test_calibration_keys_are_checked(tmp_path, text, fragments):
+    f = tmp_path / "c.toml"
+    f.write_text(text)
+    with pytest.raises(config.ConfigError) as err:
+        config.load(f)
+    msg = str(err.value)
+    assert "\n" not in msg
+    for frag in fragments:
+        assert frag in msg
+
+
+def test_windows_are_read_as_float_pairs(tmp_path):
+    f = tmp_path / "c.toml"
+    f.write_text("[baseline]\nmode = 'windows'\nwindows_km_s = [[-250, -150], [180.5, 250]]\n")
+    assert config.load(f)["baseline"]["windows_km_s"] == [[-250.0, -150.0], [180.5, 250.0]]
+    assert config.load(None)["baseline"]["windows_km_s"] == []

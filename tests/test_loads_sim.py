@@ -110,3 +110,15 @@ def test_interactive_prompts_and_cancel_leave_no_record(tmp_path):
 def test_loads_refuses_a_replay(tmp_path):
     r = run_cli(["loads", "--source", "replay:/nonexistent.cu8", "--out", tmp_path / "o"])
     assert r.returncode == 2 and "\n" not in r.stderr.strip() and "live receiver" in r.stderr
+
+
+def test_absurd_y_is_refused_with_one_line_and_no_record(tmp_path):
+    # a "cold" load hotter than the hot one (here: huge spillover on the sky) gives Y < 1
+    cfg = write_config(tmp_path / "c.toml", SIM.replace("spillover_k = 0.0", "spillover_k = 300.0")
+                       .replace("[calibration]", "[calibration]\nloads_s = 1.0").replace(
+                           "loads_s = 3.0\n", "") + "[source]\n")
+    r = run_cli(["loads", "--config", cfg, "--fast", "--yes", "--out", tmp_path / "o"])
+    assert r.returncode == 2, r.stderr
+    lines = r.stderr.strip().splitlines()
+    assert len(lines) == 1 and "Y = " in lines[0] and "not above 1" in lines[0]
+    assert not list((tmp_path / "o").rglob("loads-*.json"))
