@@ -220,6 +220,23 @@ def _encode(meta: dict, arrays: bytes = b"") -> bytes:
     return MAGIC + length + _U32.pack(zlib.crc32(payload, zlib.crc32(length))) + payload
 
 
+def _scalars(record: dict, spec: dict, what: str) -> dict:
+    """The scalars ``spec`` names (name -> (kind, unit)) of ``record``, checked: "s" printable
+    ASCII strings, "f" real numbers (as float); ValueError naming ``what`` and the key."""
+    out = {}
+    for key, (kind, _unit) in spec.items():
+        value = record[key]
+        if kind == "s":
+            if not isinstance(value, str) or not _is_ascii_text(value):
+                raise ValueError(f"{what} {key}: {value!r} is not a printable ASCII string")
+            out[key] = value
+        else:
+            if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
+                raise ValueError(f"{what} {key}: {value!r} is not a number")
+            out[key] = float(value)
+    return out
+
+
 def _row_record(row: dict, nchan: int) -> bytes:
     """Validate one integration and encode it as a journal record (nothing is written)."""
     missing = [k for k in REQUIRED_ROW_KEYS if k not in row]
@@ -231,17 +248,7 @@ def _row_record(row: dict, nchan: int) -> bytes:
         raise ValueError(f"row DATA {data.shape} / FLAGGED {flagged.shape}: expected ({nchan},)")
     if flagged.dtype != bool:
         raise ValueError(f"row FLAGGED has dtype {flagged.dtype}; expected bool")
-    meta: dict = {"kind": "row"}
-    for key, (kind, _unit) in ROW_SCALARS.items():
-        value = row[key]
-        if kind == "s":
-            if not isinstance(value, str) or not _is_ascii_text(value):
-                raise ValueError(f"row {key}: {value!r} is not a printable ASCII string")
-            meta[key] = value
-        else:
-            if isinstance(value, (bool, np.bool_)) or not isinstance(value, numbers.Real):
-                raise ValueError(f"row {key}: {value!r} is not a number")
-            meta[key] = float(value)
+    meta: dict = {"kind": "row", **_scalars(row, ROW_SCALARS, "row")}
     try:
         _dt.datetime.fromisoformat(meta["DATE-OBS"])
     except ValueError:
@@ -562,15 +569,7 @@ class ScanWriter:
         ``TSYSCHAN`` float[nchan]) to the journal; durable when this returns."""
         if self._closed:
             raise ValueError(f"{self.journal_path}: append after close")
-        meta: dict = {"kind": "tsys"}
-        for key, (kind, _unit) in TSYS_SCALARS.items():
-            value = rec[key]
-            if kind == "s":
-                if not isinstance(value, str) or not _is_ascii_text(value):
-                    raise ValueError(f"tsys {key}: {value!r} is not a printable ASCII string")
-                meta[key] = value
-            else:
-                meta[key] = float(value)
+        meta: dict = {"kind": "tsys", **_scalars(rec, TSYS_SCALARS, "tsys")}
         chan = rec.get("TSYSCHAN")
         chan = np.full(self.nchan, np.nan) if chan is None else np.asarray(chan)
         if chan.shape != (self.nchan,):

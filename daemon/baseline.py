@@ -51,6 +51,8 @@ from dataclasses import dataclass
 import numpy as np
 from numpy.polynomial import Polynomial
 
+from .spectral_axis import monotonic_axis
+
 #: Highest polynomial order accepted.
 MAX_ORDER = 8
 
@@ -166,16 +168,10 @@ def fit_baseline(data_k, flagged, x, order: int, windows=None, clip_sigma: float
     order = _check_order(order)
     data = np.asarray(data_k, dtype=np.float64)
     flag = np.asarray(flagged, dtype=bool)
-    xs = np.array(x, dtype=np.float64)          # a copy: the fit keeps it
-    if data.ndim != 1 or flag.shape != data.shape or xs.shape != data.shape:
-        raise ValueError(f"data_k, flagged and x must be 1-D of one length; got shapes "
-                         f"{data.shape}, {flag.shape}, {xs.shape}")
-    if data.size < 2 or not np.all(np.isfinite(xs)):
-        raise ValueError(f"x must hold at least 2 finite values; got {xs.size} values, "
-                         f"{int(np.sum(~np.isfinite(xs)))} non-finite")
-    dx = np.diff(xs)
-    if not (np.all(dx > 0) or np.all(dx < 0)):
-        raise ValueError("x must be strictly monotonic (increasing or decreasing); it is not")
+    if data.ndim != 1 or flag.shape != data.shape:
+        raise ValueError(f"data_k and flagged must be 1-D of one length; got shapes "
+                         f"{data.shape}, {flag.shape}")
+    xs = monotonic_axis(x, "x", data.size)      # a copy: the fit keeps it
     x_lo, x_hi = float(xs.min()), float(xs.max())
     domain = (x_lo, x_hi)
     usable = ~flag & np.isfinite(data)

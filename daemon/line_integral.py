@@ -20,6 +20,8 @@ from typing import NamedTuple
 
 import numpy as np
 
+from .spectral_axis import monotonic_axis
+
 #: Column density per unit line integral, cm^-2 per (K km/s), optically thin
 #: (Dickey & Lockman 1990).
 HI_COLUMN_PER_K_KM_S_CM2 = 1.823e18
@@ -94,17 +96,11 @@ def integrated_intensity_k_km_s(tb_k, v_km_s, good=None, v_range_km_s=None) -> L
     nothing, and a caller that accepts a mean fill can scale W by span / covered.
     """
     t = np.asarray(tb_k, dtype=np.float64)
-    v = np.asarray(v_km_s, dtype=np.float64)
     ok = np.ones(t.shape, dtype=bool) if good is None else np.asarray(good, dtype=bool)
-    if t.ndim != 1 or v.shape != t.shape or ok.shape != t.shape:
-        raise ValueError(f"tb_k, v_km_s and good must be 1-D of one length; got shapes "
-                         f"{t.shape}, {v.shape}, {ok.shape}")
-    if t.size < 2 or not np.all(np.isfinite(v)):
-        raise ValueError(f"v_km_s must hold at least 2 finite velocities; got {v.size} values, "
-                         f"{int(np.sum(~np.isfinite(v)))} non-finite")
-    dv = np.diff(v)
-    if not (np.all(dv > 0) or np.all(dv < 0)):
-        raise ValueError("v_km_s must be strictly monotonic (increasing or decreasing); it is not")
+    if t.ndim != 1 or ok.shape != t.shape:
+        raise ValueError(f"tb_k and good must be 1-D of one length; got shapes "
+                         f"{t.shape}, {ok.shape}")
+    v = monotonic_axis(v_km_s, "v_km_s", t.size)
 
     # channel edges in increasing velocity: midpoints, outer edges half a spacing out
     order = np.argsort(v)

@@ -100,3 +100,22 @@ def velocity_wcs_m_s(crval1: float, cdelt1: float, restfreq: float, vframe_m_s: 
     (Greisen et al. 2006, radio convention, linear in frequency).
     """
     return (C_M_S * (restfreq - crval1) / restfreq + vframe_m_s, -C_M_S * cdelt1 / restfreq)
+
+
+def monotonic_axis(values, name: str, size: int | None = None) -> np.ndarray:
+    """``values`` as a float64 copy, checked to be a 1-D, finite, strictly monotonic axis.
+
+    Raises ValueError naming ``name`` (one line): not 1-D or not of length ``size``, fewer than
+    2 values, a non-finite value, or not strictly increasing or decreasing.
+    """
+    x = np.array(values, dtype=np.float64)
+    if x.ndim != 1 or (size is not None and x.size != size):
+        raise ValueError(f"{name} must be 1-D of length {size if size is not None else 'n'}; "
+                         f"got shape {x.shape}")
+    if x.size < 2 or not np.all(np.isfinite(x)):
+        raise ValueError(f"{name} must hold at least 2 finite values; got {x.size} values, "
+                         f"{int(np.sum(~np.isfinite(x)))} non-finite")
+    dx = np.diff(x)
+    if not (np.all(dx > 0) or np.all(dx < 0)):
+        raise ValueError(f"{name} must be strictly monotonic (increasing or decreasing); it is not")
+    return x
