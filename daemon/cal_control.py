@@ -40,6 +40,9 @@ class CalControl:
         if self.switch is None or not getattr(self.switch, "can_switch", True):
             self.state = wanted
             return self.state
+        if getattr(self.switch, "state", None) is wanted:   # already there (e.g. off at open)
+            self.state = wanted
+            return self.state
         try:
             self.switch.set(wanted)
         except Exception as exc:  # a failing switch must never stop acquisition
