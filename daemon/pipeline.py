@@ -24,6 +24,7 @@ import queue
 import signal
 import sys
 import threading
+import time as _time
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -295,8 +296,16 @@ class Daemon:
     def _tsys_for(self, t_end_s: float) -> tuple[float, float, bool]:
         """(T_sys for the kelvin scale, its age in s (NaN if not measured), trustworthy)."""
         plan = self.tsys_plan
-        if plan.kind in ("fixed", "loads"):
+        if plan.kind == "fixed":
             return plan.tsys_k, float("nan"), True
+        if plan.kind == "loads":       # records are dated by the wall clock, so is their age
+            age = _time.time() - plan.record.time_unix_s
+            if age > self.cfg["calibration"]["max_record_age_s"]:
+                self._warn_once("old-record", "error", f"calibration record {plan.record.name} "
+                                "is now older than calibration.max_record_age_s: rows are saved "
+                                "fully flagged; repeat the hot/cold calibration (spinflip loads)")
+                return plan.tsys_k, age, False
+            return plan.tsys_k, age, True
         if plan.kind == "none" or self.tsys_now is None:
             return float("nan"), float("nan"), False
         age = t_end_s - self.tsys_now.t_unix_s
@@ -322,7 +331,7 @@ class Daemon:
                 self._warn_once("no-tsys", "error", "no system temperature measured yet: rows are"
                                 f" saved fully flagged, scaled with calibration.tsys_k = "
                                 f"{cfg['calibration']['tsys_k']:g} K as a placeholder")
-            else:
+            elif self.tsys_plan.kind == "noise_source":
                 self._warn_once("old-tsys", "error", f"newest system temperature is {age:.0f} s old"
                                 f" (> calibration.tsys_max_age_s): rows are saved fully flagged")
         if pos["ELEVATIO"] < cfg["pointing"]["min_elevation"]:

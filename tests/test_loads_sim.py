@@ -122,3 +122,20 @@ def test_absurd_y_is_refused_with_one_line_and_no_record(tmp_path):
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "Y = " in lines[0] and "not above 1" in lines[0]
     assert not list((tmp_path / "o").rglob("loads-*.json"))
+
+
+def test_record_expiring_during_a_run_flags_and_says_so(record, tmp_path, monkeypatch):
+    from spinflip.daemon import config, pipeline
+    _, _, path = record
+    cfg = config.load(None)
+    config.merge(cfg, {"calibration": {"tsys_from": "loads", "records": str(path.parent)},
+                       "output": {"dir": str(tmp_path / "o")}})
+    d = pipeline.Daemon(cfg, fast=True, log=lambda msg: None)
+    tsys, age, ok = d._tsys_for(0.0)
+    assert ok and tsys == loads.load_record(path).tsys_cold_k and 0 <= age < 600
+    later = time.time() + cfg["calibration"]["max_record_age_s"] + 10
+    monkeypatch.setattr(pipeline._time, "time", lambda: later)
+    tsys, age, ok = d._tsys_for(0.0)
+    assert not ok and age > cfg["calibration"]["max_record_age_s"]
+    assert any(sev == "error" and "older than calibration.max_record_age_s" in text
+               for sev, text in d.events)
