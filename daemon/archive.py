@@ -21,7 +21,10 @@ integration::
 The header record's meta is ``{"kind": "header", "format": 1, "scan", "nchan", "header"}``;
 a row record's meta is ``{"kind": "row", ...}`` with every scalar of the row. A system
 temperature record (one firing of the noise source) has meta ``{"kind": "tsys", ...}`` with
-its scalars (see :data:`TSYS_SCALARS`) and the per-channel T_sys as float32[nchan]. A reader walks
+its scalars (see :data:`TSYS_SCALARS`) and the per-channel T_sys as float32[nchan]. An
+interference record (``{"kind": "rfi", ...}``, :data:`RFI_SCALARS`, no arrays) logs what
+kind of interference was seen when. A row may carry ``CHANEXP`` (float32[nchan], the
+per-channel exposure after flagging), stored after FLAGGED (meta ``"chanexp": true``). A reader walks
 the records in order and stops at the first one whose magic, length or CRC does not check
 out: since each record is fsync'ed before the next is begun, only the last record can be torn
 by a crash, and the CRC tells a torn or zero-filled tail from a whole record (the chance that
@@ -111,6 +114,15 @@ TSYS_SCALARS = {
     "STATUS": ("s", None),
 }
 TSYS_EXTNAME = "TSYS HISTORY"
+#: Scalars of an interference log record.
+RFI_SCALARS = {
+    "DATE-OBS": ("s", None),
+    "KIND": ("s", None),
+    "FREQ": ("f", "Hz"),
+    "VALUE": ("f", None),
+    "TEXT": ("s", None),
+}
+RFI_EXTNAME = "RFI LOG"
 #: Every key a row must carry.
 REQUIRED_ROW_KEYS = ("DATA", "FLAGGED", *ROW_SCALARS)
 #: Units DATA may be stored in (header key ``BUNIT``).
@@ -253,9 +265,16 @@ def _row_record(row: dict, nchan: int) -> bytes:
         _dt.datetime.fromisoformat(meta["DATE-OBS"])
     except ValueError:
         raise ValueError(f"row DATE-OBS: {meta['DATE-OBS']!r} is not an ISO 8601 time") from None
+    arrays = data.tobytes() + flagged.astype(np.uint8).tobytes()
+    if "CHANEXP" in row:
+        chanexp = np.asarray(row["CHANEXP"], dtype="<f4")
+        if chanexp.shape != (nchan,):
+            raise ValueError(f"row CHANEXP {chanexp.shape}: expected ({nchan},)")
+        meta["chanexp"] = True
+        arrays += chanexp.tobytes()
     extras = {}
     for key, value in row.items():
-        if key in meta or key in ("DATA", "FLAGGED"):
+        if key in meta or key in ("DATA", "FLAGGED", "CHANEXP"):
             continue
         if not isinstance(key, str) or not key or key.upper() != key or key == "kind":
             raise ValueError(f"row extra column {key!r}: use an upper-case name")
@@ -268,7 +287,7 @@ def _row_record(row: dict, nchan: int) -> bytes:
         else:
             raise ValueError(f"row extra column {key!r}: {value!r} is not a numeric scalar")
     meta["extra"] = extras
-    return _encode(meta, data.tobytes() + flagged.astype(np.uint8).tobytes())
+    return _encode(meta, arrays)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -283,6 +302,7 @@ class JournalContents:
     header: dict | None = None
     rows: list = field(default_factory=list)
     tsys: list = field(default_factory=list)
+    rfi: list = field(default_factory=list)
     intact_bytes: int = 0
     torn_bytes: int = 0
 
@@ -337,14 +357,21 @@ def read_journal(path: Path) -> JournalContents:
             rec = {k: meta[k] for k in TSYS_SCALARS if k in meta}
             rec["TSYSCHAN"] = np.frombuffer(arrays, dtype="<f4", count=out.nchan).astype(np.float32)
             out.tsys.append(rec)
+        elif meta.get("kind") == "rfi":
+            out.rfi.append({k: meta[k] for k in RFI_SCALARS if k in meta})
         else:
             nchan = out.nchan
-            if meta.get("kind") != "row" or len(arrays) != 5 * nchan:
+            has_exp = bool(meta.get("chanexp"))
+            if meta.get("kind") != "row" or len(arrays) != (9 if has_exp else 5) * nchan:
                 break
-            row = {k: v for k, v in meta.items() if k not in ("kind", "extra")}
+            row = {k: v for k, v in meta.items() if k not in ("kind", "extra", "chanexp")}
             row.update(meta.get("extra", {}))
             row["DATA"] = np.frombuffer(arrays, dtype="<f4", count=nchan).astype(np.float32)
-            row["FLAGGED"] = np.frombuffer(arrays, dtype=np.uint8, offset=4 * nchan) != 0
+            row["FLAGGED"] = np.frombuffer(arrays, dtype=np.uint8, offset=4 * nchan,
+                                           count=nchan) != 0
+            if has_exp:
+                row["CHANEXP"] = np.frombuffer(arrays, dtype="<f4", offset=5 * nchan,
+                                               count=nchan).astype(np.float32)
             out.rows.append(row)
         out.intact_bytes = end
     out.torn_bytes = len(buf) - out.intact_bytes
@@ -363,19 +390,38 @@ def _utc_now_iso() -> str:
     return _dt.datetime.now(_dt.timezone.utc).replace(tzinfo=None).isoformat(timespec="seconds")
 
 
-def _tsys_hdu(tsys: list, nchan: int):
-    """The TSYS HISTORY BINTABLE: one row per firing of the noise source."""
+def _scalar_columns(records: list, spec: dict) -> list:
+    """FITS columns of the scalars ``spec`` names (name -> (kind, unit)) over ``records``."""
     from astropy.io import fits
 
     cols = []
-    for key, (kind, unit) in TSYS_SCALARS.items():
+    for key, (kind, unit) in spec.items():
         if kind == "s":
-            values = [str(r.get(key, "")) for r in tsys]
+            values = [str(r.get(key, "")) for r in records]
             width = max(8, max(len(v) for v in values))
             cols.append(fits.Column(name=key, format=f"{width}A", array=np.array(values)))
         else:
             cols.append(fits.Column(name=key, format="D", unit=unit, array=np.array(
-                [float(r.get(key, np.nan)) for r in tsys], dtype=np.float64)))
+                [float(r.get(key, np.nan)) for r in records], dtype=np.float64)))
+    return cols
+
+
+def _rfi_hdu(rfi: list):
+    """The RFI LOG BINTABLE: what kind of interference was seen when."""
+    from astropy.io import fits
+
+    hdu = fits.BinTableHDU.from_columns(_scalar_columns(rfi, RFI_SCALARS), nrows=len(rfi))
+    hdu.header["EXTNAME"] = (RFI_EXTNAME, "interference seen, by kind and time")
+    hdu.header["COMMENT"] = ("KIND carrier-on/carrier-off (FREQ sky Hz, VALUE strength in sigma), "
+                             "impulses (VALUE count), sk (VALUE fraction of cells)")
+    return hdu
+
+
+def _tsys_hdu(tsys: list, nchan: int):
+    """The TSYS HISTORY BINTABLE: one row per firing of the noise source."""
+    from astropy.io import fits
+
+    cols = _scalar_columns(tsys, TSYS_SCALARS)
     cols.append(fits.Column(name="TSYSCHAN", format=f"{nchan}E", unit="K",
                             array=np.stack([r["TSYSCHAN"] for r in tsys]).astype(np.float32)))
     hdu = fits.BinTableHDU.from_columns(cols, nrows=len(tsys))
@@ -386,7 +432,7 @@ def _tsys_hdu(tsys: list, nchan: int):
 
 
 def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
-                products=None):
+                products=None, rfi: list | None = None):
     """The FITS HDU list of one scan: empty primary HDU, the SINGLE DISH BINTABLE, then the
     TSYS HISTORY table (if the noise source fired) and any HDUs ``products(header, nchan, rows)``
     returns (derived products, e.g. the baselined scan average)."""
@@ -401,6 +447,9 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
         fits.Column(name="FLAGGED", format=f"{nchan}L",
                     array=np.stack([r["FLAGGED"] for r in rows]).astype(bool)),
     ]
+    if all("CHANEXP" in r for r in rows):
+        cols.append(fits.Column(name="CHANEXP", format=f"{nchan}E", unit="s",
+                                array=np.stack([r["CHANEXP"] for r in rows]).astype(np.float32)))
     for key, (kind, unit) in ROW_SCALARS.items():
         if kind == "s":
             values = [r[key] for r in rows]
@@ -409,7 +458,7 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
         else:
             cols.append(fits.Column(name=key, format="D", unit=unit,
                                     array=np.array([r[key] for r in rows], dtype=np.float64)))
-    standard = set(REQUIRED_ROW_KEYS)
+    standard = set(REQUIRED_ROW_KEYS) | {"CHANEXP"}
     extra_keys: list[str] = []
     for r in rows:
         for k in r:
@@ -450,6 +499,8 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
     hdus = [primary, table]
     if tsys:
         hdus.append(_tsys_hdu(tsys, nchan))
+    if rfi:
+        hdus.append(_rfi_hdu(rfi))
     if products is not None:
         try:
             hdus.extend(products(header, nchan, rows))
@@ -459,11 +510,11 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
 
 
 def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows: list,
-                       tsys: list | None = None, products=None) -> Path:
+                       tsys: list | None = None, products=None, rfi: list | None = None) -> Path:
     """Write ``<scan>.fits`` via ``<scan>.fits.tmp`` + fsync + os.replace + fsync(folder)."""
     final = out_dir / f"{scan}.fits"
     tmp = out_dir / f"{scan}.fits.tmp"
-    hdul = _build_hdul(header, nchan, rows, tsys, products)
+    hdul = _build_hdul(header, nchan, rows, tsys, products, rfi)
     with open(tmp, "wb") as fh:  # "wb" truncates a .tmp a crashed run may have left
         hdul.writeto(fh)
         fh.flush()
@@ -564,6 +615,12 @@ class ScanWriter:
         self._append_bytes(_row_record(row, self.nchan))
         self.rows += 1
 
+    def append_rfi(self, rec: dict) -> None:
+        """Write one interference log record (keys of :data:`RFI_SCALARS`); durable on return."""
+        if self._closed:
+            raise ValueError(f"{self.journal_path}: append after close")
+        self._append_bytes(_encode({"kind": "rfi", **_scalars(rec, RFI_SCALARS, "rfi")}))
+
     def append_tsys(self, rec: dict) -> None:
         """Write one system-temperature measurement (keys of :data:`TSYS_SCALARS` and
         ``TSYSCHAN`` float[nchan]) to the journal; durable when this returns."""
@@ -592,7 +649,8 @@ class ScanWriter:
             path = None
             if contents.rows:
                 path = _write_fits_atomic(self.out_dir, self.scan_name, self.header,
-                                          self.nchan, contents.rows, contents.tsys, self.products)
+                                          self.nchan, contents.rows, contents.tsys, self.products,
+                                          contents.rfi)
             self.journal_path.unlink()
             _fsync_dir(self.out_dir)
         finally:
@@ -646,7 +704,7 @@ def recover(out_dir: Path, products=None) -> list[Path]:
                 continue
             if contents.rows:
                 path = _write_fits_atomic(out_dir, scan, contents.header, contents.nchan,
-                                          contents.rows, contents.tsys, products)
+                                          contents.rows, contents.tsys, products, contents.rfi)
                 written.append(path)
                 log.warning("recovered %d integrations of interrupted scan %s into %s; "
                             "dropped %d torn bytes", len(contents.rows), scan, path,

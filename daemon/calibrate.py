@@ -54,10 +54,12 @@ class Spectrum:
     unit: str              # "K" or "count"
     exposure_s: float
     folded: bool
+    chan_exposure_s: np.ndarray | None = None   # float32[nchan], after flagging
 
 
 def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: bool,
-              tsys_k: float, flag_dc: bool = True, beam_efficiency: float = 1.0) -> Spectrum:
+              tsys_k: float, flag_dc: bool = True, beam_efficiency: float = 1.0,
+              bad: dict | None = None) -> Spectrum:
     """Turn one integration's sums into a calibrated (or counts) spectrum.
 
     Parameters
@@ -69,31 +71,40 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
     tsys_k : system temperature for the kelvin scale, K
     flag_dc : flag the channel at the LO (the dongle's DC spike), in both phases
     beam_efficiency : main-beam efficiency eta_mb in (0, 1]; DATA = T_A / eta_mb
+    bad : phase -> bool[nchan], baseband channels of that phase not to use (carriers, spurs,
+        masks). A baseband channel c spoils the calibrated channels whose sums use it: c itself
+        and, folded, c + shift.
+
+    Notes
+    -----
+    Per-channel exposure: the sum over the phases of each channel's observing time after
+    flagging; folded, the mean of channel k's and its partner's (k - shift).
     """
     if not 0 < beam_efficiency <= 1:
         raise ValueError(f"main-beam efficiency {beam_efficiency!r}: expected 0 < eta <= 1")
     sig, ref = integ.sums[SIG], integ.sums[REF]
     flagged = np.zeros(nchan, dtype=bool)
-    dc = nchan // 2
+    if flag_dc:
+        flagged[nchan // 2] = True
+    for mask in (bad or {}).values():
+        flagged |= mask
     if not switched:
-        if flag_dc:
-            flagged[dc] = True
-        return Spectrum(sig.mean().astype(np.float32), flagged, "count", sig.exposure_s, False)
+        return Spectrum(sig.mean().astype(np.float32), flagged | ~np.isfinite(sig.mean()), "count",
+                        sig.exposure_s, False, sig.channel_exposure_s().astype(np.float32))
     s, r = sig.mean(), ref.mean()
     scale = tsys_k / beam_efficiency
     with np.errstate(divide="ignore", invalid="ignore"):
         d_sig = scale * (s - r) / r            # the line seen in the signal phase
         d_ref = scale * (s - r) / s            # minus the line seen in the reference phase
-    bad = ~np.isfinite(d_sig) | ~np.isfinite(d_ref)
-    d_sig[bad] = 0.0
-    d_ref[bad] = 0.0
-    flagged |= bad
+    flagged |= ~np.isfinite(d_sig) | ~np.isfinite(d_ref)
+    d_sig[flagged] = 0.0
+    d_ref[flagged] = 0.0
     exposure = sig.exposure_s + ref.exposure_s
+    chan_exp = sig.channel_exposure_s() + ref.channel_exposure_s()
     sh = int(shift_channels)
     if abs(sh) >= nchan // 2:
-        if flag_dc:
-            flagged[dc] = True
-        return Spectrum(d_sig.astype(np.float32), flagged, "K", exposure, False)
+        return Spectrum(d_sig.astype(np.float32), flagged, "K", exposure, False,
+                        chan_exp.astype(np.float32))
     # fold: F[k] = (D_sig[k] - D_ref[k - sh]) / 2 where 0 <= k - sh < nchan
     k = np.arange(nchan)
     partner = k - sh
@@ -102,8 +113,6 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
     f[ok] = 0.5 * (d_sig[k[ok]] - d_ref[partner[ok]])
     fl = ~ok | flagged
     fl[ok] |= flagged[partner[ok]]
-    if flag_dc:
-        fl[dc] = True                      # DC of the signal phase
-        if 0 <= dc + sh < nchan:
-            fl[dc + sh] = True             # DC of the reference phase lands here after the shift
-    return Spectrum(f.astype(np.float32), fl, "K", exposure, True)
+    exp_f = np.zeros(nchan)
+    exp_f[ok] = 0.5 * (chan_exp[k[ok]] + chan_exp[partner[ok]])
+    return Spectrum(f.astype(np.float32), fl, "K", exposure, True, exp_f.astype(np.float32))

@@ -126,6 +126,16 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
     "rfi": {
         "flag_dc": Key(True, bool, doc="flag the channel at the LO (DC spike)"),
+        "impulses": Key(True, bool, doc="blank spectra hit by short broadband bursts"),
+        "impulse_sigma": Key(6.0, float, 3, 100, doc="impulse threshold, robust sigmas"),
+        "sk": Key(True, bool, doc="spectral kurtosis per channel and block"),
+        "sk_pfa": Key(0.0013, float, 1e-7, 0.1,
+                      doc="spectral kurtosis false-alarm probability, each side"),
+        "carriers": Key(True, bool, doc="find persistent narrow-band carriers"),
+        "carrier_sigma": Key(5.0, float, 3, 100, doc="carrier threshold, robust sigmas"),
+        "carrier_history": Key(3, int, 1, 20, doc="integrations in the carriers' running mean"),
+        "spurs_hz": Key([], list, doc="the receiver's own lines: offsets from the LO, Hz"),
+        "masks_mhz": Key([], list, doc="polluted sky-frequency ranges [[lo, hi], ...], MHz"),
     },
     "pointing": {
         "frame": Key("auto", str, choices=("auto", "galactic", "azel", "radec")),
@@ -164,6 +174,8 @@ def _check(section: str, key: str, value: Any) -> Any:
     if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
         raise ConfigError(f"config {where} = {value!r}: expected printable ASCII (it goes into FITS headers)")
     if spec.kind is list:
+        if key == "spurs_hz":
+            return _check_numbers(where, value)
         return _check_windows(where, value)
     if spec.choices and value not in spec.choices:
         raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
@@ -172,8 +184,17 @@ def _check(section: str, key: str, value: Any) -> Any:
     return value
 
 
+def _check_numbers(where: str, value: list) -> list:
+    """A list of finite numbers."""
+    for x in value:
+        if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
+            raise ConfigError(f"config {where} = {value!r}: expected a list of numbers, e.g. "
+                              f"[-300000, 450000]; {x!r} is not")
+    return [float(x) for x in value]
+
+
 def _check_windows(where: str, value: list) -> list:
-    """A list of [lo, hi] velocity pairs (km/s) with lo < hi."""
+    """A list of [lo, hi] pairs (velocities in km/s, frequencies in MHz) with lo < hi."""
     out = []
     for w in value:
         ok = (isinstance(w, list) and len(w) == 2

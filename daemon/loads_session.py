@@ -70,7 +70,7 @@ class LoadsSession:
             self.source.load = "hot" if load == "hot" else "cold"
         n_blocks = max(1, round(seconds * self.source.fs / self.source.block_samples))
         s1 = np.zeros(self.spectrometer.nchan)
-        m = 0
+        m = np.zeros(self.spectrometer.nchan)
         for k in range(n_blocks + 1):   # the first block may hold the change of load: dropped
             block = self.source.read()
             if block is None:
@@ -82,7 +82,10 @@ class LoadsSession:
                 s1 += bs1
                 m += bm
         self.spectrometer.take()
-        return float(np.mean(s1[self.usable] / max(m, 1)))
+        use = self.usable & (m > 0)
+        if not use.any():
+            raise loads_mod.LoadsError("every channel was flagged as interference; no measurement")
+        return float(np.mean(s1[use] / m[use]))
 
     def run(self) -> loads_mod.LoadsRecord:
         """Open the receiver, perform the steps, return the record (not yet saved)."""

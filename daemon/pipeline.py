@@ -44,7 +44,9 @@ from .noise_switch import NoiseSwitchError, make_noise_switch
 from .scan_product import scan_products
 from .sources import SourceError, make_source
 from .spectral_axis import velocity_wcs_m_s
-from .spectrometer import Spectrometer
+from .carriers import CarrierFinder
+from .spectrometer import FlagSettings, Spectrometer
+from .static_masks import named_channels
 from .tsys import TsysMeter
 
 _QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
@@ -173,6 +175,18 @@ class Pointing:
 
 
 
+_LEAKAGE_CHANNELS = 2     # neighbours flagged beside a steady strong carrier (filterbank leakage)
+
+
+def _widen(mask: np.ndarray, k: int) -> np.ndarray:
+    """``mask`` grown by ``k`` channels on each side."""
+    out = mask.copy()
+    for d in range(1, k + 1):
+        out[d:] |= mask[:-d]
+        out[:-d] |= mask[d:]
+    return out
+
+
 class Daemon:
     """One observation run; see :meth:`run`."""
 
@@ -214,7 +228,13 @@ class Daemon:
             self.event("warning", eop)
         sp = cfg["spectrometer"]
         self.nchan = sp["channels"]
-        self.spectrometer = Spectrometer(self.nchan, sp["method"], sp["taps"])
+        self.spectrometer = Spectrometer(self.nchan, sp["method"], sp["taps"],
+                                         FlagSettings.from_config(cfg["rfi"]))
+        rfi = cfg["rfi"]
+        self.carriers = (CarrierFinder(self.nchan, rfi["carrier_sigma"], rfi["carrier_history"])
+                         if rfi["carriers"] else None)
+        self._carrier_freqs: dict = {}     # phase -> set of sky frequencies flagged last time
+        self.rfi_totals = {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}
         sch = self.source.schedule
         block_s = self.source.block_samples / cfg["source"]["sample_rate"]
         self.block_s = block_s
@@ -227,6 +247,7 @@ class Daemon:
                 self.switch.open()
             except (NoiseSwitchError, OSError) as exc:
                 raise ConfigError(f"noise source switch failed at start-up: {exc}") from None
+        self._pending_log: list = []    # interference log records of the row being made
         self.tsys_now = None            # newest good TsysMeasurement
         self.pending: list = []         # integrations waiting for the first measurement
         self._warned: set = set()
@@ -280,7 +301,7 @@ class Daemon:
                 break
             try:
                 if isinstance(row, tuple):
-                    writer.append_tsys(row[1])
+                    (writer.append_tsys if row[0] == "tsys" else writer.append_rfi)(row[1])
                 else:
                     writer.append(row)
             except OSError as exc:
@@ -317,9 +338,10 @@ class Daemon:
         switched = sch.mode == "frequency"
         tsys, age, trusted = self._tsys_for(integ.t_last_s)
         scale_k = tsys if np.isfinite(tsys) else cfg["calibration"]["tsys_k"]
-        spec = calibrate(integ, self.nchan, sch.shift_channels, switched, scale_k,
-                         cfg["rfi"]["flag_dc"], cfg["calibration"]["main_beam_efficiency"])
         t_mid = Time((integ.t_first_s + integ.t_last_s) / 2, format="unix", scale="utc")
+        bad, n_carrier, log = self._interference(integ, t_mid)
+        spec = calibrate(integ, self.nchan, sch.shift_channels, switched, scale_k,
+                         False, cfg["calibration"]["main_beam_efficiency"], bad=bad)
         coord = self.pointing(t_mid)
         pos = frames.describe(coord, self.location, t_mid)
         vframe = frames.vframe_lsrk_m_s(coord, self.location, t_mid)
@@ -341,6 +363,7 @@ class Daemon:
                             f"{cfg['pointing']['min_elevation']:g} deg: rows are saved fully flagged")
         crpix1 = self.nchan // 2 + 1.0
         cdelt1 = fs / self.nchan
+        fl = integ.flags
         crval1a, cdelt1a = velocity_wcs_m_s(sch.sig_lo_hz, cdelt1, HI_REST_FREQ_HZ, vframe)
         row = {
             "DATA": spec.data, "FLAGGED": flagged,
@@ -355,8 +378,59 @@ class Daemon:
             "LOSTSAMP": int(integ.lost_samples), "BLANKSMP": int(integ.blanked_samples),
             "CALSTATE": int(integ.cal_s > 0), "CALTIME": float(integ.cal_s),
             "UNKNTIME": float(integ.unknown_s), "FOLDED": int(spec.folded),
+            "CHANEXP": spec.chan_exposure_s,
+            "FLAGTIME": fl.blanked / fl.spectra if fl.spectra else 0.0,
+            "FLAGFREQ": float(np.mean(flagged)),
+            "SKFRAC": fl.sk_cells / (fl.blocks * self.nchan) if fl.blocks else 0.0,
+            "NIMPULSE": int(fl.impulses), "NCARRIER": int(n_carrier),
         }
+        for rec in log:
+            rec["DATE-OBS"] = row["DATE-OBS"]
+            self._pending_log.append(("rfi", rec))
         return row
+
+    def _interference(self, integ, t_mid: Time):
+        """Per phase: channels flagged by name or as carriers; the count; log records."""
+        cfg, sch = self.cfg["rfi"], self.source.schedule
+        bad, n_carrier, log = {}, 0, []
+        fl = integ.flags
+        self.rfi_totals["impulses"] += fl.impulses
+        self.rfi_totals["sk_cells"] += fl.sk_cells
+        self.rfi_totals["blanked_spectra"] += fl.blanked
+        if fl.impulses:
+            log.append({"KIND": "impulses", "FREQ": float("nan"), "VALUE": float(fl.impulses),
+                        "TEXT": f"{fl.blanked} spectra blanked"})
+        if fl.sk_cells and fl.blocks:
+            frac = fl.sk_cells / (fl.blocks * self.nchan)
+            log.append({"KIND": "sk", "FREQ": float("nan"), "VALUE": frac,
+                        "TEXT": f"{fl.sk_cells} channel-blocks removed"})
+        for phase, ph in integ.sums.items():
+            if not ph.spectra:
+                continue
+            lo = ph.lo_hz
+            mask = named_channels(lo, self.nchan, sch.channel_hz, cfg["flag_dc"], cfg["spurs_hz"],
+                                  cfg["masks_mhz"])
+            if ph.blocks:          # a channel SK removed in most blocks: a strong carrier,
+                steady = ph.sk_hits > 0.5 * ph.blocks            # whose leakage reaches the
+                mask |= _widen(steady, _LEAKAGE_CHANNELS)        # neighbours SK may miss
+            if self.carriers is not None:
+                protected = self._emission_mask(phase, float(t_mid.unix))
+                found = self.carriers.find((phase, lo), ph.mean(), ph.m, protected)
+                n_carrier += int(found.sum())
+                mask |= found
+                freqs = set(np.round(lo + (np.flatnonzero(found) - self.nchan // 2)
+                                     * sch.channel_hz, 0))
+                before = self._carrier_freqs.get(phase, set())
+                for f in sorted(freqs - before):
+                    log.append({"KIND": "carrier-on", "FREQ": float(f), "VALUE": 0.0,
+                                "TEXT": f"{phase} phase"})
+                for f in sorted(before - freqs):
+                    log.append({"KIND": "carrier-off", "FREQ": float(f), "VALUE": 0.0,
+                                "TEXT": f"{phase} phase"})
+                self.rfi_totals["carrier_onsets"] += len(freqs - before)
+                self._carrier_freqs[phase] = freqs
+            bad[phase] = mask
+        return bad, n_carrier, log
 
     def _finish(self, integ, rows_q: queue.Queue, result: RunResult, observed_s: float) -> None:
         """Hand a finished integration on: now, or after the first T_sys measurement."""
@@ -365,11 +439,17 @@ class Daemon:
         if self.meter is not None and self.tsys_now is None and not self._gave_up_waiting:
             self.pending.append(integ)
             return
+        self._put_row(integ, rows_q)
+
+    def _put_row(self, integ, rows_q: queue.Queue) -> None:
         rows_q.put(self._row(integ))
+        for item in self._pending_log:
+            rows_q.put(item)
+        self._pending_log.clear()
 
     def _flush_pending(self, rows_q: queue.Queue) -> None:
         for integ in self.pending:
-            rows_q.put(self._row(integ))
+            self._put_row(integ, rows_q)
         self.pending.clear()
 
     def _on_measurement(self, meas, rows_q: queue.Queue) -> None:

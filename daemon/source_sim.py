@@ -60,6 +60,30 @@ def tuner_bandpass(f_hz: np.ndarray, sample_rate: float) -> np.ndarray:
     return ripple / (1.0 + (f_hz / fc) ** 16)
 
 
+#: Simulated carriers (``sim.rfi = true``): sky frequency (Hz), amplitude (of full scale at the
+#: reference gain; the noise is 0.16 per component there) and duty cycle (on for that share of
+#: every 10 s). One strong steady carrier sits where HI can be (1420.9 MHz); the others lie
+#: outside the Galactic velocities of the default pointing, from strong to below detection.
+RFI_CARRIERS = (
+    (1420.900e6, 0.02, 1.0),
+    (1419.650e6, 0.03, 0.3),
+    (1419.300e6, 0.006, 1.0),
+    (1419.450e6, 0.0025, 1.0),
+    (1419.560e6, 0.0016, 1.0),
+    (1421.200e6, 0.004, 1.0),
+    (1418.700e6, 0.0018, 1.0),
+    (1419.800e6, 0.0006, 1.0),
+)
+#: Simulated bursts: one every ``period_s``, ``length_s`` long, complex Gaussian of the given
+#: amplitudes per component in turn.
+RFI_BURSTS = {"period_s": 0.25, "length_s": 200e-6, "amplitudes": (0.5, 0.15)}
+
+
+def carrier_on(duty: float, t_rel_s: float) -> bool:
+    """Whether a carrier of this duty cycle is on at ``t_rel_s`` (on first in each 10 s)."""
+    return duty >= 1 or (t_rel_s % 10.0) < 10.0 * duty
+
+
 @dataclass
 class TrueSky:
     """What the simulator put in, for tests of the calibration."""
@@ -109,6 +133,7 @@ class SimSource:
         self.load = None          # None (the sky), "hot" or "cold"
         self.pointing = None      # set by the pipeline: callable(time) -> SkyCoord
         self._sky_cache: dict = {}
+        self._tones: dict = {}    # (baseband Hz, samples) -> exp(2 pi i f k / fs), for carriers
         self._index = 0
         self._wall0 = None
         self.truth = None
@@ -173,19 +198,28 @@ class SimSource:
         return x
 
     def _add_rfi(self, x: np.ndarray, t_rel_s: float, lo_hz: float) -> None:
-        """A steady carrier, a carrier on 30 % of the time, impulsive bursts (broadband)."""
+        """Carriers (:data:`RFI_CARRIERS`) and impulsive broadband bursts (:data:`RFI_BURSTS`)."""
         n = x.size
-        tt = t_rel_s + np.arange(n) / self.fs
-        for f_sky, amp, duty in ((1420.9e6, 0.02, 1.0), (1419.65e6, 0.03, 0.3)):
+        scale = self.amplitude / _RMS_REF            # interference follows the tuner gain too
+        for f_sky, amp, duty in RFI_CARRIERS:
             f = f_sky - lo_hz
-            if abs(f) < self.fs / 2 and (duty >= 1 or (t_rel_s % 10.0) < 10.0 * duty):
-                x += (amp * np.exp(2j * np.pi * f * tt)).astype(np.complex64)
-        period = int(0.25 * self.fs)                    # a 200 us burst every 250 ms
-        start = (-int(round(t_rel_s * self.fs))) % period
+            if abs(f) < self.fs / 2 and carrier_on(duty, t_rel_s):
+                # exp(2 pi i f (t0 + k / fs)) = exp(2 pi i f t0) * exp(2 pi i f k / fs)
+                key = (f, n)
+                if key not in self._tones:
+                    self._tones[key] = np.exp(2j * np.pi * f * np.arange(n) / self.fs
+                                              ).astype(np.complex64)
+                x += np.complex64(scale * amp * np.exp(2j * np.pi * f * t_rel_s)) * self._tones[key]
+        period = int(round(RFI_BURSTS["period_s"] * self.fs))
+        length = int(round(RFI_BURSTS["length_s"] * self.fs))
+        first = int(round(t_rel_s * self.fs))
+        start = (-first) % period
         for s in range(start, n, period):
-            m = min(n, s + int(200e-6 * self.fs)) - s
-            x[s:s + m] += (0.5 * (self.rng.standard_normal(m) + 1j * self.rng.standard_normal(m))
-                           ).astype(np.complex64)
+            k = (first + s) // period                  # burst number since the start
+            amp = RFI_BURSTS["amplitudes"][k % len(RFI_BURSTS["amplitudes"])]
+            m = min(n, s + length) - s
+            x[s:s + m] += (scale * amp * (self.rng.standard_normal(m)
+                                          + 1j * self.rng.standard_normal(m))).astype(np.complex64)
 
     # -- the Source interface --------------------------------------------------------------
     def open(self) -> None:

@@ -130,6 +130,7 @@ def tsys_from_on_off(p_on: np.ndarray, p_off: np.ndarray, tcal_k: float,
         tsys_chan = tcal_k * p_off / (p_on - p_off)
     tsys_chan[~np.isfinite(tsys_chan) | (tsys_chan <= 0)] = np.nan
     w = line_free_channels(tsys_chan, usable)
+    w &= np.isfinite(p_on) & np.isfinite(p_off)
     on, off = float(p_on[w].sum()), float(p_off[w].sum())
     if not w.any() or not on > off > 0:
         return float("nan"), tsys_chan, w, (on / off if off > 0 else float("nan"))
@@ -161,7 +162,13 @@ class _Cycle:
     t_last_s: float = 0.0
 
     def means(self) -> dict:
-        return {ph: self.s1[ph] / self.m[ph] for ph in self.s1 if self.m[ph] > 0}
+        out = {}
+        for ph in self.s1:
+            m = np.asarray(self.m[ph], dtype=float)
+            if np.any(m > 0):
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    out[ph] = np.where(m > 0, self.s1[ph] / np.maximum(m, 1), np.nan)
+        return out
 
 
 class TsysMeter:
@@ -200,9 +207,9 @@ class TsysMeter:
         c = self._cycle
         if block.cal_on != c.cal:
             c.cal = None          # a cycle with mixed or unknown states is no use
-        if m > 0:
+        if np.any(np.asarray(m) > 0):
             c.s1[block.phase] = c.s1.get(block.phase, 0.0) + s1
-            c.m[block.phase] = c.m.get(block.phase, 0) + m
+            c.m[block.phase] = c.m.get(block.phase, 0) + np.asarray(m, dtype=float)
         c.t_last_s = block.t0_unix_s + block.duration_s
         if (block.index + 1) % self.bpc == 0:
             out = self._close() or out
