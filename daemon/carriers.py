@@ -94,6 +94,7 @@ class CarrierFinder:
         self.usable[edge:nchan - edge] = True
         self.usable[nchan // 2 - 1:nchan // 2 + 2] = False      # DC: flagged by name
         self._past: dict = {}                                    # (phase, lo) -> deque of r
+        self.last_found: dict = {}                               # phase -> the newest result
 
     def find(self, key, mean_power: np.ndarray, counts: np.ndarray,
              protected: np.ndarray | None = None) -> np.ndarray:
@@ -110,6 +111,7 @@ class CarrierFinder:
         past = self._past.setdefault(key, deque(maxlen=self.history))
         past.append(r)
         found = np.zeros(self.nchan, dtype=bool)
+        self.last_found[key[0] if isinstance(key, tuple) else key] = found
         if not np.isfinite(sigma_mad):
             return found
         with np.errstate(divide="ignore"):
@@ -123,5 +125,5 @@ class CarrierFinder:
         seed &= allowed
         if seed.any():
             found = _grow(seed, (r > _GROW_SIGMA * sigma) & allowed)
-        self.last_r, self.last_sigma = r, sigma
+        self.last_found[key[0] if isinstance(key, tuple) else key] = found
         return found

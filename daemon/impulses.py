@@ -1,19 +1,23 @@
 """Time-domain impulse blanking: spectra hit by short broadband bursts leave the accumulation.
 
-Each power spectrum j of a block has a total power T_j = sum_k P_j[k] (all channels: the
-power of the N-sample frame seen through the filterbank). For Gaussian noise T_j fluctuates
-by about 1/sqrt(N_eff) of its mean (a few per cent for N = 1024), while a burst from a spark,
-a switching supply or a radar pulse raises it many times. Against a robust level of the block,
+The samples of a block are cut into chunks of C = 512 samples (0.2 ms at 2.4 MS/s); each chunk
+has a power E_c = sum |x|^2. For Gaussian noise E_c fluctuates by 1/sqrt(C) of its mean (4 %),
+while a burst from a spark, a switching supply or a radar pulse raises it many times. Against
+a robust level of the block,
 
-    level = median_j T_j,     sigma = 1.4826 median_j |T_j - level|     (MAD, Gaussian-consistent)
+    level = median_c E_c,     sigma = 1.4826 median_c |E_c - level|     (MAD, Gaussian-consistent)
 
-a spectrum is hit when T_j > level + k sigma (``rfi.impulse_sigma`` = k). A polyphase spectrum
-is made from ``taps`` consecutive frames, so a burst in one frame reaches ``taps`` spectra: the
-mask is widened by taps - 1 spectra on each side (across block boundaries forward, through a
-carry-over). A block whose level jumps above 1.5 times the previous level of the same
-(LO, noise-source) state is blanked whole: a burst longer than half a block.
+a chunk is hit when E_c > level + k sigma (``rfi.impulse_sigma`` = k). Working on the samples
+rather than on the spectra keeps a burst's energy together: a polyphase spectrum spreads one
+frame over ``taps`` spectra with the prototype's weights, diluting it.
 
-The median and MAD are robust as long as bursts hit under half of a block's spectra.
+Every spectrum whose window (``taps`` frames of N samples) overlaps a hit chunk is blanked.
+Hits in a block's last samples also reach the first spectra of the next block (the
+channelizer keeps those samples as its history), so they are carried over, until a retune or a
+noise-source change drops the history. A block whose level jumps above 1.5 times the previous
+level of the same (LO, noise-source) state is blanked whole: a burst longer than half a block.
+
+The median and MAD are robust as long as bursts hit under half of a block's chunks.
 
 References
 ----------
@@ -27,6 +31,21 @@ import numpy as np
 
 _MAD_TO_SIGMA = 1.4826
 _LONG_BURST_RATIO = 1.5
+CHUNK_SAMPLES = 512
+
+
+def chunk_powers(x: np.ndarray, chunk: int = CHUNK_SAMPLES) -> tuple[np.ndarray, np.ndarray]:
+    """(E, start): power of consecutive ``chunk``-sample runs of complex ``x`` and their first
+    sample; a last, overlapping chunk covers the tail."""
+    n = x.size // chunk
+    f = np.ascontiguousarray(x, dtype=np.complex64).view(np.float32)
+    e = np.square(f[: 2 * n * chunk]).reshape(n, 2 * chunk).sum(axis=1, dtype=np.float64)
+    starts = np.arange(n) * chunk
+    if x.size % chunk and x.size >= chunk:
+        tail = np.square(f[-2 * chunk:]).sum(dtype=np.float64)
+        e = np.append(e, tail)
+        starts = np.append(starts, x.size - chunk)
+    return e, starts
 
 
 class ImpulseBlanker:
@@ -34,55 +53,64 @@ class ImpulseBlanker:
 
     Parameters
     ----------
-    sigma : threshold k in robust standard deviations of the block's total powers
-    taps : spectra reached by one frame (the filterbank's taps)
+    sigma : threshold k in robust standard deviations of the chunk powers
+    nchan : N, samples per frame
+    taps : frames per spectrum (the filterbank's taps)
     """
 
-    def __init__(self, sigma: float = 6.0, taps: int = 4):
+    def __init__(self, sigma: float = 6.0, nchan: int = 1024, taps: int = 4):
         self.sigma = float(sigma)
-        self.spread = max(int(taps) - 1, 0)
-        self._carry = 0                 # spectra at the start of the next block to blank
+        self.nchan = int(nchan)
+        self.window = int(taps) * self.nchan
+        self._tail_hits: list = []      # hit ranges of the last block, as offsets from its end
         self._levels: dict = {}         # state -> level of the last block
 
     def reset(self) -> None:
-        """A retune or noise-source change: no carry-over into unrelated spectra."""
-        self._carry = 0
+        """A retune or noise-source change: the channelizer's history, and our carry, go."""
+        self._tail_hits = []
 
-    def mask(self, totals: np.ndarray, state=None) -> tuple[np.ndarray, int]:
-        """Spectra to blank, and how many separate impulses were found.
+    def mask(self, x: np.ndarray, history: int, n_spectra: int, state=None):
+        """Spectra to blank among the ``n_spectra`` the channelizer makes of history + ``x``.
 
         Parameters
         ----------
-        totals : float[m] total power of each spectrum of the block
-        state : hashable key of the receiver state (LO, noise source) for the long-burst check
+        x : complex64 samples of the block (after settle blanking)
+        history : samples the channelizer puts in front of ``x`` (its history)
+        n_spectra : spectra it makes of them; spectrum j covers stream samples
+            [j N, j N + taps N), the stream being history followed by ``x``
+        state : hashable receiver state (LO, noise source) for the long-burst check
 
         Returns
         -------
-        blank : bool[m]
-        events : number of separate runs of hit spectra (before widening)
+        blank : bool[n_spectra]
+        events : number of separate impulses found in ``x``
         """
-        t = np.asarray(totals, dtype=np.float64)
-        m = t.size
-        blank = np.zeros(m, dtype=bool)
-        if m == 0:
-            return blank, 0
-        level = float(np.median(t))
-        sigma = _MAD_TO_SIGMA * float(np.median(np.abs(t - level)))
-        prev = self._levels.get(state)
-        if prev is not None and level > _LONG_BURST_RATIO * prev:
-            self._carry = 0
-            return np.ones(m, dtype=bool), 1          # the whole block: keep the old level
-        self._levels[state] = level
-        hit = t > level + self.sigma * sigma if sigma > 0 else np.zeros(m, dtype=bool)
-        events = int(np.count_nonzero(hit[1:] & ~hit[:-1]) + hit[0]) if m else 0
-        if self._carry:
-            blank[: self._carry] = True
-        if hit.any():
-            s = self.spread
-            idx = np.flatnonzero(hit)
-            for i in idx:
-                blank[max(i - s, 0): i + s + 1] = True
-            self._carry = max(0, idx[-1] + s + 1 - m)
-        else:
-            self._carry = 0
+        blank = np.zeros(n_spectra, dtype=bool)
+        ranges = [(history - b, history - a) for a, b in self._tail_hits]    # carried over
+        self._tail_hits = []
+        events = 0
+        if x.size >= CHUNK_SAMPLES:
+            e, starts = chunk_powers(x)
+            level = float(np.median(e))
+            prev = self._levels.get(state)
+            if prev is not None and level > _LONG_BURST_RATIO * prev:
+                blank[:] = True
+                return blank, 1                   # the whole block; keep the old level
+            self._levels[state] = level
+            sigma = _MAD_TO_SIGMA * float(np.median(np.abs(e - level)))
+            hit = e > level + self.sigma * sigma if sigma > 0 else np.zeros(e.size, bool)
+            if hit.any():
+                idx = np.flatnonzero(hit)
+                events = int(1 + np.count_nonzero(np.diff(idx) > 1))
+                for i in idx:
+                    a, b = int(starts[i]), int(starts[i]) + CHUNK_SAMPLES
+                    ranges.append((history + a, history + b))
+                    if b > x.size - self.window:  # still in the next block's history
+                        self._tail_hits.append((x.size - b, x.size - a))
+        n, w = self.nchan, self.window
+        for a, b in ranges:                       # stream samples [a, b) hit
+            j0 = max(0, -(-(a - w + 1) // n))     # first j with j N + w > a
+            j1 = min(n_spectra, (b - 1) // n + 1)  # last j with j N < b, plus one
+            if j1 > j0:
+                blank[j0:j1] = True
         return blank, events

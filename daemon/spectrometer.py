@@ -13,8 +13,9 @@ in ``cal_s`` / ``unknown_s``.
 
 Interference is kept out of the sums while it happens (when a :class:`FlagSettings` is given):
 
-1. impulse blanking (:mod:`spinflip.daemon.impulses`): spectra whose total power jumps above the
-   block's robust level are dropped from every channel;
+1. impulse blanking (:mod:`spinflip.daemon.impulses`): spectra whose samples hold a burst (a
+   0.2 ms chunk whose power jumps above the block's robust level) are dropped from every
+   channel;
 2. spectral kurtosis (:mod:`spinflip.daemon.spectral_kurtosis`) of each channel over the
    block's remaining M spectra, SK = (M + 1)/(M - 1) (M S2/S1^2 - 1): a channel outside the
    thresholds for the configured false-alarm probability leaves this block's sums.
@@ -117,7 +118,7 @@ class Spectrometer:
         self.nchan = nchan
         self.channelizer = make_channelizer(method, nchan, taps=taps)
         self.flagging = flagging
-        self.blanker = (ImpulseBlanker(flagging.impulse_sigma, self.channelizer.taps)
+        self.blanker = (ImpulseBlanker(flagging.impulse_sigma, nchan, self.channelizer.taps)
                         if flagging is not None and flagging.impulses else None)
         self.current = self._new()
         self._last_lo = None
@@ -176,6 +177,7 @@ class Spectrometer:
 
     def _flagged_sums(self, x: np.ndarray, state, tally: BlockFlags):
         """S1, S2 and per-channel counts of a block without the spectra and cells flagged."""
+        history = getattr(self.channelizer, "pending_samples", 0)
         p = self.channelizer.power(x)                        # (spectra, nchan), float32
         spectra = p.shape[0]
         tally.blocks += 1
@@ -184,7 +186,7 @@ class Spectrometer:
             z = np.zeros(self.nchan)
             return z, z.copy(), z.copy(), 0, None
         if self.blanker is not None:
-            blank, events = self.blanker.mask(p.sum(axis=1, dtype=np.float64), state)
+            blank, events = self.blanker.mask(x, history, spectra, state)
             if blank.any():
                 p = p[~blank]
                 tally.blanked += int(blank.sum())
