@@ -90,15 +90,16 @@ Thresholds
     with det V = (mu2 - mu1^2)(mu4 - mu2^2) - (mu3 - mu1 mu2)^2 (the tilted covariance of
     (y, y^2)) and the null saddlepoint at s = t = 0 (S1 at its mean), whose K_ss = M a. The
     lower threshold solves this for beta by bisection. Measured lower-tail rates at
-    p = 0.0013: 0.00128 (M = 16), 0.00129 (64), 0.00127 (256); at M = 3 it is 2 % from
-    the exact value 3 sqrt(3) p / pi (a = 1). Where the bisection's bracket
-    beta in [-30, 35] does not hold the answer (M <~ 3 at small p, or M >~ 10^6) or the
-    saddlepoint sits too close to the mean (|w| < 0.5, p near 0.5), the lower threshold comes
-    from the four-moment Pearson curve instead, which is exact at M = 2 and close to the
-    normal limit at large M.
-
-    For small M and ``"pearson3"`` the lower threshold can fall below 0, the estimator's
-    floor: no channel is then flagged as too steady.
+    p = 0.0013: 0.00128 (M = 16), 0.00129 (64), 0.00127 (256), and the same quality for
+    a = 2 and a = 0.5; at M = 3 (a = 1) the threshold is 6 % above the exact 3 sqrt(3) p / pi.
+    Near the mean the Pearson curve is the better of the two (and 1/w - 1/u loses precision
+    as w -> 0), so the lower threshold blends linearly from the saddlepoint one at |w| >= 1.5
+    (p <~ 0.07) to the Pearson one at |w| <= 0.5 (p >~ 0.3). Where the bisection's bracket
+    beta in [-30, 35] does not hold the answer (M of 2 or 3 at small p, or M >~ 10^6) the
+    Pearson curve is used alone: it is exact at M = 2 (a = 1, where SK / 3 ~ Beta(1/2, 1))
+    and close to the normal limit at large M. A lower threshold below 0, the estimator's
+    floor, is returned as 0 (no channel is then flagged as too steady); ``"pearson3"``
+    returns it as computed.
 
 ``scipy.stats`` is deliberately not imported (it costs the daemon a lot of memory); only
 ``scipy.special``.
