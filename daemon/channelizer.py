@@ -194,31 +194,51 @@ class Channelizer:
                 out[j:k] = self._chunk_power(rows, j, k)
         return np.fft.fftshift(out, axes=1)
 
-    def sums(self, x: np.ndarray):
+    def sums(self, x: np.ndarray, exclude: np.ndarray | None = None):
         """Sums of power and of power squared over the spectra of ``x``, never all held at once.
 
         Equivalent to ``power_sums(self.power(x))`` with less memory traffic: each run of
         128 spectra is summed in float32 (relative rounding below 1e-5) and accumulated in
         float64.
 
+        Parameters
+        ----------
+        x : complex64 samples
+        exclude : bool[m] or None
+            Spectra to leave out (e.g. blanked by impulse detection); ``m`` is
+            :meth:`spectra_for` ``(x.size)``.
+
         Returns
         -------
         s1, s2 : ndarray of float64, shape (nchan,)
-            S1 = sum_j P_j, S2 = sum_j P_j^2, fftshifted.
+            S1 = sum_j P_j, S2 = sum_j P_j^2 over the spectra kept, fftshifted.
         m : int
             Number of spectra summed.
         """
         x, m = self._prepare(x)
         s1 = np.zeros(self.nchan)
         s2 = np.zeros(self.nchan)
+        used = m
         if m:
+            if exclude is not None:
+                exclude = np.asarray(exclude, dtype=bool)
+                if exclude.shape != (m,):
+                    raise ValueError(f"exclude has shape {exclude.shape}; expected ({m},)")
+                used = m - int(exclude.sum())
             rows = self._rows(x, m)
             for j in range(0, m, _CHUNK):
-                p = self._chunk_power(rows, j, min(m, j + _CHUNK))
+                k = min(m, j + _CHUNK)
+                p = self._chunk_power(rows, j, k)
+                if exclude is not None and exclude[j:k].any():
+                    p[exclude[j:k]] = 0.0
                 s1 += p.sum(axis=0)
                 p *= p
                 s2 += p.sum(axis=0)
-        return np.fft.fftshift(s1), np.fft.fftshift(s2), m
+        return np.fft.fftshift(s1), np.fft.fftshift(s2), used
+
+    def spectra_for(self, nsamples: int) -> int:
+        """Spectra the next call with ``nsamples`` new samples will give."""
+        return self.n_spectra(int(nsamples) + getattr(self, "pending_samples", 0))
 
     def reset(self) -> None:
         """Nothing to drop: a stateless channelizer keeps no history."""

@@ -39,10 +39,12 @@ def chunk_powers(x: np.ndarray, chunk: int = CHUNK_SAMPLES) -> tuple[np.ndarray,
     sample; a last, overlapping chunk covers the tail."""
     n = x.size // chunk
     f = np.ascontiguousarray(x, dtype=np.complex64).view(np.float32)
-    e = np.square(f[: 2 * n * chunk]).reshape(n, 2 * chunk).sum(axis=1, dtype=np.float64)
+    a = f[: 2 * n * chunk].reshape(n, 2 * chunk)
+    e = np.einsum("ij,ij->i", a, a).astype(np.float64)     # sum of re^2 + im^2 per chunk
     starts = np.arange(n) * chunk
     if x.size % chunk and x.size >= chunk:
-        tail = np.square(f[-2 * chunk:]).sum(dtype=np.float64)
+        t = f[-2 * chunk:]
+        tail = float(np.dot(t, t))
         e = np.append(e, tail)
         starts = np.append(starts, x.size - chunk)
     return e, starts

@@ -178,25 +178,22 @@ class Spectrometer:
     def _flagged_sums(self, x: np.ndarray, state, tally: BlockFlags):
         """S1, S2 and per-channel counts of a block without the spectra and cells flagged."""
         history = getattr(self.channelizer, "pending_samples", 0)
-        p = self.channelizer.power(x)                        # (spectra, nchan), float32
-        spectra = p.shape[0]
+        spectra = self.channelizer.spectra_for(x.size)
         tally.blocks += 1
         tally.spectra += spectra
-        if spectra == 0:
-            z = np.zeros(self.nchan)
-            return z, z.copy(), z.copy(), 0, None
-        if self.blanker is not None:
+        blank = None
+        if self.blanker is not None and spectra:
             blank, events = self.blanker.mask(x, history, spectra, state)
             if blank.any():
-                p = p[~blank]
                 tally.blanked += int(blank.sum())
                 tally.impulses += events
-        s1 = p.sum(axis=0, dtype=np.float64)
-        s2 = np.square(p).sum(axis=0, dtype=np.float64)
-        m = np.full(self.nchan, float(p.shape[0]))
+            else:
+                blank = None
+        s1, s2, used = self.channelizer.sums(x, exclude=blank)
+        m = np.full(self.nchan, float(used))
         bad = None
-        if self.flagging.sk and p.shape[0] >= 16:
-            bad = sk_flags(s1, s2, p.shape[0], self.flagging.sk_pfa)
+        if self.flagging.sk and used >= 16:
+            bad = sk_flags(s1, s2, used, self.flagging.sk_pfa)
             if bad.any():
                 s1[bad] = 0.0
                 s2[bad] = 0.0

@@ -231,10 +231,12 @@ def test_bench_reports_every_figure():
     for group, names in (("throughput_msps", {"pfb", "fft", "welch"}),
                          ("realtime_factor_2p4", {"pfb", "fft"}),
                          ("ratio_vs_welch", {"pfb", "fft"}),
-                         ("radiometer_efficiency", {"pfb", "fft"})):
+                         ("radiometer_efficiency", {"pfb", "fft"}),
+                         ("spectrometer_msps", {"plain", "flagged"})):
         assert set(r[group]) == names
         for v in r[group].values():
             assert np.isfinite(v) and v > 0
+    assert np.isfinite(r["flagging_cost_share"]) and r["flagging_cost_share"] > -1
     for key in ("nchan", "taps", "seconds_of_data"):
         assert np.isfinite(r[key]) and r[key] > 0
     assert r["nchan"] == 1024 and r["seconds_of_data"] == pytest.approx(0.2, rel=0.01)
