@@ -156,25 +156,25 @@ _IV_HALF_WIDTH = 40.0
 # ---------------------------------------------------------------------------- checks
 def _check_shape(n, d) -> float:
     """a = N d after checking N (integer >= 1) and d (> 0)."""
-    if not (np.isscalar(n) and float(n) == int(n) and n >= 1):
-        raise ValueError(f"n (powers summed per accumulation) must be an integer >= 1, got {n!r}")
+    if not (np.isscalar(n) and np.isfinite(n) and float(n) == int(n) and n >= 1):
+        raise ValueError(f"n (powers summed per accumulation) must be an integer >= 1, got {n}")
     if not (np.isscalar(d) and np.isfinite(d) and d > 0):
         raise ValueError(f"d (gamma shape of one power, 1 for complex channels) must be > 0, "
-                         f"got {d!r}")
+                         f"got {d}")
     return float(n) * float(d)
 
 
 def _check_pfa(pfa) -> float:
     if not (np.isscalar(pfa) and 0.0 < float(pfa) < 0.5):
-        raise ValueError(f"false-alarm probability pfa must lie in (0, 0.5), got {pfa!r}")
+        raise ValueError(f"false-alarm probability pfa must lie in (0, 0.5), got {pfa}")
     return float(pfa)
 
 
 def _check_m(m) -> np.ndarray:
     m = np.asarray(m, dtype=np.float64)
     if m.size and not np.all((m >= 2) & np.isfinite(m)):
-        bad = m[~((m >= 2) & np.isfinite(m))].flat[0]
-        raise ValueError(f"number of accumulated spectra m must be finite and >= 2, got {bad!r}")
+        bad = float(m[~((m >= 2) & np.isfinite(m))].flat[0])
+        raise ValueError(f"number of accumulated spectra m must be finite and >= 2, got {bad:g}")
     return m
 
 
