@@ -412,8 +412,8 @@ def _rfi_hdu(rfi: list):
 
     hdu = fits.BinTableHDU.from_columns(_scalar_columns(rfi, RFI_SCALARS), nrows=len(rfi))
     hdu.header["EXTNAME"] = (RFI_EXTNAME, "interference seen, by kind and time")
-    hdu.header["COMMENT"] = ("KIND carrier-on/carrier-off (FREQ sky Hz, VALUE strength in sigma), "
-                             "impulses (VALUE count), sk (VALUE fraction of cells)")
+    hdu.header["COMMENT"] = ("KIND carrier-on/carrier-off (FREQ sky Hz, VALUE excess in sigma, "
+                             "NaN if removed by SK), impulses (VALUE count), sk (VALUE fraction)")
     return hdu
 
 

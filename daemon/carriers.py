@@ -95,6 +95,7 @@ class CarrierFinder:
         self.usable[nchan // 2 - 1:nchan // 2 + 2] = False      # DC: flagged by name
         self._past: dict = {}                                    # (phase, lo) -> deque of r
         self.last_found: dict = {}                               # phase -> the newest result
+        self.last_z: dict = {}                                   # phase -> r / sigma
 
     def find(self, key, mean_power: np.ndarray, counts: np.ndarray,
              protected: np.ndarray | None = None) -> np.ndarray:
@@ -116,6 +117,7 @@ class CarrierFinder:
             return found
         with np.errstate(divide="ignore"):
             sigma = np.maximum(1.0 / np.sqrt(np.maximum(counts, 1.0)), sigma_mad)
+        self.last_z[key[0] if isinstance(key, tuple) else key] = r / sigma
         seed = r > (self.sigma + 2.0) * sigma
         if len(past) == self.history:
             seed |= np.mean(past, axis=0) > self.sigma * sigma / np.sqrt(self.history)

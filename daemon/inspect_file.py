@@ -16,7 +16,7 @@ from pathlib import Path
 
 import numpy as np
 
-from .archive import EXTNAME, REQUIRED_ROW_KEYS, TSYS_EXTNAME
+from .archive import EXTNAME, REQUIRED_ROW_KEYS, RFI_EXTNAME, TSYS_EXTNAME
 from .scan_product import EXTNAME as PRODUCT_EXTNAME
 from .lines import C_M_S
 from .spectral_axis import (frequency_axis_hz, scan_average_lsrk,  # noqa: F401 (re-exported)
@@ -61,7 +61,10 @@ def _load(path: Path):
                 header = dict(hdu.header)
                 unit = hdu.columns["DATA"].unit or ""
                 cols = {k: np.array(hdu.data[k]) for k in REQUIRED_ROW_KEYS}
-                extras = {}
+                extras = {k: np.array(hdu.data[k]) for k in
+                          ("FLAGTIME", "SKFRAC", "NIMPULSE", "NCARRIER") if k in names}
+                if RFI_EXTNAME in hdul:
+                    extras["rfi_kinds"] = [str(k).strip() for k in hdul[RFI_EXTNAME].data["KIND"]]
                 if TSYS_EXTNAME in hdul:
                     extras["tsys_history"] = np.array(hdul[TSYS_EXTNAME].data["TSYS"])
                 if PRODUCT_EXTNAME in hdul:
@@ -173,6 +176,11 @@ def summarize(path: Path) -> dict:
                              if "LINEVLO" in product else None),
         "line_integral_k_km_s": float(product["LINEINT"]) if "LINEINT" in product else None,
         "nhi_cm2": float(product["NHI"]) if "NHI" in product else None,
+        "blanked_time_fraction": (float(np.mean(extras["FLAGTIME"]))
+                                  if "FLAGTIME" in extras else None),
+        "sk_removed_fraction": float(np.mean(extras["SKFRAC"])) if "SKFRAC" in extras else None,
+        "impulses": int(np.sum(extras["NIMPULSE"])) if "NIMPULSE" in extras else None,
+        "carrier_onsets": int(sum(k == "carrier-on" for k in extras.get("rfi_kinds", []))),
     }
 
 
@@ -214,6 +222,11 @@ def format_summary(d: dict) -> str:
         + (f"; scale {d['temperature_scale']}, eta_mb {d['beam_efficiency']:g}"
            if d["temperature_scale"] else ""),
     ]
+    if d["blanked_time_fraction"] is not None:
+        lines.append(f"rfi       {d['impulses']} impulses ({100 * d['blanked_time_fraction']:.2f} % "
+                     f"of spectra blanked), {100 * d['sk_removed_fraction']:.2f} % of channel-blocks "
+                     f"removed by spectral kurtosis, {d['carrier_onsets']} carrier onsets; "
+                     f"{100 * d['flagged_fraction']:.1f} % of channels flagged")
     if d["line_integral_k_km_s"] is not None:
         rms = (f", rms {d['baseline_rms_k']:.3f} K" if d["baseline_rms_k"] is not None else "")
         lines.append(f"integral  {d['line_integral_k_km_s']:.1f} K km/s over "

@@ -410,25 +410,33 @@ class Daemon:
             lo = ph.lo_hz
             mask = named_channels(lo, self.nchan, sch.channel_hz, cfg["flag_dc"], cfg["spurs_hz"],
                                   cfg["masks_mhz"])
-            if ph.blocks:          # a channel SK removed in most blocks: a strong carrier,
-                steady = ph.sk_hits > 0.5 * ph.blocks            # whose leakage reaches the
-                mask |= _widen(steady, _LEAKAGE_CHANNELS)        # neighbours SK may miss
+            # a channel SK removed in most blocks is a strong steady carrier, whose leakage
+            # reaches neighbours SK may miss; the shape search finds the weaker ones
+            carrier = (ph.sk_hits > 0.5 * ph.blocks) if ph.blocks else np.zeros(self.nchan, bool)
+            mask |= _widen(carrier, _LEAKAGE_CHANNELS)
             if self.carriers is not None:
                 protected = self._emission_mask(phase, float(t_mid.unix))
                 found = self.carriers.find((phase, lo), ph.mean(), ph.m, protected)
-                n_carrier += int(found.sum())
                 mask |= found
-                freqs = set(np.round(lo + (np.flatnonzero(found) - self.nchan // 2)
-                                     * sch.channel_hz, 0))
-                before = self._carrier_freqs.get(phase, set())
-                for f in sorted(freqs - before):
-                    log.append({"KIND": "carrier-on", "FREQ": float(f), "VALUE": 0.0,
-                                "TEXT": f"{phase} phase"})
-                for f in sorted(before - freqs):
-                    log.append({"KIND": "carrier-off", "FREQ": float(f), "VALUE": 0.0,
-                                "TEXT": f"{phase} phase"})
-                self.rfi_totals["carrier_onsets"] += len(freqs - before)
-                self._carrier_freqs[phase] = freqs
+                carrier = carrier | found
+            n_carrier += int(carrier.sum())
+            chans = np.flatnonzero(carrier)
+            sky = dict(zip(np.round(lo + (chans - self.nchan // 2) * sch.channel_hz, 0), chans))
+            freqs = set(sky)
+            z = None
+            if self.carriers is not None:            # excess of those the shape search found
+                z = np.where(found, self.carriers.last_z.get(phase), np.nan)
+            before = self._carrier_freqs.get(phase, set())
+            for f in sorted(freqs - before):
+                strength = float(z[sky[f]]) if z is not None and np.isfinite(z[sky[f]]) else \
+                    float("nan")                  # NaN: removed by spectral kurtosis
+                log.append({"KIND": "carrier-on", "FREQ": float(f), "VALUE": strength,
+                            "TEXT": f"{phase} phase"})
+            for f in sorted(before - freqs):
+                log.append({"KIND": "carrier-off", "FREQ": float(f), "VALUE": 0.0,
+                            "TEXT": f"{phase} phase"})
+            self.rfi_totals["carrier_onsets"] += len(freqs - before)
+            self._carrier_freqs[phase] = freqs
             bad[phase] = mask
         return bad, n_carrier, log
 

@@ -6,6 +6,8 @@ level of a noise-only capture of the same length (within 3 %), with at most 2 % 
 channels flagged.
 """
 
+import json
+
 import numpy as np
 import pytest
 from astropy.io import fits
@@ -39,7 +41,7 @@ def _capture(path, seed, carrier=False, bursts=False):
     return path
 
 
-def _replay(tmp_path, name, capture, rfi=True):
+def _replay(tmp_path, name, capture, rfi=True, inspect=False):
     cfg = write_config(tmp_path / f"{name}.toml", f"""[spectrometer]
 integration_s = 2.0
 [rfi]
@@ -52,7 +54,12 @@ carriers = {'true' if rfi else 'false'}
     assert r.returncode == 0, r.stderr
     (path,) = list((tmp_path / name).glob("*.fits"))
     with fits.open(path) as h:
-        return h["SINGLE DISH"].data.copy(), dict(h["SINGLE DISH"].header)
+        out = h["SINGLE DISH"].data.copy(), dict(h["SINGLE DISH"].header)
+    if inspect:
+        r = run_cli(["inspect", path, "--json"])
+        assert r.returncode == 0, r.stderr
+        return out + (json.loads(r.stdout),)
+    return out
 
 
 @pytest.fixture(scope="module")
@@ -60,7 +67,8 @@ def runs(tmp_path_factory):
     d = tmp_path_factory.mktemp("replay")
     dirty = _capture(d / "dirty.cu8", seed=1, carrier=True, bursts=True)
     clean = _capture(d / "clean.cu8", seed=2)
-    return {"dirty": _replay(d, "dirty", dirty), "clean": _replay(d, "clean", clean),
+    rows, head, summary = _replay(d, "dirty", dirty, inspect=True)
+    return {"dirty": (rows, head), "summary": summary, "clean": _replay(d, "clean", clean),
             "unflagged": _replay(d, "raw", dirty, rfi=False)}
 
 
@@ -90,3 +98,9 @@ def test_bursts_blanked_and_spectrum_back_at_the_noise_level(runs):
     raw_ratio = raw["DATA"][:, good].mean() / clean["DATA"][:, good].mean()
     assert raw_ratio - 1 > 0.05, raw_ratio
     assert np.all(rows["FLAGTIME"] > 0.005) and np.all(clean["FLAGTIME"] == 0)
+
+
+def test_inspect_reports_the_interference(runs):
+    s = runs["summary"]
+    assert s["impulses"] >= 0.99 * SECONDS / BURST_EVERY_S
+    assert 0.005 < s["blanked_time_fraction"] < 0.1 and s["carrier_onsets"] >= 1
