@@ -303,6 +303,7 @@ class JournalContents:
     rows: list = field(default_factory=list)
     tsys: list = field(default_factory=list)
     rfi: list = field(default_factory=list)
+    notes: list = field(default_factory=list)
     intact_bytes: int = 0
     torn_bytes: int = 0
 
@@ -359,6 +360,8 @@ def read_journal(path: Path) -> JournalContents:
             out.tsys.append(rec)
         elif meta.get("kind") == "rfi":
             out.rfi.append({k: meta[k] for k in RFI_SCALARS if k in meta})
+        elif meta.get("kind") == "note":
+            out.notes.append({"DATE-OBS": meta.get("DATE-OBS", ""), "TEXT": meta.get("TEXT", "")})
         else:
             nchan = out.nchan
             has_exp = bool(meta.get("chanexp"))
@@ -404,6 +407,11 @@ def _scalar_columns(records: list, spec: dict) -> list:
             cols.append(fits.Column(name=key, format="D", unit=unit, array=np.array(
                 [float(r.get(key, np.nan)) for r in records], dtype=np.float64)))
     return cols
+
+
+def _with_notes(header: dict, notes: list) -> dict:
+    """The header with the observer's notes attached (written as HISTORY cards)."""
+    return dict(header, _NOTES=[f"{n['DATE-OBS']} {n['TEXT']}" for n in notes]) if notes else header
 
 
 def _rfi_hdu(rfi: list):
@@ -487,8 +495,10 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
                 "SITEELEV": "site height above the ellipsoid, m",
                 "SPECSYS": "frame of the frequency axis (CRVAL1, CDELT1)",
                 "BUNIT": "unit of DATA", "OBSERVER": "observer"}
+    for note in header.get("_NOTES", []):
+        th.add_history(f"note {note}")
     for key, value in header.items():
-        if key in ("EXTVER", "TELESCOP", "DATE", "ORIGIN"):
+        if key in ("EXTVER", "TELESCOP", "DATE", "ORIGIN", "_NOTES"):
             continue
         card_key = key if len(key) <= 8 else f"HIERARCH {key}"
         th[card_key] = (value, comments.get(key, ""))
@@ -615,6 +625,16 @@ class ScanWriter:
         self._append_bytes(_row_record(row, self.nchan))
         self.rows += 1
 
+    def append_note(self, rec: dict) -> None:
+        """Write an observer's note (``DATE-OBS``, ``TEXT``); it becomes a HISTORY card."""
+        if self._closed:
+            raise ValueError(f"{self.journal_path}: append after close")
+        text = str(rec["TEXT"])
+        if not _is_ascii_text(text):
+            raise ValueError(f"note {text!r}: not printable ASCII")
+        self._append_bytes(_encode({"kind": "note", "DATE-OBS": str(rec["DATE-OBS"]),
+                                    "TEXT": text}))
+
     def append_rfi(self, rec: dict) -> None:
         """Write one interference log record (keys of :data:`RFI_SCALARS`); durable on return."""
         if self._closed:
@@ -648,7 +668,8 @@ class ScanWriter:
             contents = read_journal(self.journal_path)
             path = None
             if contents.rows:
-                path = _write_fits_atomic(self.out_dir, self.scan_name, self.header,
+                path = _write_fits_atomic(self.out_dir, self.scan_name,
+                                          _with_notes(self.header, contents.notes),
                                           self.nchan, contents.rows, contents.tsys, self.products,
                                           contents.rfi)
             self.journal_path.unlink()
@@ -703,7 +724,9 @@ def recover(out_dir: Path, products=None) -> list[Path]:
                 _fsync_dir(out_dir)
                 continue
             if contents.rows:
-                path = _write_fits_atomic(out_dir, scan, contents.header, contents.nchan,
+                path = _write_fits_atomic(out_dir, scan,
+                                          _with_notes(contents.header, contents.notes),
+                                          contents.nchan,
                                           contents.rows, contents.tsys, products, contents.rfi)
                 written.append(path)
                 log.warning("recovered %d integrations of interrupted scan %s into %s; "

@@ -51,6 +51,26 @@ def build_parser() -> argparse.ArgumentParser:
     lo.add_argument("--yes", action="store_true",
                     help="do not wait for Enter at each step (the loads are already in place, "
                     "or the simulator places them)")
+    c = sub.add_parser("ctl", help="send a command to a running daemon (its control socket)")
+    c.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5622",
+                   help="the daemon's control socket (default tcp://127.0.0.1:5622)")
+    c.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
+    c.add_argument("--timeout", type=_positive_seconds, default=5.0, metavar="S",
+                   help="seconds to wait for the reply (default 5)")
+    c.add_argument("words", nargs="+", metavar="COMMAND [KEY=VALUE ...]",
+                   help="status, start, stop, pause, resume, new_scan, calibrate, point, "
+                   "set_integration, annotate")
+    k = sub.add_parser("keys", help="create CURVE key pairs for the daemon or a client")
+    k.add_argument("dir", metavar="DIR", help="the daemon's keys folder (publish.keys)")
+    k.add_argument("--client", metavar="NAME", help="create a client key pair in DIR/NAME")
+    co = sub.add_parser("collect", help="gather several daemons' live data in one place")
+    co.add_argument("stations", nargs="+", metavar="NAME=ENDPOINT",
+                    help="a station name and its daemon's data socket")
+    co.add_argument("--relay", metavar="ENDPOINT", help="re-publish everything here, by station")
+    co.add_argument("--archive", metavar="DIR", help="store every received spectrum here")
+    co.add_argument("--keys", metavar="DIR", help="client CURVE keys for secured daemons")
+    co.add_argument("--duration", type=_positive_seconds, metavar="S",
+                    help="seconds to collect (default: until stopped)")
     i = sub.add_parser("inspect", help="summary of a saved FITS scan")
     i.add_argument("file", metavar="FILE")
     i.add_argument("--json", action="store_true", help="machine-readable output")
@@ -129,6 +149,21 @@ def _cmd_loads(args) -> int:
     return 0
 
 
+def _cmd_ctl(args) -> int:
+    from .control import ctl_main
+    return ctl_main(args.connect, args.words, args.keys, args.timeout)
+
+
+def _cmd_keys(args) -> int:
+    from .keys import keys_main
+    return keys_main(Path(args.dir), args.client)
+
+
+def _cmd_collect(args) -> int:
+    from .collect import main_collect
+    return main_collect(args)
+
+
 def _cmd_inspect(args) -> int:
     from .inspect_file import format_summary, summarize
     summary = summarize(Path(args.file))
@@ -146,7 +181,8 @@ def _cmd_bench(args) -> int:
 def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
-               "bench": _cmd_bench}[args.command]
+               "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
+               "collect": _cmd_collect}[args.command]
     from .sources import SourceError
     try:
         return handler(args)

@@ -148,10 +148,10 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "dir": Key("spinflip-data", str),
     },
     "publish": {
-        "data": Key("tcp://127.0.0.1:5621", str),
-        "control": Key("tcp://127.0.0.1:5622", str),
-        "keys": Key("", str, doc="folder of CURVE keys"),
-        "allow_insecure": Key(False, bool),
+        "data": Key("tcp://127.0.0.1:5621", str, doc="live data (PUB) endpoint; '' for none"),
+        "control": Key("tcp://127.0.0.1:5622", str, doc="control (REP) endpoint; '' for none"),
+        "keys": Key("", str, doc="folder of CURVE keys (spinflip keys); '' for none"),
+        "allow_insecure": Key(False, bool, doc="bind beyond loopback without keys (warned)"),
     },
 }
 
@@ -252,6 +252,14 @@ def _cross_checks(cfg: dict) -> None:
     if cal["switch"] == "gpio" and cal["gpio_line"] < 0:
         raise ConfigError("config calibration.gpio_line is not given: calibration.switch = 'gpio' "
                           "needs the line offset (0-1023) on calibration.gpio_chip")
+    for key in ("data", "control"):
+        ep = cfg["publish"][key]
+        if ep and not ep.startswith(("tcp://", "ipc://", "inproc://")):
+            raise ConfigError(f"config publish.{key} = {ep!r}: expected a ZeroMQ endpoint such "
+                              "as 'tcp://127.0.0.1:5621', or '' for none")
+    if cfg["publish"]["data"] and cfg["publish"]["data"] == cfg["publish"]["control"]:
+        raise ConfigError(f"config publish.control = {cfg['publish']['control']!r}: must differ "
+                          "from publish.data")
     if cfg["baseline"]["mode"] == "windows" and not cfg["baseline"]["windows_km_s"]:
         raise ConfigError("config baseline.windows_km_s is empty: baseline.mode = 'windows' needs "
                           "at least one line-free [lo, hi] window in km/s")

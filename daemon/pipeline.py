@@ -32,13 +32,20 @@ import numpy as np
 from astropy.time import Time
 
 import functools
+import shutil
 
-from . import archive, frames
+import zmq
+
+from spinflip import __version__
+
+from . import archive, frames, wire
 from . import loads as loads_mod
 from .cal_control import CalControl
 from .calibrate import calibrate
 from .config import ConfigError
 from .kinematics import expected_velocity_range_km_s
+from .live import RunningAverage, spectrum_message
+from .publisher import Publisher, PublishError
 from .lines import HI_REST_FREQ_HZ, radio_velocity_m_s
 from .noise_switch import NoiseSwitchError, make_noise_switch
 from .scan_product import scan_products
@@ -247,6 +254,17 @@ class Daemon:
                 self.switch.open()
             except (NoiseSwitchError, OSError) as exc:
                 raise ConfigError(f"noise source switch failed at start-up: {exc}") from None
+        self._live_setup()
+        self.state = "observing"        # observing, paused, idle or stopping
+        self.commands: queue.Queue = queue.Queue()
+        self.scan_name = None
+        self.integ_blocks = 0           # blocks in the integration being made
+        self.total_blocks = 0           # blocks observed (paused and idle ones not counted)
+        self.started_mono = _time.monotonic()
+        self.counters = {"received": 0, "lost": 0, "dropped": 0, "error": None,
+                         "write_error": None}
+        self.row_index = 0
+        self.average = RunningAverage()
         self._pending_log: list = []    # interference log records of the row being made
         self.tsys_now = None            # newest good TsysMeasurement
         self.pending: list = []         # integrations waiting for the first measurement
@@ -269,6 +287,9 @@ class Daemon:
         self.events.append((severity, text))
         del self.events[:-200]
         self.log(f"{severity}: {text}")
+        if getattr(self, "publisher", None) is not None:
+            self.publisher.publish("event", {"severity": severity, "text": text,
+                                             "time_utc": wire.now_utc_iso(), "station": ""})
 
     # -- the threads -----------------------------------------------------------------------
     def _reader(self, q: queue.Queue, counters: dict) -> None:
@@ -294,19 +315,42 @@ class Daemon:
         finally:
             q.put(_STOP)
 
-    def _writer(self, q: queue.Queue, writer: archive.ScanWriter, counters: dict) -> None:
+    def _writer(self, q: queue.Queue, result: RunResult) -> None:
+        """Writes rows, Tsys and interference records and notes; opens and closes scans."""
+        writer = None
+        products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
+
+        def close():
+            if writer is not None:
+                path = writer.close()
+                if path:
+                    result.files.append(path)
+                    self.log(f"scan saved: {path}")
+
         while True:
-            row = q.get()
-            if row is _STOP:
-                break
+            item = q.get()
             try:
-                if isinstance(row, tuple):
-                    (writer.append_tsys if row[0] == "tsys" else writer.append_rfi)(row[1])
+                if item is _STOP:
+                    close()
+                    break
+                if isinstance(item, tuple) and item[0] == "open":
+                    close()
+                    writer = archive.ScanWriter(self.out_dir, item[1], item[2], self.nchan,
+                                                products=products)
+                    self.scan_name = writer.scan_name
+                elif isinstance(item, tuple) and item[0] == "close":
+                    close()
+                    writer = None
+                elif writer is None:
+                    continue
+                elif isinstance(item, tuple):
+                    {"tsys": writer.append_tsys, "rfi": writer.append_rfi,
+                     "note": writer.append_note}[item[0]](item[1])
                 else:
-                    writer.append(row)
+                    writer.append(item)
             except OSError as exc:
-                counters["write_error"] = exc
-                self.log(f"error: cannot write integration to {writer}: {exc}")
+                self.counters["write_error"] = exc
+                self.log(f"error: cannot write to {writer}: {exc}")
 
     # -- one row ---------------------------------------------------------------------------
     def _warn_once(self, key: str, severity: str, text: str) -> None:
@@ -450,10 +494,21 @@ class Daemon:
         self._put_row(integ, rows_q)
 
     def _put_row(self, integ, rows_q: queue.Queue) -> None:
-        rows_q.put(self._row(integ))
+        row = self._row(integ)
+        rows_q.put(row)
         for item in self._pending_log:
             rows_q.put(item)
         self._pending_log.clear()
+        self.last_row = row
+        if self.publisher is not None:
+            unit = "K" if self.source.schedule.mode == "frequency" else "count"
+            scan = self.scan_name or ""
+            self.average.add(row, self.nchan)
+            self.publisher.publish(*spectrum_message(row, self.nchan, "integration", scan,
+                                                     self.row_index, unit))
+            self.publisher.publish(*spectrum_message(row, self.nchan, "average", scan,
+                                                     self.row_index, unit, self.average))
+        self.row_index += 1
 
     def _flush_pending(self, rows_q: queue.Queue) -> None:
         for integ in self.pending:
@@ -500,14 +555,24 @@ class Daemon:
         head.update(self.tsys_plan.cards)
         return head
 
-    def _keep_partial(self, n_blocks: int, rows_q: queue.Queue, result: RunResult) -> int:
-        """At a planned end (duration reached, replay file ended) keep the last, shorter
-        integration if it holds at least one whole switching cycle; its EXPOSURE says how long."""
-        partial = n_blocks % self.blocks_per_integration
+    def _end_integration(self, rows_q: queue.Queue, result: RunResult, why: str) -> None:
+        """Close the integration being made: kept as a shorter row if it holds at least one
+        whole switching cycle (its EXPOSURE says how long), else dropped and said so."""
+        partial = self.integ_blocks
+        self.integ_blocks = 0
         if partial >= self.source.schedule.blocks_per_cycle:
             self._finish(self.spectrometer.take(), rows_q, result, partial * self.block_s)
-            return n_blocks + self.blocks_per_integration - partial
-        return n_blocks
+        else:
+            self.spectrometer.take()
+            if partial:
+                self.log(f"note: the unfinished integration ({partial * self.block_s:.1f} s) "
+                         f"was dropped ({why}); every finished one is saved")
+
+    def _restart_stream(self) -> None:
+        """After a gap (pause, idle, new pointing): no spectrum or Tsys firing spans it."""
+        self.spectrometer._last_lo = None
+        if self.meter is not None:
+            self.meter.reset()
 
     # -- the run ---------------------------------------------------------------------------
     def run(self) -> RunResult:
@@ -519,50 +584,64 @@ class Daemon:
         except BaseException:
             self.switch.close()
             raise
+        try:
+            self._live_start()
+        except BaseException:
+            self.source.close()
+            self.switch.close()
+            raise
         products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
         result.recovered = archive.recover(self.out_dir, products=products)
         for p in result.recovered:
             self.log(f"recovered integrations of an interrupted scan into {p}")
-        scan = "scan-" + self.t_start.strftime("%Y%m%dT%H%M%S")   # the writer adds -1, -2 if taken
-        writer = archive.ScanWriter(self.out_dir, scan, self._header(), self.nchan,
-                                    products=products)
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         rows_q: queue.Queue = queue.Queue()
-        counters = {"dropped": 0, "error": None, "write_error": None}
+        self._blocks_q = blocks_q
+        counters = self.counters
         reader = threading.Thread(target=self._reader, args=(blocks_q, counters), daemon=True,
                                   name="reader")
-        wthread = threading.Thread(target=self._writer, args=(rows_q, writer, counters),
-                                   name="writer")
+        wthread = threading.Thread(target=self._writer, args=(rows_q, result), name="writer")
         reader.start()
         wthread.start()
+        self._open_scan(rows_q, self.t_start)
         max_blocks = None if self.duration_s is None else max(
             1, round(self.duration_s / self.block_s))
-        n_blocks = 0
         try:
             while not self.stop_event.is_set():
-                block = blocks_q.get()
+                self._run_commands(rows_q, result)
+                try:
+                    block = blocks_q.get(timeout=0.2)
+                except queue.Empty:
+                    continue
                 if block is _STOP:
                     if counters["error"] is None and not self.stop_event.is_set():
-                        n_blocks = self._keep_partial(n_blocks, rows_q, result)   # replay's end
+                        self._end_integration(rows_q, result, "the source ended")   # replay
                     break
+                counters["received"] += block.n_samples
+                result.lost_samples += block.lost_before
+                self._last_block_end = block.t0_unix_s + block.duration_s
+                if self.state != "observing":
+                    continue
                 s1, m = self.spectrometer.add(block)
                 if self.meter is not None:
                     meas = self.meter.add(block, s1, m)
                     if meas is not None:
                         self._on_measurement(meas, rows_q)
-                result.lost_samples += block.lost_before
-                n_blocks += 1
-                if n_blocks % self.blocks_per_integration == 0:
+                self.integ_blocks += 1
+                self.total_blocks += 1
+                if self.integ_blocks >= self.blocks_per_integration:
+                    self.integ_blocks = 0
                     self._finish(self.spectrometer.take(), rows_q, result,
                                  self.blocks_per_integration * self.block_s)
-                if max_blocks is not None and n_blocks >= max_blocks:
-                    n_blocks = self._keep_partial(n_blocks, rows_q, result)   # planned end
+                if max_blocks is not None and self.total_blocks >= max_blocks:
+                    self._end_integration(rows_q, result, "planned end")
                     break
         finally:
             self.stop_event.set()
-            if n_blocks % self.blocks_per_integration:
-                self.log(f"note: the unfinished integration ({(n_blocks % self.blocks_per_integration) * self.block_s:.1f} s) "
-                         "was dropped; every finished one is saved")
+            self.state = "stopping"
+            if self.integ_blocks:
+                self.log(f"note: the unfinished integration ({self.integ_blocks * self.block_s:.1f}"
+                         " s) was dropped; every finished one is saved")
             if self.pending:           # no measurement ever came: keep them, fully flagged
                 self._gave_up_waiting = True
                 self._flush_pending(rows_q)
@@ -571,15 +650,244 @@ class Daemon:
             reader.join(timeout=5)
             self.source.close()
             self.switch.close()
-            path = writer.close()
-            if path:
-                result.files.append(path)
+            self._live_stop()
         result.lost_samples += counters["dropped"]
         if counters["write_error"] is not None:
             raise OSError(f"writing {self.out_dir}: {counters['write_error']}")
         if counters["error"] is not None:
             raise SourceError(str(counters["error"]))
         return result
+
+    # -- scans -------------------------------------------------------------------------------
+    def _flush_before_switch(self, rows_q: queue.Queue) -> None:
+        """Rows still waiting for a first Tsys belong to the scan being closed: write them
+        there now (fully flagged, as at the end of a run)."""
+        if self.pending:
+            self._gave_up_waiting = True
+            self._flush_pending(rows_q)
+            self._gave_up_waiting = False
+
+    def _open_scan(self, rows_q: queue.Queue, t: Time) -> None:
+        """Start a new scan file (named after its start time; the writer adds -1, -2 if taken)."""
+        self._flush_before_switch(rows_q)
+        name = "scan-" + t.strftime("%Y%m%dT%H%M%S")
+        self.scan_name = name
+        self.average.reset()
+        self.row_index = 0
+        rows_q.put(("open", name, self._header()))
+
+    def _now(self) -> Time:
+        end = getattr(self, "_last_block_end", None)
+        return Time(end, format="unix", scale="utc") if end else self.t_start
+
+    # -- control commands (applied by the DSP loop between blocks) ---------------------------
+    def submit(self, cmd: str, args: dict, timeout_s: float = 5.0) -> dict:
+        """Run a control command in the DSP loop and wait for its result (or CommandError)."""
+        from .control import CommandError
+        if cmd == "status":
+            return self.status()
+        box = {"done": threading.Event()}
+        self.commands.put((cmd, args, box))
+        if not box["done"].wait(timeout_s):
+            raise CommandError(f"{cmd}: the daemon did not get to it within {timeout_s:g} s")
+        if "error" in box:
+            raise CommandError(box["error"])
+        return box["result"]
+
+    def _run_commands(self, rows_q: queue.Queue, result: RunResult) -> None:
+        while True:
+            try:
+                cmd, args, box = self.commands.get_nowait()
+            except queue.Empty:
+                return
+            try:
+                box["result"] = self._apply(cmd, args, rows_q, result)
+            except (ValueError, ConfigError) as exc:
+                box["error"] = str(exc).splitlines()[0]
+            except Exception as exc:  # a command must never stop acquisition
+                box["error"] = f"{cmd} failed: {exc}"
+            box["done"].set()
+
+    def _apply(self, cmd: str, args: dict, rows_q: queue.Queue, result: RunResult) -> dict:
+        state = self.state
+        if cmd == "pause":
+            if state != "observing":
+                raise ValueError(f"pause: the daemon is {state}, not observing")
+            self._end_integration(rows_q, result, "paused")
+            self.state = "paused"
+        elif cmd == "resume":
+            if state != "paused":
+                raise ValueError(f"resume: the daemon is {state}, not paused")
+            self._restart_stream()
+            self.state = "observing"
+        elif cmd == "stop":
+            if state not in ("observing", "paused"):
+                raise ValueError(f"stop: the daemon is {state}; nothing to stop")
+            self._end_integration(rows_q, result, "stopped")
+            self._flush_before_switch(rows_q)
+            rows_q.put(("close",))
+            self.scan_name = None
+            self.state = "idle"
+        elif cmd in ("start", "new_scan"):
+            if cmd == "start" and state != "idle":
+                raise ValueError(f"start: the daemon is already {state} (new_scan starts another)")
+            if cmd == "new_scan" and state == "idle":
+                raise ValueError("new_scan: the daemon is idle; use start")
+            self._end_integration(rows_q, result, "new scan")
+            self._restart_stream()
+            self._open_scan(rows_q, self._now())
+            self.state = "observing"
+        elif cmd == "point":
+            self._point(args, rows_q, result)
+        elif cmd == "set_integration":
+            sch = self.source.schedule
+            cycle = sch.blocks_per_cycle
+            self._end_integration(rows_q, result, "new integration length")
+            self.blocks_per_integration = cycle * max(1, math.ceil(
+                float(args["seconds"]) / (self.block_s * cycle)))
+            return {"integration_s": self.blocks_per_integration * self.block_s}
+        elif cmd == "annotate":
+            if self.scan_name is None:
+                raise ValueError("annotate: no scan is open (start one first)")
+            rows_q.put(("note", {"DATE-OBS": self._now().isot, "TEXT": str(args["text"])}))
+        elif cmd == "calibrate":
+            if self.tsys_plan.kind != "noise_source":
+                raise ValueError(f"calibrate: calibration.tsys_from = "
+                                 f"'{self.cfg['calibration']['tsys_from']}' has no noise source "
+                                 "to fire")
+            self.source.fire_now = True
+        else:
+            raise ValueError(f"{cmd}: not a command this daemon knows")
+        return {"state": self.state, "scan": self.scan_name}
+
+    def _point(self, args: dict, rows_q: queue.Queue, result: RunResult) -> None:
+        frame, lon, lat = args["frame"], float(args["lon_deg"]), float(args["lat_deg"])
+        p = self.cfg["pointing"]
+        new = {"frame": frame, "lon": lon, "lat": lat, "object": args.get("object", ""),
+               "min_elevation": p["min_elevation"]}
+        t = self._now()
+        trial = Pointing({"pointing": new}, self.location, t)
+        el = lat if frame == "azel" else frames.describe(trial(t), self.location, t)["ELEVATIO"]
+        if el < p["min_elevation"]:
+            raise ValueError(f"point {trial.object}: elevation {el:.1f} deg is below "
+                             f"pointing.min_elevation = {p['min_elevation']:g} deg")
+        self._end_integration(rows_q, result, "new pointing")
+        self.pointing = trial
+        if hasattr(self.source, "pointing"):
+            self.source.pointing = trial
+        self._restart_stream()
+        if self.state != "idle":
+            self._open_scan(rows_q, t)
+
+    # -- live publishing -----------------------------------------------------------------------
+    def _live_setup(self) -> None:
+        """Check the endpoints and keys at start-up (ConfigError, exit 2, when refused)."""
+        from .keys import KeysError, ServerSecurity, check_bind
+        pub = self.cfg["publish"]
+        self.publisher = self.control = self.security = None
+        self._insecure = None
+        if not (pub["data"] or pub["control"]):
+            return
+        try:
+            self.security = ServerSecurity.from_config(pub)
+            for key in ("data", "control"):
+                if pub[key]:
+                    warning = check_bind(pub[key], self.security, pub["allow_insecure"],
+                                         key=f"publish.{key}")
+                    self._insecure = warning or self._insecure
+        except KeysError as exc:
+            raise ConfigError(str(exc)) from None
+
+    def _live_start(self) -> None:
+        from .control import ControlServer
+        pub = self.cfg["publish"]
+        if not (pub["data"] or pub["control"]):
+            return
+        if self.security is not None:
+            self.security.start(zmq.Context.instance())
+        try:
+            if pub["data"]:
+                self.publisher = Publisher(pub["data"], self.security)
+                self.publisher.start()
+            if pub["control"]:
+                self.control = ControlServer(pub["control"], self.submit, self.security)
+                self.control.start()
+        except (PublishError, OSError, RuntimeError) as exc:
+            self._live_stop()
+            raise ConfigError(str(exc).splitlines()[0]) from None
+        if self._insecure:
+            self.event("warning", self._insecure)
+        self._status_stop = threading.Event()
+        self._status_thread = threading.Thread(target=self._status_loop, name="status",
+                                               daemon=True)
+        self._status_thread.start()
+
+    def _live_stop(self) -> None:
+        stop = getattr(self, "_status_stop", None)
+        if stop is not None:
+            stop.set()
+            self._status_thread.join(timeout=2)
+        if self.publisher is not None:
+            try:
+                self.publisher.publish(*self._status_message())
+            except Exception:
+                pass
+            self.publisher.stop()
+        if self.control is not None:
+            self.control.stop()
+        if self.security is not None:
+            self.security.stop()
+
+    def _status_loop(self) -> None:
+        while not self._status_stop.wait(1.0):
+            try:
+                if self.publisher is not None:
+                    self.publisher.publish(*self._status_message())
+                    self.publisher.publish(*self._progress_message())
+            except Exception as exc:  # the status must never take the daemon down
+                self.log(f"warning: status not published: {exc}")
+
+    def status(self) -> dict:
+        """The daemon's state, as the status message carries it (units in the names)."""
+        return self._status_message()[1]
+
+    def _status_message(self):
+        sch, src = self.source.schedule, self.cfg["source"]
+        tsys = self.tsys_now.tsys_k if self.tsys_now is not None else (
+            self.tsys_plan.tsys_k if self.tsys_plan.kind in ("fixed", "loads") else None)
+        try:
+            free = shutil.disk_usage(self.out_dir).free
+        except OSError:
+            free = -1
+        header = {
+            "state": self.state, "source": self.source.kind, "lo_hz": sch.sig_lo_hz,
+            "gain_db": src["gain"], "sample_rate_hz": src["sample_rate"],
+            "tsys_k": float(tsys) if tsys is not None and np.isfinite(tsys) else None,
+            "tsys_source": self.tsys_plan.text,
+            "samples_received": int(self.counters["received"]),
+            "samples_lost": int(self.counters["dropped"]),
+            "queue_depth": int(self._blocks_q.qsize()) if hasattr(self, "_blocks_q") else 0,
+            "disk_free_bytes": int(free),
+            "uptime_s": _time.monotonic() - self.started_mono, "version": __version__,
+            "scan": self.scan_name,
+            "pointing": {"frame": self.pointing.frame, "lon_deg": self.pointing.lon,
+                         "lat_deg": self.pointing.lat, "object": self.pointing.object},
+            "drops": dict(self.publisher.drops) if self.publisher is not None else {},
+            "rfi": dict(self.rfi_totals), "time_utc": wire.now_utc_iso(), "station": "",
+        }
+        return "status", header, {}
+
+    def _progress_message(self):
+        integ_total = self.blocks_per_integration * self.block_s
+        elapsed = self.integ_blocks * self.block_s
+        scan_elapsed = self.total_blocks * self.block_s
+        total = self.duration_s
+        eta = None if total is None else max(0.0, total - scan_elapsed)
+        header = {"scan": self.scan_name, "integration": int(self.row_index),
+                  "integration_elapsed_s": elapsed, "integration_total_s": integ_total,
+                  "scan_elapsed_s": scan_elapsed, "scan_total_s": total, "eta_s": eta,
+                  "time_utc": wire.now_utc_iso(), "station": ""}
+        return "progress", header, {}
 
     def install_signal_handlers(self) -> None:
         def _stop(signum, _frame):

@@ -57,6 +57,8 @@ class RtlSdrSource:
         self.schedule = Schedule.from_config(cfg)
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
         self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
+        self.fire_now = False     # set by a control command: an extra firing as soon as possible
+        self._extra_from = None
         self.sdr = None
         self._ring = np.zeros((_RING_TRANSFERS, _TRANSFER_BYTES), dtype=np.uint8)
         self._ring_len = np.zeros(_RING_TRANSFERS, dtype=np.int64)
@@ -163,7 +165,9 @@ class RtlSdrSource:
         phase = sch.phase_of_block(i)
         hop = sch.is_hop(i)
         lo = sch.lo_of(phase)
-        wanted = sch.cal_on(i) if self.forced_cal is None else self.forced_cal
+        if self.fire_now:
+            self.fire_now, self._extra_from = False, i
+        wanted = sch.cal_on(i, self._extra_from) if self.forced_cal is None else self.forced_cal
         switched = wanted != getattr(self, "_cal_wanted", False)
         self._cal_wanted = wanted
         cal_state = self.cal.state_for(wanted)

@@ -130,6 +130,8 @@ class SimSource:
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
         self.diode_on = False     # the simulated noise source's true state
         self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
+        self.fire_now = False     # set by a control command: an extra firing as soon as possible
+        self._extra_from = None
         self.load = None          # None (the sky), "hot" or "cold"
         self.pointing = None      # set by the pipeline: callable(time) -> SkyCoord
         self._sky_cache: dict = {}
@@ -241,7 +243,9 @@ class SimSource:
         lo = sch.lo_of(phase)
         t_rel = i * self.block_samples / self.fs
         hop = sch.is_hop(i)
-        wanted = sch.cal_on(i) if self.forced_cal is None else self.forced_cal
+        if self.fire_now:
+            self.fire_now, self._extra_from = False, i
+        wanted = sch.cal_on(i, self._extra_from) if self.forced_cal is None else self.forced_cal
         cal_state = self.cal.state_for(wanted)
         if cal_state is not None:
             self.diode_on = cal_state   # a failed switch leaves the diode as it was

@@ -76,10 +76,15 @@ class Schedule:
     def blocks_per_cycle(self) -> int:
         return 1 if self.mode == "none" else 2 * self.blocks_per_dwell
 
-    def cal_on(self, index: int) -> bool:
-        """Whether the noise source is on during block ``index``."""
+    def cal_on(self, index: int, extra_from: int | None = None) -> bool:
+        """Whether the noise source is on during block ``index``; ``extra_from``: the first
+        block of an extra firing asked for now (whole cycles, off cycles around it)."""
         if not self.cal_period_cycles:
             return False
+        if extra_from is not None:
+            first = -(-extra_from // self.blocks_per_cycle) + 1    # a whole off cycle first
+            if first <= index // self.blocks_per_cycle < first + self.cal_on_cycles:
+                return True
         c = (index // self.blocks_per_cycle) % self.cal_period_cycles
         return 1 <= c <= self.cal_on_cycles
 

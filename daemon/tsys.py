@@ -196,6 +196,12 @@ class TsysMeter:
         self._on: list[_Cycle] = []
         self._fault = False
 
+    def reset(self) -> None:
+        """Forget cycles in progress (after a gap in the data: a firing must not span it)."""
+        self._cycle = None
+        self._off_before = None
+        self._on = []
+
     def add(self, block: Block, s1: np.ndarray, m: int) -> TsysMeasurement | None:
         """Account one block (``s1``, ``m``: its channel power sums); maybe a measurement."""
         number = block.index // self.bpc
