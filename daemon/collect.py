@@ -33,6 +33,10 @@ Per station and UTC day (the day of the spectrum's ``time_utc``) two files in
          "received_utc": str,  when the collector received it (ISO 8601, Z)
          "header": {...}}      the relayed wire header (station filled in)
 
+A spectrum that repeats the last one archived for its station (same ``scan``, ``kind``,
+``row`` and ``time_utc``; a daemon re-sends its latest message to a subscriber that joins or
+reconnects) is not archived again, also across a restart of the collector.
+
 The wire schema therefore describes the archive too: the arrays of a line are its
 ``header["arrays"]``, in order, starting at ``bin_offset``. :func:`read_spectra` reads a
 day file back into :class:`~spinflip.daemon.wire.Message` objects.
@@ -172,6 +176,12 @@ def _write_all(fd: int, data: bytes) -> None:
         view = view[os.write(fd, view):]
 
 
+def _spectrum_key(header: dict) -> tuple:
+    """What makes a spectrum the same spectrum again (a daemon re-sends its latest message to
+    a new or reconnected subscriber)."""
+    return (header["scan"], header["kind"], header["row"], header["time_utc"])
+
+
 def _utc_day(time_utc: str) -> str:
     t = _dt.datetime.fromisoformat(time_utc).astimezone(_dt.timezone.utc)
     return t.strftime("%Y%m%d")
@@ -181,6 +191,7 @@ class _DayFiles:
     """The open ``.bin`` / ``.jsonl`` pair of one station and day (locked, torn tail cut)."""
 
     def __init__(self, folder: Path, day: str):
+        self.last_key = None
         self.index_path = folder / f"spectra-{day}.jsonl"
         self.bin_path = folder / f"spectra-{day}.bin"
         created = not self.index_path.exists() or not self.bin_path.exists()
@@ -218,6 +229,21 @@ class _DayFiles:
             os.ftruncate(self.index_fd, keep)
             os.fsync(self.index_fd)
         os.lseek(self.index_fd, keep, os.SEEK_SET)
+        if keep:                             # the last whole line: what was archived last
+            start = keep - 1
+            while start > 0:
+                step = min(65536, start)
+                chunk = os.pread(self.index_fd, step, start - step)
+                i = chunk.rfind(b"\n")
+                if i >= 0:
+                    start = start - step + i + 1
+                    break
+                start -= step
+            try:
+                self.last_key = _spectrum_key(
+                    json.loads(os.pread(self.index_fd, keep - start, start))["header"])
+            except (ValueError, KeyError, TypeError):
+                pass
 
     def append(self, header_json: bytes, payload: list[bytes], received_utc: str) -> None:
         blob = b"".join(payload)
@@ -254,9 +280,15 @@ class SpectrumArchive:
         self.folder = Path(folder)
         self.folder.mkdir(parents=True, exist_ok=True)
         self._open: dict[str, tuple[str, _DayFiles]] = {}
+        self._last: dict[str, tuple] = {}
 
-    def append(self, station: str, frames: list[bytes]) -> Path:
-        """Append one encoded spectrum (``wire.encode`` frames); returns its ``.jsonl`` path."""
+    def append(self, station: str, frames: list[bytes]) -> Path | None:
+        """Append one encoded spectrum (``wire.encode`` frames).
+
+        Returns the ``.jsonl`` path, or None when the spectrum repeats the last one archived
+        for ``station`` (same scan, kind, row and time_utc): a station re-sends its latest
+        message when the collector (re)subscribes, and the archive keeps each spectrum once.
+        """
         header = json.loads(frames[1])
         day = _utc_day(header["time_utc"])
         current = self._open.get(station)
@@ -270,6 +302,12 @@ class SpectrumArchive:
                 _fsync_dir(self.folder)
             current = (day, _DayFiles(folder, day))
             self._open[station] = current
+            if current[1].last_key is not None:
+                self._last[station] = current[1].last_key
+        key = _spectrum_key(header)
+        if self._last.get(station) == key:
+            return None
+        self._last[station] = key
         current[1].append(bytes(frames[1]), [bytes(f) for f in frames[2:]],
                           wire.now_utc_iso())
         return current[1].index_path
@@ -341,6 +379,7 @@ class StationCount:
     relayed: int = 0
     archived: int = 0
     decode_errors: int = 0
+    repeated: int = 0
     by_topic: dict = field(default_factory=dict)
     last_error: str | None = None
 
@@ -349,6 +388,8 @@ class StationCount:
         text = (f"{self.name} ({self.endpoint}): {self.received} messages ({topics}), "
                 f"{self.relayed} relayed, {self.archived} spectra archived, "
                 f"{self.decode_errors} decode errors")
+        if self.repeated:
+            text += f", {self.repeated} repeated spectra not archived again"
         if self.last_error:
             text += f"; last: {self.last_error}"
         return text
@@ -522,8 +563,10 @@ def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) 
         except zmq.Again:                # PUB drops rather than blocks; kept for safety
             pass
     if archive is not None and msg.topic == "spectrum" and msg.header["kind"] == "integration":
-        archive.append(count.name, out)
-        count.archived += 1
+        if archive.append(count.name, out) is None:
+            count.repeated += 1
+        else:
+            count.archived += 1
 
 
 # ----------------------------------------------------------------------------------------------

@@ -24,6 +24,7 @@ from . import wire
 
 _QUEUE_PER_TOPIC = 8
 _SNDHWM = 200
+_SNDBUF = 0          # kernel send buffer per connection, bytes; 0: the system's default
 _POLL_MS = 50
 
 
@@ -61,6 +62,8 @@ class Publisher:
         sock = self.context.socket(zmq.XPUB)
         sock.setsockopt(zmq.LINGER, 0)
         sock.setsockopt(zmq.SNDHWM, _SNDHWM)
+        if _SNDBUF:
+            sock.setsockopt(zmq.SNDBUF, _SNDBUF)
         sock.setsockopt(zmq.XPUB_VERBOSE, 1)
         if self.security is not None:
             self.security.apply(sock)

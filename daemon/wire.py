@@ -9,7 +9,10 @@ The daemon binds a ZeroMQ PUB socket (default ``tcp://127.0.0.1:5621``); a subsc
 connects a SUB socket to it and subscribes to a topic (ZeroMQ matches the first frame by
 prefix; subscribe to ``""`` for every topic). No topic is a prefix of another. A PUB socket
 drops messages for a subscriber that does not keep up: a subscriber sees every message it
-receives whole, but may miss some (the daemon counts its drops, see ``status.drops``).
+receives whole, but may miss some (the daemon counts its own drops in ``status.drops``; gaps
+in ``seq`` show all of them). A new subscription is answered at once with the latest message
+of each topic, so a subscriber that joins or reconnects has the current state at once, and
+may see again a message it had already received.
 ``spinflip collect`` relays the messages of several stations on one PUB socket, unchanged
 except for ``station``.
 
@@ -32,8 +35,11 @@ topic          string                      equal to frame 0
 time_utc       string                      ISO 8601 with a UTC offset, written
                                            ``YYYY-MM-DDTHH:MM:SS.ffffffZ``; readers also
                                            accept ``+00:00`` for ``Z``. For a spectrum the
-                                           UTC mid-time of its data, otherwise when the
+                                           UTC mid-time of its integration (of the latest
+                                           one, for an average), otherwise when the
                                            message was made.
+seq            integer (optional)          per-topic message counter of the sending
+                                           daemon, from 1; restarts with the daemon
 station        string                      "" from a daemon; the station's name when
                                            relayed by ``spinflip collect``
 arrays         array of objects            one per payload frame, in frame order:
@@ -69,10 +75,12 @@ Topic "spectrum": one calibrated spectrum
 field               JSON type       meaning
 ==================  ==============  =========================================================
 kind                string          "integration" (one integration, one row of the scan's
-                                    file) or "average" (the scan's average)
+                                    file) or "average" (the running average of the scan's
+                                    integrations so far, on the LSRK velocity grid of its
+                                    first one; flagged channels carry no weight)
 scan                string          the scan's name (its file is ``<scan>.fits``)
 row                 integer         0-based row of the integration in the scan; for an
-                                    "average", the number of rows it combines
+                                    "average", the row of the latest integration in it
 exposure_s          number          effective integration time, s
 tsys_k              number | null   system temperature, K
 unit                string          unit of ``data``: "K" (calibrated) or "count"
@@ -91,7 +99,8 @@ nimpulse            integer         impulses blanked in the integration
 ncarrier            integer         carrier channels flagged in the integration
 ==================  ==============  =========================================================
 
-Arrays (all of shape ``[nchan]``, nchan >= 1, channel order as frequency order on the wire)
+Arrays, all of shape ``[nchan]`` (nchan >= 1); element i of every array belongs to channel i,
+whose sky frequency is ``freq_hz[i]``:
 
 =================  =======  ========  ============================================
 name               dtype    unit      values
@@ -418,6 +427,8 @@ def validate_header(topic: str, header: dict) -> None:
         raise WireError(f"header is a JSON {_json_type(header)}: expected an object")
     _check_fields("header", header, _COMMON)
     _check_schema(header["schema"])
+    if "seq" in header:
+        _check_type("header.seq", header["seq"], _INT)
     if header["topic"] != topic:
         raise WireError(f"header.topic = {header['topic']!r} differs from the topic frame "
                         f"{topic!r}")

@@ -21,7 +21,6 @@ import pytest
 import zmq
 from astropy import units as u
 from hypothesis import given, settings
-from hypothesis import strategies as st
 from hypothesis.extra import numpy as hnp
 
 from spinflip.daemon import wire
@@ -325,6 +324,7 @@ MALFORMED = [
      r"header.row = \"5\" is a JSON string: expected integer"),
     ("row as bool", lambda f: with_header(f, _set("row", True)), r"header.row = true"),
     ("row as float", lambda f: with_header(f, _set("row", 5.0)), r"expected integer"),
+    ("seq not an integer", lambda f: with_header(f, _set("seq", "7")), r"header.seq"),
     ("bad kind", lambda f: with_header(f, _set("kind", "sum")),
      r"kind = \"sum\": allowed are integration, average"),
     ("fraction > 1", lambda f: with_header(f, _set("flagged_fraction", 1.5)), r"fraction 0..1"),
