@@ -67,7 +67,7 @@ def build_parser() -> argparse.ArgumentParser:
     co.add_argument("stations", nargs="+", metavar="NAME=ENDPOINT",
                     help="a station name and its daemon's data socket")
     co.add_argument("--relay", metavar="ENDPOINT", help="re-publish everything here, by station")
-    co.add_argument("--archive", metavar="DIR", help="store every received spectrum here")
+    co.add_argument("--archive", metavar="DIR", help="store every received integration here")
     co.add_argument("--keys", metavar="DIR", help="client CURVE keys for secured daemons")
     co.add_argument("--duration", type=_positive_seconds, metavar="S",
                     help="seconds to collect (default: until stopped)")

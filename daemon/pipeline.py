@@ -194,6 +194,11 @@ def _widen(mask: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
+def json_args(args: dict) -> str:
+    """Command arguments as ``key=value`` words, for the event log."""
+    return " ".join(f"{k}={v}" for k, v in sorted(args.items()))
+
+
 class Daemon:
     """One observation run; see :meth:`run`."""
 
@@ -702,6 +707,9 @@ class Daemon:
                 return
             try:
                 box["result"] = self._apply(cmd, args, rows_q, result)
+                if cmd != "annotate":
+                    self.event("info", f"control: {cmd} {json_args(args)}".rstrip()
+                               + f" -> {self.state}, scan {self.scan_name or 'none'}")
             except (ValueError, ConfigError) as exc:
                 box["error"] = str(exc).splitlines()[0]
             except Exception as exc:  # a command must never stop acquisition

@@ -68,6 +68,8 @@ no padding, no header of its own. ``dtype`` is one of
 ``shape`` is a list of non-negative integers (``[]`` is a single value) and the frame's
 length in bytes is exactly ``product(shape) * itemsize``. ``unit`` is the physical unit of
 the values ("" when dimensionless or boolean). Array names are unique within a message.
+Unlike the header, payload floats may be NaN: no value (e.g. a channel of an average that no
+integration covered; such a channel is also flagged).
 
 Topic "spectrum": one calibrated spectrum
 -----------------------------------------

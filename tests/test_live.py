@@ -158,6 +158,8 @@ def test_control_commands_drive_the_daemon(daemon):
     low = request(c, "point", {"frame": "azel", "lon_deg": 180.0, "lat_deg": 2.0})
     assert not low["ok"] and "min_elevation" in low["error"]
     assert request(c, "stop")["result"]["state"] == "idle"
+    events = [schema_decode(f) for f in _collect(daemon["data"], 1.0, (b"event",))]
+    assert any(h["severity"] == "info" and "control: stop" in h["text"] for _, h, _ in events)
     assert request(c, "start")["result"]["state"] == "observing"
     # spinflip ctl, the command-line client
     r = run_cli(["ctl", "--connect", c, "status"])
@@ -341,3 +343,45 @@ def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
     finally:
         proc.send_signal(signal.SIGTERM)
         proc.communicate(timeout=30)
+
+
+def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
+    # two daemons pointing at different Galactic longitudes; collect relays and archives both
+    from spinflip.daemon.collect import read_spectra
+    procs, stations = [], []
+    for name, lon in (("north", 30.0), ("south", 90.0)):
+        ports = {"data": free_port(), "control": free_port()}
+        cfg = write_config(tmp_path / f"{name}.toml", CONFIG.format(**ports).replace(
+            "lon = 30.0", f"lon = {lon}"))
+        procs.append(subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run",
+                                       "--config", str(cfg), "--duration", "60", "--out",
+                                       str(tmp_path / name)], stdout=subprocess.PIPE,
+                                      stderr=subprocess.PIPE, text=True))
+        stations.append(f"{name}=tcp://127.0.0.1:{ports['data']}")
+    relay = f"tcp://127.0.0.1:{free_port()}"
+    try:
+        coll = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "collect",
+                                 *stations, "--relay", relay, "--archive",
+                                 str(tmp_path / "archive"), "--duration", "12"],
+                                stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+        time.sleep(1.0)
+        msgs = [schema_decode(f) for f in _collect(relay, 9.0, (b"spectrum", b"status"))]
+        out, err = coll.communicate(timeout=60)
+        assert coll.returncode == 0, err
+    finally:
+        for p in procs:
+            p.send_signal(signal.SIGTERM)
+            p.communicate(timeout=30)
+    by_station = {}
+    for topic, h, _ in msgs:
+        by_station.setdefault(h["station"], []).append((topic, h))
+    assert set(by_station) == {"north", "south"}
+    for name, lon in (("north", 30.0), ("south", 90.0)):
+        spectra = [h for t, h in by_station[name] if t == "spectrum"]
+        assert spectra and all(abs(h["glon_deg"] - lon) < 1e-6 for h in spectra)
+        assert any(t == "status" for t, _ in by_station[name])
+    archived = {p.parent.name: read_spectra(p) for p in (tmp_path / "archive").rglob("*.jsonl")}
+    assert set(archived) == {"north", "south"}
+    for name, lon in (("north", 30.0), ("south", 90.0)):
+        assert archived[name] and all(abs(m.header["glon_deg"] - lon) < 1e-6
+                                      and m.header["station"] == name for m in archived[name])
