@@ -76,6 +76,7 @@ import numpy as np
 import zmq
 
 from . import wire
+from .archive import _fsync_dir, _write_all
 
 try:  # POSIX advisory locks
     import fcntl
@@ -159,23 +160,6 @@ def _is_local(endpoint: str) -> bool:
 # ----------------------------------------------------------------------------------------------
 # archive
 # ----------------------------------------------------------------------------------------------
-def _fsync_dir(path: Path) -> None:
-    """fsync a folder so that files created in it survive a power cut."""
-    fd = os.open(path, os.O_RDONLY | getattr(os, "O_DIRECTORY", 0))
-    try:
-        os.fsync(fd)
-    except OSError:  # pragma: no cover - some file systems refuse fsync on folders
-        pass
-    finally:
-        os.close(fd)
-
-
-def _write_all(fd: int, data: bytes) -> None:
-    view = memoryview(data)
-    while view:
-        view = view[os.write(fd, view):]
-
-
 def _spectrum_key(header: dict) -> tuple:
     """What makes a spectrum the same spectrum again (a daemon re-sends its latest message to
     a new or reconnected subscriber)."""
