@@ -51,6 +51,16 @@ def build_parser() -> argparse.ArgumentParser:
     lo.add_argument("--yes", action="store_true",
                     help="do not wait for Enter at each step (the loads are already in place, "
                     "or the simulator places them)")
+    w = sub.add_parser("watch", help="the terminal UI against a running daemon")
+    w.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5621",
+                   help="the daemon's data socket (default tcp://127.0.0.1:5621)")
+    w.add_argument("--control", metavar="ENDPOINT",
+                   help="its control socket (default: the data socket's host, port + 1)")
+    w.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
+    d = sub.add_parser("demo", help="the simulator and the terminal UI together, a short observation")
+    d.add_argument("--seconds", type=_positive_seconds, default=60.0, metavar="S",
+                   help="observing time (default 60)")
+    d.add_argument("--out", metavar="DIR", default="spinflip-data", help="where the scan goes")
     c = sub.add_parser("ctl", help="send a command to a running daemon (its control socket)")
     c.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5622",
                    help="the daemon's control socket (default tcp://127.0.0.1:5622)")
@@ -149,6 +159,25 @@ def _cmd_loads(args) -> int:
     return 0
 
 
+def _control_for(data_endpoint: str) -> str:
+    """The control endpoint beside a data endpoint: same host, port + 1 (the defaults' rule)."""
+    head, _, port = data_endpoint.rpartition(":")
+    if not port.isdigit():
+        raise ValueError(f"--connect {data_endpoint!r}: give --control too (no port to add 1 to)")
+    return f"{head}:{int(port) + 1}"
+
+
+def _cmd_watch(args) -> int:
+    from spinflip.tui.app import watch_main
+    control = args.control or _control_for(args.connect)
+    return watch_main(args.connect, control, args.keys)
+
+
+def _cmd_demo(args) -> int:
+    from spinflip.tui.app import demo_main
+    return demo_main(seconds=args.seconds, out_dir=args.out)
+
+
 def _cmd_ctl(args) -> int:
     from .control import ctl_main
     return ctl_main(args.connect, args.words, args.keys, args.timeout)
@@ -182,6 +211,7 @@ def main(argv=None) -> int:
     args = build_parser().parse_args(argv)
     handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
                "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
+               "watch": _cmd_watch, "demo": _cmd_demo,
                "collect": _cmd_collect}[args.command]
     from .sources import SourceError
     try:
