@@ -114,7 +114,10 @@ def _cmd_run(args) -> int:
                f"{daemon.blocks_per_integration * daemon.block_s:.1f} s")
     result = daemon.run()
     for f in result.files:
-        print(f"saved {result.rows} integrations ({result.observed_s:.1f} s observed) to {f}")
+        n = result.file_rows.get(str(f), result.rows)
+        print(f"saved {n} integrations to {f} ({result.observed_s:.1f} s observed in all)"
+              if len(result.files) > 1 else
+              f"saved {n} integrations ({result.observed_s:.1f} s observed) to {f}")
     if not result.files:
         print(f"no integration finished; nothing saved in {daemon.out_dir}")
     if result.lost_samples:

@@ -63,6 +63,7 @@ _STOP = object()
 @dataclass
 class RunResult:
     files: list = field(default_factory=list)
+    file_rows: dict = field(default_factory=dict)   # str(path) -> integrations in it
     rows: int = 0
     observed_s: float = 0.0
     lost_samples: int = 0
@@ -327,9 +328,11 @@ class Daemon:
 
         def close():
             if writer is not None:
+                rows = writer.rows
                 path = writer.close()
                 if path:
                     result.files.append(path)
+                    result.file_rows[str(path)] = rows
                     self.log(f"scan saved: {path}")
 
         while True:
