@@ -19,6 +19,12 @@ if [ ! -x .venv/bin/python ]; then
     "$PY" -m venv .venv
   fi
 fi
+if ! command -v tmux >/dev/null && command -v apt-get >/dev/null; then
+  echo "setup: installing tmux with apt-get (the terminal UI's tests drive it)" >&2
+  SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
+  { $SUDO apt-get update -qq && $SUDO apt-get install -y -qq tmux; } \
+    || echo "setup: could not install tmux: tests/test_tui_live.py will fail without it" >&2
+fi
 stamp=.venv/.spinflip-installed
 if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
   .venv/bin/python -m pip install -q --upgrade pip

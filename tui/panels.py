@@ -1,0 +1,925 @@
+"""The panels of the terminal UI and the whole screen: pure functions of a :class:`ViewState`.
+
+Every function here returns a :class:`rich.text.Text` whose lines are exactly as wide as asked
+(padded with spaces, long text cut with an ellipsis), so panels can be set side by side and
+the screen never wraps. Nothing here reads the clock, the terminal or the network: the app
+sets ``state.now_s`` and the size, and prints what :func:`screen` returns.
+
+Layout of :func:`screen` (W x H cells, at least 80 x 24)::
+
+    top bar: spinflip, station/object, daemon state, scan, link age
+    [STALE banner, 3 lines, or the "waiting for data" line, when so]
+    progress: integration bar, scan bar (percent, elapsed/total, ETA)
+    +-------------------------------------------+----------------------+
+    | spectrum: legend line, then the plot      | link (wide screens)  |
+    | (latest integration and running average,  | Tsys now + history   |
+    |  flagged channels marked 'x'; x axis LSRK | receiver             |
+    |  velocity km/s or sky frequency MHz, y in | interference +       |
+    |  K or counts)                             | waterfall            |
+    +-------------------------------------------+----------------------+
+    events (latest few)
+    help line (keys) and the last control reply
+
+The side column is about a third of the width (27 cells at 80, 46 at 160); the plot, the
+Tsys history, the waterfall and the events list take whatever height is left.
+
+Notes
+-----
+Colour comes only from styles; every piece of information is also in the characters, so a
+console with ``no_color=True`` or ``color_system=None`` loses nothing: flagged channels and
+flagged waterfall cells are drawn as 'x', waterfall levels as shades of block characters,
+warnings as words ("STALE", "WARN", "ERROR"). The average and the latest integration share
+the plot; without colour they differ by weight (average bold, integration dim) and both are
+named in the legend.
+
+Numbers carry their units: K, km/s, MHz, dB, MS/s (10^6 complex samples per second), s, %,
+GB (10^9 bytes), deg.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import math
+
+import numpy as np
+from rich.text import Text
+
+from .braille import Series, plot
+from .state import ViewState
+
+# ----------------------------------------------------------------------------------------------
+# styles (colour is decoration only: see the module Notes)
+# ----------------------------------------------------------------------------------------------
+S_TITLE = "bold"
+S_RULE = "dim"
+S_LABEL = "dim"
+S_VALUE = "bold"
+S_AVERAGE = "bold green"
+S_INTEGRATION = "dim cyan"
+S_FLAGGED = "bold red"
+S_BAR_DONE = "green"
+S_BAR_TODO = "dim"
+S_STALE = "bold reverse red"
+S_WAIT = "bold yellow"
+S_SEVERITY = {"info": "", "warning": "bold yellow", "error": "bold reverse red"}
+SEVERITY_WORD = {"info": "info", "warning": "WARN", "error": "ERROR"}
+
+#: Waterfall shades from low to high, and the mark of a flagged cell.
+SHADES = "·░▒▓█"
+SHADES_ASCII = ".:-=#"
+FLAG_MARK = "x"
+
+#: Sparkline blocks, 0/8 .. 8/8 of a cell.
+EIGHTHS = " ▁▂▃▄▅▆▇█"
+
+#: Width of the side column (Tsys, receiver, interference) as a fraction of the screen.
+SIDE_FRACTION = 0.29
+SIDE_MIN_CHARS = 27
+SIDE_MAX_CHARS = 56
+
+#: The smallest screen everything is laid out for, cells.
+MIN_WIDTH = 80
+MIN_HEIGHT = 24
+
+KEYS = (("g", "start"), ("x", "stop"), ("c", "calibrate"), ("n", "new scan"),
+        ("a", "axis"), ("q", "quit"))
+KEYS_SHORT = (("g", "start"), ("x", "stop"), ("c", "cal"), ("n", "scan"), ("a", "axis"),
+              ("q", "quit"))
+
+
+# ----------------------------------------------------------------------------------------------
+# small text tools
+# ----------------------------------------------------------------------------------------------
+def _fit(text: Text | str, width: int) -> Text:
+    """One line exactly ``width`` cells: cut with an ellipsis or padded with spaces."""
+    t = Text(text) if isinstance(text, str) else text.copy()
+    t.no_wrap = True
+    t.truncate(max(0, width), overflow="ellipsis", pad=True)
+    return t
+
+
+def _block(lines: list, width: int, height: int) -> Text:
+    """Lines as one Text of exactly ``height`` lines of ``width`` cells (cut or padded)."""
+    rows = [_fit(line, width) for line in lines[:max(0, height)]]
+    rows += [_fit("", width) for _ in range(max(0, height) - len(rows))]
+    out = Text("\n").join(rows)
+    out.no_wrap = True
+    out.overflow = "crop"
+    out.end = "\n"
+    return out
+
+
+def _lines(text: Text) -> list[Text]:
+    """The lines of a Text (no trailing empty line)."""
+    out = list(text.split("\n", allow_blank=True))
+    if out and str(text).endswith("\n"):
+        out.pop()
+    return out
+
+
+def _rule(title: str | Text, width: int, fill: str = "─") -> Text:
+    """A section title: "── title ──────" across ``width`` cells."""
+    t = Text(fill * 2 + " ", style=S_RULE)
+    t.append_text(Text(title, style=S_TITLE) if isinstance(title, str) else title)
+    t.append(" ")
+    if t.cell_len < width:
+        t.append(fill * (width - t.cell_len), style=S_RULE)
+    return _fit(t, width)
+
+
+def _pack(items: list[Text], width: int, sep: str = "  ") -> list[Text]:
+    """Items greedily packed into lines no wider than ``width`` (an item never split)."""
+    lines, cur = [], None
+    for item in items:
+        if cur is None:
+            cur = item.copy()
+        elif cur.cell_len + len(sep) + item.cell_len <= width:
+            cur.append(sep)
+            cur.append_text(item)
+        else:
+            lines.append(cur)
+            cur = item.copy()
+    if cur is not None:
+        lines.append(cur)
+    return lines
+
+
+def _kv(label: str, value: str) -> Text:
+    """"label value" with the label dim and the value bold."""
+    t = Text(label + " ", style=S_LABEL) if label else Text()
+    t.append(value, style=S_VALUE)
+    return t
+
+
+def format_duration(seconds: float | None) -> str:
+    """A duration for people: "17 s", "9 min 05 s", "2 h 03 min"; "?" when not known."""
+    if seconds is None or not math.isfinite(seconds):
+        return "?"
+    s = max(0.0, float(seconds))
+    if s < 60.0:
+        return f"{s:.0f} s"
+    if s < 3600.0:
+        m, r = divmod(int(round(s)), 60)
+        return f"{m} min {r:02d} s"
+    h, r = divmod(int(round(s)), 3600)
+    return f"{h} h {r // 60:02d} min"
+
+
+def format_age(seconds: float) -> str:
+    """An age: one decimal below 10 s ("0.4 s"), whole seconds above ("17 s")."""
+    return f"{seconds:.1f} s" if seconds < 10.0 else format_duration(seconds)
+
+
+def _hms(time_utc: str) -> str:
+    """HH:MM:SS of a wire time (UTC), or the text itself if it is not one."""
+    try:
+        return _dt.datetime.fromisoformat(time_utc.replace("Z", "+00:00")).strftime("%H:%M:%S")
+    except (ValueError, AttributeError):
+        return str(time_utc)[:8]
+
+
+def _num(value, fmt: str, unit: str) -> str:
+    """A number with its unit, or "— unit" when it is not known."""
+    if value is None or (isinstance(value, float) and not math.isfinite(value)):
+        return f"—{unit}" if unit == "°" else f"— {unit}".rstrip()
+    return f"{value:{fmt}}{unit}" if unit == "°" else f"{value:{fmt}} {unit}".rstrip()
+
+
+def _tsys_now_k(state: ViewState) -> float | None:
+    """Latest system temperature, K: the status's, else the latest spectrum's."""
+    for src in (state.status, state.spectrum):
+        if src and src.get("tsys_k") is not None:
+            return float(src["tsys_k"])
+    return None
+
+
+def _target(state: ViewState) -> str:
+    """Station and object, as far as known: "station: object"."""
+    obj, station = "", ""
+    for src in (state.spectrum, state.average):
+        if src:
+            obj = obj or src.get("object", "")
+            station = station or src.get("station", "")
+    if state.status:
+        obj = obj or state.status.get("pointing", {}).get("object", "")
+        station = station or state.status.get("station", "")
+    return ": ".join(p for p in (station, obj) if p)
+
+
+# ----------------------------------------------------------------------------------------------
+# top bar, link, help
+# ----------------------------------------------------------------------------------------------
+def top_bar(state: ViewState, width: int) -> Text:
+    """One line: name, station/object, daemon state, scan (left); the link's state (right).
+
+    Parameters
+    ----------
+    state : ViewState
+    width : int
+        Cells.
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly one line of ``width`` cells.
+    """
+    left = Text("spinflip", style="bold reverse")
+    target = _target(state)
+    if target:
+        left.append("  ")
+        left.append(target, style=S_VALUE)
+    if state.status:
+        left.append("  ")
+        left.append(state.status.get("state", "?").upper(), style="bold")
+    scan = (state.progress or {}).get("scan") or (state.status or {}).get("scan")
+    if scan:
+        left.append("  scan ", style=S_LABEL)
+        left.append(str(scan))
+        if state.progress and state.progress.get("scan"):
+            left.append(f" #{state.progress.get('integration', 0)}")
+    if not state.has_data():
+        right = Text("WAITING", style=S_WAIT)
+    elif state.is_stale():
+        right = Text(f"STALE {format_age(state.age_s())}", style=S_STALE)
+    else:
+        right = Text("live ", style=S_LABEL)
+        right.append(format_age(state.age_s()), style=S_VALUE)
+    gap = width - right.cell_len - 1
+    line = _fit(left, max(0, gap))
+    line.append(" ")
+    line.append_text(right)
+    return _fit(line, width)
+
+
+def link_panel(state: ViewState, width: int) -> Text:
+    """The connection: endpoint and the last message's age; a loud warning when data stop.
+
+    Parameters
+    ----------
+    state : ViewState
+    width : int
+        Cells.
+
+    Returns
+    -------
+    rich.text.Text
+        One line while waiting for the first message ("waiting for data from ENDPOINT") or
+        while data flow (endpoint, age, drops reported by the daemon); three lines when
+        stale: a line of "! STALE", the warning "STALE: no data for N s: daemon gone?
+        reconnecting to ENDPOINT", a line of "! STALE", all in reverse video.
+
+    Notes
+    -----
+    Stale means no message of any topic for more than ``state.stale_after_s``; the daemon
+    sends a status about once a second (common practice for a heartbeat), so a few seconds of
+    silence means the daemon or the network is gone. ZeroMQ reconnects by itself meanwhile.
+    """
+    endpoint = state.endpoint or "the daemon"
+    if not state.has_data():
+        t = Text("… waiting for data from ", style=S_WAIT)
+        t.append(endpoint, style="bold")
+        return _block([t], width, 1)
+    age = state.age_s()
+    if state.is_stale():
+        msg = f" STALE: no data for {age:.0f} s: daemon gone? reconnecting "
+        full = msg + f"to {endpoint} "
+        msg = full if len(full) + 8 <= width else msg
+        pad = max(0, width - len(msg))
+        middle = Text("!" * (pad // 2) + msg + "!" * (pad - pad // 2), style=S_STALE)
+        border = Text(("! STALE " * (width // 8 + 1))[:width], style=S_STALE)
+        return _block([border, middle, border.copy()], width, 3)
+    t = Text("link ", style=S_LABEL)
+    t.append(endpoint)
+    t.append("  last ", style=S_LABEL)
+    t.append(format_age(age) + " ago", style=S_VALUE)
+    drops = (state.status or {}).get("drops") or {}
+    ndrop = sum(int(v) for v in drops.values())
+    if ndrop:
+        t.append(f"  dropped {ndrop}", style="yellow")
+    if not state.connected:
+        t.append("  (disconnected)", style="bold yellow")
+    return _block([t], width, 1)
+
+
+def help_line(state: ViewState, width: int | None = None) -> Text:
+    """The keys (g start, x stop, c calibrate, n new scan, a axis, q quit) and the last reply.
+
+    Parameters
+    ----------
+    state : ViewState
+    width : int, optional
+        Cells; when given the line is fitted to it and short key names are used below
+        100 cells so that the reply keeps some room.
+
+    Returns
+    -------
+    rich.text.Text
+        One line.
+    """
+    keys = KEYS_SHORT if width is not None and width < 100 else KEYS
+    other = "MHz" if state.axis == "velocity" else "km/s"
+    t = Text()
+    for i, (key, what) in enumerate(keys):
+        if i:
+            t.append("  ")
+        t.append(f"[{key}]", style="bold reverse")
+        t.append(f"{what}{'→' + other if key == 'a' else ''}", style=S_LABEL)
+    if state.reply:
+        t.append("  » ", style=S_LABEL)
+        t.append(state.reply, style=S_VALUE)
+    return _fit(t, width) if width is not None else t
+
+
+# ----------------------------------------------------------------------------------------------
+# spectrum
+# ----------------------------------------------------------------------------------------------
+def _axis_x(spec: dict, axis: str) -> np.ndarray:
+    """x values of a spectrum: LSRK radio velocity in km/s, or sky frequency in MHz."""
+    arrays = spec["arrays"]
+    if axis == "frequency":
+        return np.asarray(arrays["freq_hz"], dtype=float) / 1e6
+    return np.asarray(arrays["v_lsrk_km_s"], dtype=float)
+
+
+def _centred(text: Text, width: int, height: int) -> Text:
+    """A Text in the middle of an otherwise empty width x height block."""
+    pad = max(0, (width - text.cell_len) // 2)
+    line = Text(" " * pad)
+    line.append_text(text)
+    rows = [Text("")] * (max(0, height - 1) // 2) + [line]
+    return _block(rows, width, height)
+
+
+#: Characters of the plot's left axis (braille and ASCII plots), used to find its column.
+AXIS_CHARS = "\u2502\u2524|+"
+
+
+def _axis_column(rows: list[str]) -> int | None:
+    """Column of the plot's y axis: the first column holding an axis character in every row."""
+    if not rows:
+        return None
+    n = min(len(r) for r in rows)
+    for c in range(n):
+        if all(r[c] in AXIS_CHARS for r in rows):
+            return c
+    return None
+
+
+def flag_strip(x: np.ndarray, flagged: np.ndarray, x_range: tuple[float, float],
+               cells: int) -> np.ndarray:
+    """Which of ``cells`` plot columns hold a flagged channel.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        x value of each channel (km/s or MHz).
+    flagged : numpy.ndarray of bool
+        The channels' flags.
+    x_range : (float, float)
+        The plot's x range.
+    cells : int
+        Plot columns (2 braille dots each).
+
+    Returns
+    -------
+    numpy.ndarray of bool
+        True for the columns with a flagged channel, by the plot's own mapping
+        x_dot = (x - x_lo) / (x_hi - x_lo) (2 cells - 1), column = floor(x_dot + 1/2) // 2
+        (see :func:`spinflip.tui.braille.plot`).
+    """
+    out = np.zeros(max(0, cells), dtype=bool)
+    x_lo, x_hi = x_range
+    sel = np.asarray(flagged, dtype=bool) & np.isfinite(x)
+    if cells <= 0 or not sel.any() or x_hi <= x_lo:
+        return out
+    x_dot = (np.asarray(x, dtype=float)[sel] - x_lo) / (x_hi - x_lo) * (2 * cells - 1)
+    col = np.floor(x_dot + 0.5).astype(int) // 2
+    col = col[(col >= 0) & (col < cells)]
+    out[col] = True
+    return out
+
+
+def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = False) -> Text:
+    """The spectrum: latest integration and running average on one plot, flags marked.
+
+    Parameters
+    ----------
+    state : ViewState
+    width, height : int
+        Cells; the first line is the legend, then the plot, a strip marking flagged channels
+        with 'x', and the x axis (needs width >= 30 and height >= 8 for a plot; smaller gives
+        the legend only).
+    ascii : bool
+        Draw the plot with ASCII characters instead of braille (terminals without braille).
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly ``height`` lines of ``width`` cells. Before any message: "waiting for data
+        from ENDPOINT"; with messages but no spectrum yet: what the daemon is doing.
+
+    Notes
+    -----
+    x is the LSRK radio velocity v = c (nu0 - nu) / nu0 + v_frame in km/s (as sent, wire
+    field ``v_lsrk_km_s``) or the topocentric sky frequency nu in MHz (``freq_hz`` / 10^6),
+    as ``state.axis`` says; y is the data in their unit, K or count. The plot's y range
+    leaves flagged channels out (a strong carrier does not squash the line); they are drawn
+    in the flagged style and clipped at the edge, and the strip under the plot marks their
+    columns with 'x' so that flags do not depend on colour.
+    """
+    specs = [s for s in (state.average, state.spectrum) if s is not None]
+    if not specs:
+        if not state.has_data():
+            msg = Text(f"waiting for data from {state.endpoint or 'the daemon'}", style=S_WAIT)
+        else:
+            what = (state.status or {}).get("state", "")
+            msg = Text("no spectrum yet" + (f": daemon {what}" if what else ""), style=S_WAIT)
+            if what == "idle":
+                msg.append(" (g starts an observation)", style=S_LABEL)
+        return _centred(msg, width, height)
+
+    unit = specs[-1].get("unit", "K")
+    x_label = "v LSRK km/s" if state.axis == "velocity" else "f sky MHz"
+    legend = Text()
+    series, xs, flags = [], [], []
+    for spec, style, name in ((state.average, S_AVERAGE, "average"),
+                              (state.spectrum, S_INTEGRATION, "integration")):
+        if spec is None:
+            continue
+        arrays = spec["arrays"]
+        x = _axis_x(spec, state.axis)
+        mask = np.asarray(arrays["flagged"], dtype=bool)
+        xs.append(x[np.isfinite(x)])
+        flags.append((x, mask))
+        series.append(Series(x=x, y=np.asarray(arrays["data"], dtype=float), style=style,
+                             name=name, mask=mask))
+        if legend.cell_len:
+            legend.append("  ")
+        if name == "average":
+            legend.append(f"━ average {spec.get('row', 0) + 1} int", style=style)
+        else:
+            legend.append(f"· int #{spec.get('row', 0)} {spec.get('exposure_s', 0):.1f} s",
+                          style=style)
+    nflag = int(np.count_nonzero(flags[-1][1]))
+    legend.append("  ")
+    legend.append(FLAG_MARK, style=S_FLAGGED)
+    legend.append(f" flagged {nflag} ch", style=S_LABEL)
+    if state.is_stale():
+        legend.append("  STALE", style=S_STALE)
+    allx = np.concatenate(xs)
+    x_range = (float(allx.min()), float(allx.max())) if allx.size else (0.0, 1.0)
+    if x_range[1] <= x_range[0]:
+        x_range = (x_range[0] - 0.5, x_range[0] + 0.5)
+    if width < 30 or height < 8:
+        return _block([legend], width, height)
+    body = _lines(plot(series, width, height - 2, x_range=x_range, x_label=x_label,
+                       y_label=unit, x_ticks=max(2, width // 16),
+                       y_ticks=max(2, min(6, (height - 2) // 4)), ascii=ascii))
+    axis_col = _axis_column([line.plain for line in body[:-1]])
+    if axis_col is None:                       # not expected: keep the plot, mark nothing
+        return _block([legend] + body, width, height)
+    cells = width - axis_col - 1
+    marks = np.zeros(cells, dtype=bool)
+    for x, mask in flags:
+        marks |= flag_strip(x, mask, x_range, cells)
+    strip = Text(("flag" if axis_col >= 4 else "").rjust(axis_col), style=S_LABEL)
+    strip.append("|" if ascii else "\u2502", style=S_RULE)
+    for m in marks:
+        strip.append(FLAG_MARK if m else " ", style=S_FLAGGED if m else "")
+    return _block([legend] + body[:-1] + [strip, body[-1]], width, height)
+
+
+# ----------------------------------------------------------------------------------------------
+# Tsys
+# ----------------------------------------------------------------------------------------------
+def sparkline(values, width: int, height: int = 1, lo: float | None = None,
+              hi: float | None = None) -> list[Text]:
+    """The last ``width`` values as columns of eighth-blocks, ``height`` rows tall.
+
+    Parameters
+    ----------
+    values : sequence of float
+    width, height : int
+        Cells.
+    lo, hi : float, optional
+        The range mapped to empty .. full; the values' own range by default.
+
+    Returns
+    -------
+    list of rich.text.Text
+        ``height`` lines, top first, right-aligned (newest value at the right); a column
+        is filled to 1 + round((v - lo) / (hi - lo) (8 height - 1)) eighths of a cell, so
+        the lowest value still shows (half height when hi == lo).
+    """
+    v = np.asarray(list(values), dtype=float)[-max(1, width):]
+    v = v[np.isfinite(v)]
+    if v.size == 0:
+        return [Text(" " * width) for _ in range(height)]
+    lo = float(v.min()) if lo is None else lo
+    hi = float(v.max()) if hi is None else hi
+    if hi > lo:
+        eighths = np.rint((v - lo) / (hi - lo) * (8 * height - 1)).astype(int) + 1
+    else:
+        eighths = np.full(v.size, 4 * height)
+    rows = []
+    for r in range(height):                         # r = 0 is the top row
+        base = (height - 1 - r) * 8
+        cells = "".join(EIGHTHS[min(8, max(0, e - base))] for e in eighths)
+        rows.append(Text(cells.rjust(width), style="cyan"))
+    return rows
+
+
+def tsys_panel(state: ViewState, width: int, height: int) -> Text:
+    """System temperature now (K, with where it comes from) and its history as a sparkline.
+
+    Parameters
+    ----------
+    state : ViewState
+    width, height : int
+        Cells; line 1 is the title with the value, then ``height - 1`` rows of history (the
+        last of them gives the range and time span when ``height >= 4``).
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly ``height`` lines of ``width`` cells.
+    """
+    now = _tsys_now_k(state)
+    title = Text("Tsys ", style=S_TITLE)
+    title.append(_num(now, ".1f", "K"), style="bold cyan")
+    src = (state.status or {}).get("tsys_source")
+    if src and width >= 40:
+        title.append(f" ({src})", style=S_LABEL)
+    lines = [_rule(title, width)]
+    hist = [t for _, t in state.tsys_history]
+    rows = height - 1
+    label = None
+    if rows >= 3 and hist:
+        rows -= 1
+        span_s = state.tsys_history[-1][0] - state.tsys_history[0][0]
+        label = Text(f"{min(hist):.1f}–{max(hist):.1f} K over {format_duration(span_s)}",
+                     style=S_LABEL)
+    if rows > 0:
+        if hist:
+            lines += sparkline(hist, width, rows)
+        else:
+            lines += [Text("no Tsys history yet", style=S_LABEL)] + [Text("")] * (rows - 1)
+    if label is not None:
+        lines.append(label)
+    return _block(lines, width, height)
+
+
+# ----------------------------------------------------------------------------------------------
+# progress
+# ----------------------------------------------------------------------------------------------
+def _bar(fraction: float, width: int, ascii: bool = False) -> Text:
+    """A bar ``width`` cells long, ``fraction`` (0..1) of it filled."""
+    done = int(round(min(1.0, max(0.0, fraction)) * width))
+    full, empty = ("#", "-") if ascii else ("█", "░")
+    t = Text(full * done, style=S_BAR_DONE)
+    t.append(empty * (width - done), style=S_BAR_TODO)
+    return t
+
+
+def _elapsed_total(elapsed_s: float, total_s: float) -> str:
+    """"12.6/30.0 s", or in minutes above 1000 s."""
+    if total_s >= 1000.0:
+        return f"{elapsed_s / 60:.1f}/{total_s / 60:.1f} min"
+    return f"{elapsed_s:.1f}/{total_s:.1f} s"
+
+
+def _progress_line(label: str, elapsed_s: float, total_s: float | None, eta_s: float | None,
+                   width: int, ascii: bool) -> Text:
+    head = Text(label, style=S_LABEL)
+    if total_s is None or total_s <= 0:
+        tail = Text(f" {format_duration(elapsed_s)} observed, no end set", style=S_VALUE)
+        head.append_text(tail)
+        return _fit(head, width)
+    frac = elapsed_s / total_s
+    tail = Text(f" {100 * frac:3.0f} %", style=S_VALUE)
+    tail.append(f"  {_elapsed_total(elapsed_s, total_s)}")
+    tail.append("  ETA ", style=S_LABEL)
+    tail.append(format_duration(eta_s), style=S_VALUE)
+    bar_w = width - head.cell_len - tail.cell_len - 1
+    line = head
+    line.append(" ")
+    if bar_w >= 4:
+        line.append_text(_bar(frac, bar_w, ascii))
+    line.append_text(tail)
+    return _fit(line, width)
+
+
+def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
+    """Two lines: the integration and the scan, each "bar  42 %  12.6/30.0 s  ETA 17 s".
+
+    Parameters
+    ----------
+    state : ViewState
+    width : int
+        Cells.
+    ascii : bool
+        '#' and '-' instead of block characters.
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly 2 lines of ``width`` cells.
+
+    Notes
+    -----
+    Integration: fraction = elapsed / total, ETA = total - elapsed. Scan: fraction =
+    scan_elapsed / scan_total, ETA = the daemon's ``eta_s`` (it knows about pauses and
+    calibrations); an open-ended scan (``scan_total_s`` null) shows the time observed only.
+    """
+    p = state.progress
+    if not p:
+        what = (state.status or {}).get("state")
+        msg = "no progress yet" + (f": daemon {what}" if what else "")
+        return _block([Text(msg, style=S_LABEL), Text("")], width, 2)
+    label_w = max(len(f"int #{p.get('integration', 0)}"), 4) + 1
+    int_e = float(p.get("integration_elapsed_s", 0.0))
+    int_t = float(p.get("integration_total_s", 0.0))
+    first = _progress_line(f"int #{p.get('integration', 0)}".ljust(label_w), int_e, int_t,
+                           max(0.0, int_t - int_e), width, ascii)
+    if p.get("scan") is None:
+        second = Text("scan".ljust(label_w) + " none running (between scans)", style=S_LABEL)
+    else:
+        second = _progress_line("scan".ljust(label_w), float(p.get("scan_elapsed_s", 0.0)),
+                                p.get("scan_total_s"), p.get("eta_s"), width, ascii)
+    return _block([first, second], width, 2)
+
+
+# ----------------------------------------------------------------------------------------------
+# interference
+# ----------------------------------------------------------------------------------------------
+def waterfall_rows(rows, width: int, height: int, ascii: bool = False) -> list[Text]:
+    """Recent integrations, newest on top: one line per integration, one cell per channel group.
+
+    Parameters
+    ----------
+    rows : sequence of (numpy.ndarray, numpy.ndarray)
+        (data, flagged) per integration, oldest first (``ViewState.waterfall``).
+    width, height : int
+        Cells: the channels of each row are cut into ``width`` consecutive groups (fewer if
+        there are fewer channels); at most ``height`` rows, the newest.
+    ascii : bool
+        ASCII shades ".:-=#" instead of "·░▒▓█".
+
+    Returns
+    -------
+    list of rich.text.Text
+        Up to ``height`` lines. A cell with any flagged channel is 'x'; otherwise its level is
+        the mean of its unflagged finite channels, shaded on a scale common to all rows shown,
+        from their 2nd to their 98th percentile (so one hot cell does not wash out the rest).
+    """
+    shown = list(rows)[-height:][::-1] if height > 0 else []
+    if not shown or width <= 0:
+        return []
+    shades = SHADES_ASCII if ascii else SHADES
+    cells, flags = [], []
+    for data, flagged in shown:
+        data = np.asarray(data, dtype=float)
+        flagged = np.asarray(flagged, dtype=bool)
+        groups = np.array_split(np.arange(data.size), min(width, max(1, data.size)))
+        means, marks = [], []
+        for g in groups:
+            good = data[g][~flagged[g] & np.isfinite(data[g])]
+            means.append(float(good.mean()) if good.size else math.nan)
+            marks.append(bool(flagged[g].any()) or good.size == 0)
+        cells.append(np.array(means))
+        flags.append(np.array(marks))
+    allv = np.concatenate(cells)
+    allv = allv[np.isfinite(allv)]
+    lo, hi = (np.percentile(allv, [2, 98]) if allv.size else (0.0, 1.0))
+    styles = ("blue", "cyan", "green", "yellow", "bold white")
+    out = []
+    for means, marks in zip(cells, flags):
+        t = Text()
+        for m, f in zip(means, marks):
+            if f or not math.isfinite(m):
+                t.append(FLAG_MARK, style=S_FLAGGED)
+                continue
+            level = 0 if hi <= lo else int(np.clip((m - lo) / (hi - lo) * len(shades), 0,
+                                                   len(shades) - 1))
+            t.append(shades[level], style=styles[level])
+        out.append(t)
+    return out
+
+
+def rfi_panel(state: ViewState, width: int, height: int, ascii: bool = False) -> Text:
+    """Interference: flagged fraction now, impulses, carriers, and a waterfall of integrations.
+
+    Parameters
+    ----------
+    state : ViewState
+    width, height : int
+        Cells. Title line, one or two readout lines, the rest waterfall rows.
+    ascii : bool
+        ASCII waterfall shades.
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly ``height`` lines of ``width`` cells.
+
+    Notes
+    -----
+    From the latest integration: ``flagged_fraction`` (of channels, shown in %),
+    ``blanked_fraction`` (of samples blanked as impulses, %), ``nimpulse``, ``ncarrier``;
+    from the status: the daemon's counters since start (impulses, carrier onsets, SK cells).
+    """
+    lines = [_rule("interference", width)]
+    spec = state.spectrum
+    items = []
+    if spec:
+        items = [_kv("flagged", f"{100 * spec.get('flagged_fraction', 0.0):.1f} %"),
+                 _kv("imp", f"{spec.get('nimpulse', 0)}"),
+                 _kv("car", f"{spec.get('ncarrier', 0)}"),
+                 _kv("blanked", f"{100 * spec.get('blanked_fraction', 0.0):.2f} %")]
+    else:
+        items = [Text("flagged — % (no integration yet)", style=S_LABEL)]
+    rfi = (state.status or {}).get("rfi")
+    if rfi and height >= 8:
+        items.append(_kv("since start: imp", str(rfi.get("impulses", 0))))
+        items.append(_kv("carrier onsets", str(rfi.get("carrier_onsets", 0))))
+        items.append(_kv("SK cells", str(rfi.get("sk_cells", 0))))
+    readout = _pack(items, width)
+    keep = max(1, min(len(readout), height - 3 if height >= 5 else height - 1))
+    lines += readout[:keep]
+    rows_left = height - len(lines)
+    if rows_left >= 3 and state.waterfall and width >= 30:
+        lines.append(Text(f"waterfall: newest on top, {FLAG_MARK} flagged", style=S_LABEL))
+        rows_left -= 1
+    lines += waterfall_rows(state.waterfall, width, rows_left, ascii)
+    return _block(lines, width, height)
+
+
+# ----------------------------------------------------------------------------------------------
+# receiver
+# ----------------------------------------------------------------------------------------------
+def receiver_panel(state: ViewState, width: int) -> Text:
+    """Receiver and pointing: az/el, l/b, LO, gain, sample rate, lost samples, disk free.
+
+    Parameters
+    ----------
+    state : ViewState
+    width : int
+        Cells; items are packed into as few lines as fit.
+
+    Returns
+    -------
+    rich.text.Text
+        A title line and the items; as many lines as needed (more on a narrow column).
+
+    Notes
+    -----
+    az/el, l/b and RA/Dec come from the latest spectrum (its pointing at mid-integration); l/b
+    falls back to the status's pointing when it is galactic. LO in MHz = lo_hz / 10^6, sample
+    rate in MS/s = sample_rate_hz / 10^6, disk free in GB = bytes / 10^9, lost samples also
+    as a percentage of the samples received.
+    """
+    st = state.status or {}
+    spec = state.spectrum or state.average or {}
+    glon, glat = spec.get("glon_deg"), spec.get("glat_deg")
+    pointing = st.get("pointing") or {}
+    if glon is None and pointing.get("frame") == "galactic":
+        glon, glat = pointing.get("lon_deg"), pointing.get("lat_deg")
+    items = [
+        _kv("az", _num(spec.get("azimuth_deg"), ".1f", "°")) + _kv(" el", _num(
+            spec.get("elevation_deg"), ".1f", "°")),
+        _kv("l", _num(glon, ".2f", "°")) + _kv(" b", _num(glat, ".2f", "°")),
+    ]
+    if width >= 44 and spec.get("ra_deg") is not None:
+        items.append(_kv("RA", _num(spec.get("ra_deg"), ".2f", "°"))
+                     + _kv(" Dec", _num(spec.get("dec_deg"), ".2f", "°")))
+    lo_hz, rate_hz = st.get("lo_hz"), st.get("sample_rate_hz")
+    items.append(_kv("LO", _num(None if lo_hz is None else lo_hz / 1e6, ".3f", "MHz")))
+    items.append(_kv("gain", _num(st.get("gain_db"), ".1f", "dB")))
+    items.append(_kv("", _num(None if rate_hz is None else rate_hz / 1e6, ".2f", "MS/s")))
+    lost, received = st.get("samples_lost"), st.get("samples_received")
+    lost_text = ("—" if lost is None else f"{lost}") + " samples"
+    if lost and received:
+        lost_pct = 100.0 * lost / (lost + received)
+        lost_text += f" ({lost_pct:.2f} %)" if lost_pct >= 0.01 else " (<0.01 %)"
+    items.append(_kv("lost", lost_text))
+    disk = st.get("disk_free_bytes")
+    items.append(_kv("disk", _num(None if disk is None else disk / 1e9, ".1f", "GB free")))
+    if width >= 44 and st:
+        items.append(_kv("source", str(st.get("source", "?"))))
+        items.append(_kv("queue", str(st.get("queue_depth", 0))))
+        items.append(_kv("up", format_duration(st.get("uptime_s"))))
+    lines = [_rule("receiver", width)] + _pack(items, width)
+    return _block(lines, width, len(lines))
+
+
+# ----------------------------------------------------------------------------------------------
+# events
+# ----------------------------------------------------------------------------------------------
+def events_panel(state: ViewState, width: int, height: int) -> Text:
+    """The latest events, newest at the bottom: "HH:MM:SS WARN text".
+
+    Parameters
+    ----------
+    state : ViewState
+    width, height : int
+        Cells; a title line when ``height >= 3``, then the latest events that fit.
+
+    Returns
+    -------
+    rich.text.Text
+        Exactly ``height`` lines of ``width`` cells. Severity is a word as well as a style:
+        "info", "WARN", "ERROR".
+    """
+    lines = []
+    if height >= 3:
+        lines.append(_rule(f"events ({len(state.events)})", width))
+    room = height - len(lines)
+    shown = list(state.events)[-room:] if room > 0 else []
+    for time_utc, severity, text in shown:
+        t = Text(_hms(time_utc) + " ", style=S_LABEL)
+        t.append(f"{SEVERITY_WORD.get(severity, severity):5s}",
+                 style=S_SEVERITY.get(severity, ""))
+        t.append(" " + text)
+        lines.append(t)
+    if not shown and room > 0:
+        lines.append(Text("no events yet", style=S_LABEL))
+    return _block(lines, width, height)
+
+
+# ----------------------------------------------------------------------------------------------
+# the whole screen
+# ----------------------------------------------------------------------------------------------
+def _side_by_side(left: list[Text], right: list[Text], gap: str = "│") -> list[Text]:
+    out = []
+    for a, b in zip(left, right):
+        line = a.copy()
+        line.append(gap, style=S_RULE)
+        line.append_text(b)
+        out.append(line)
+    return out
+
+
+def side_width(width: int) -> int:
+    """Cells of the side column for a screen ``width`` cells wide."""
+    return int(min(SIDE_MAX_CHARS, max(SIDE_MIN_CHARS, round(SIDE_FRACTION * width))))
+
+
+def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Text:
+    """The whole screen, exactly ``height`` lines of ``width`` cells.
+
+    Parameters
+    ----------
+    state : ViewState
+    width, height : int
+        Terminal size in cells; below 80 x 24 the screen is still drawn at that size but
+        panels lose lines (the plot first gives up rows, then the receiver).
+    ascii : bool
+        ASCII plot, bars and shades, for terminals without braille or block characters.
+
+    Returns
+    -------
+    rich.text.Text
+        No line wrap, no overflow: every line is exactly ``width`` cells.
+
+    Notes
+    -----
+    Rows, top to bottom: top bar (1), link (3 lines when stale, 1 while waiting, 0 else),
+    progress (2), main area, events (3 at 24 rows, growing to 8 at 50 rows), help (1). The
+    main area is the spectrum plot on the left and a side column (:func:`side_width`) with,
+    on screens of 40 rows or more, the link line; Tsys; receiver; interference taking what
+    is left (a waterfall row per integration).
+    """
+    width, height = max(1, int(width)), max(1, int(height))
+    lines = [top_bar(state, width)]
+    link_lines = _lines(link_panel(state, width))
+    big = height >= 40
+    if state.is_stale() or not state.has_data():
+        lines += link_lines
+    lines += _lines(progress_panel(state, width, ascii))
+    n_events = int(min(8, max(3, 3 + (height - MIN_HEIGHT) // 5)))
+    n_events = min(n_events, max(3, len(state.events) + 1))
+    main_h = height - len(lines) - n_events - 1
+    if main_h < 8:                                        # tiny terminal: events give way
+        n_events = max(0, n_events - (8 - main_h))
+        main_h = height - len(lines) - n_events - 1
+    main_h = max(0, main_h)
+    side_w = side_width(width)
+    plot_w = width - side_w - 1
+    side: list[Text] = []
+    if big and not (state.is_stale() or not state.has_data()):
+        side += _lines(link_panel(state, side_w))
+    tsys_h = 3 if main_h < 30 else 6
+    receiver = _lines(receiver_panel(state, side_w))
+    rfi_min = 4
+    room_receiver = max(0, main_h - len(side) - tsys_h - rfi_min)
+    side += _lines(tsys_panel(state, side_w, tsys_h))
+    side += receiver[:room_receiver]
+    side += _lines(rfi_panel(state, side_w, max(0, main_h - len(side)), ascii))
+    side = [_fit(s, side_w) for s in side[:main_h]]
+    side += [_fit("", side_w) for _ in range(main_h - len(side))]
+    left = _lines(spectrum_panel(state, plot_w, main_h, ascii)) if main_h else []
+    lines += _side_by_side(left, side)
+    if n_events:
+        lines += _lines(events_panel(state, width, n_events))
+    lines.append(help_line(state, width))
+    return _block(lines[:height], width, height)

@@ -1,0 +1,184 @@
+"""What the terminal UI knows: the latest of each live message, folded into one plain object.
+
+:class:`ViewState` is the only thing the panels look at. It does no I/O: the application
+receives :class:`spinflip.daemon.wire.Message` objects (see the docstring of
+:mod:`spinflip.daemon.wire` for every field) and hands each one to :meth:`ViewState.apply`
+with the time it arrived, on a monotonic clock in seconds; it sets :attr:`ViewState.now_s`
+before every redraw so that the panels can tell how old the data are.
+
+What goes where
+---------------
+=====================  ===========================================================
+message                effect
+=====================  ===========================================================
+spectrum "integration" ``spectrum`` (header + arrays); its ``data`` row and its
+                       ``flagged`` mask appended to ``waterfall``
+spectrum "average"     ``average`` (header + arrays)
+status                 ``status`` (header); ``tsys_k`` (when not null) appended to
+                       ``tsys_history`` as (arrival time in s, Tsys in K)
+progress               ``progress`` (header)
+event                  (time_utc, severity, text) appended to ``events``
+any                    ``connected = True``, ``last_message_s`` = arrival time
+=====================  ===========================================================
+
+Notes
+-----
+A subscriber that joins or reconnects is sent the latest message of each topic again
+(wire docstring, "Transport"), so an integration already on the waterfall (same station,
+scan, row and time) is not appended twice, nor is an event equal to the last one.
+
+A spectrum is kept as a dict: the header's fields, with ``"arrays"`` replaced by a dict
+name -> NumPy array (``flagged`` as bool) and ``"units"`` holding name -> unit of each array.
+"""
+
+from __future__ import annotations
+
+import math
+from collections import deque
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from spinflip.daemon import wire
+
+#: The axes the spectrum can be drawn against (toggled by :meth:`ViewState.toggle_axis`).
+AXES = ("velocity", "frequency")
+
+#: How many of each kind of history the state keeps.
+EVENTS_KEPT = 50
+TSYS_KEPT = 300
+WATERFALL_ROWS_KEPT = 60
+
+
+def _spectrum_dict(message: wire.Message) -> dict:
+    """The header of a spectrum message with its arrays by name (``flagged`` as bool)."""
+    out = {k: v for k, v in message.header.items() if k != "arrays"}
+    out["units"] = {d["name"]: d["unit"] for d in message.header["arrays"]}
+    arrays = dict(message.arrays)
+    if "flagged" in arrays:
+        arrays["flagged"] = np.asarray(arrays["flagged"]).astype(bool)
+    out["arrays"] = arrays
+    return out
+
+
+def _same_integration(a: dict | None, b: dict) -> bool:
+    if a is None:
+        return False
+    keys = ("station", "scan", "row", "time_utc")
+    return all(a.get(k) == b.get(k) for k in keys)
+
+
+@dataclass
+class ViewState:
+    """The UI's picture of one daemon (plain data; :meth:`apply` is the only writer).
+
+    Attributes
+    ----------
+    spectrum : dict or None
+        Latest spectrum of kind "integration" (see the module Notes for its layout).
+    average : dict or None
+        Latest spectrum of kind "average" (the scan's running average).
+    status, progress : dict or None
+        Header of the latest "status" / "progress" message.
+    events : deque of (str, str, str)
+        (time_utc, severity, text) of the latest events, oldest first, at most 50.
+    tsys_history : deque of (float, float)
+        (arrival time in s on the app's monotonic clock, system temperature in K), at most 300.
+    waterfall : deque of (numpy.ndarray, numpy.ndarray)
+        (data as float array, flagged as bool array) of the latest integrations, oldest
+        first, at most 60.
+    axis : str
+        "velocity" (LSRK radio velocity, km/s) or "frequency" (topocentric sky frequency, MHz).
+    reply : str
+        The last control reply, as the app wants it shown.
+    endpoint : str
+        The data endpoint the UI subscribes to (shown while waiting and when stale).
+    connected : bool
+        True once a message has arrived (the app may set it False when it knows better).
+    last_message_s : float or None
+        Arrival time of the latest message, s (monotonic); None until the first one.
+    now_s : float
+        The app's clock at the redraw, s (monotonic).
+    stale_after_s : float
+        Data older than this are stale, s.
+    """
+
+    spectrum: dict | None = None
+    average: dict | None = None
+    status: dict | None = None
+    progress: dict | None = None
+    events: deque = field(default_factory=lambda: deque(maxlen=EVENTS_KEPT))
+    tsys_history: deque = field(default_factory=lambda: deque(maxlen=TSYS_KEPT))
+    waterfall: deque = field(default_factory=lambda: deque(maxlen=WATERFALL_ROWS_KEPT))
+    axis: str = "velocity"
+    reply: str = ""
+    endpoint: str = ""
+    connected: bool = False
+    last_message_s: float | None = None
+    now_s: float = 0.0
+    stale_after_s: float = 3.0
+
+    def apply(self, message: wire.Message, now_s: float) -> None:
+        """Fold one decoded message into the state.
+
+        Parameters
+        ----------
+        message : spinflip.daemon.wire.Message
+            A message as :func:`spinflip.daemon.wire.decode` returns it (already checked
+            against the schema). Unknown topics are ignored.
+        now_s : float
+            Its arrival time on the app's monotonic clock, s; also becomes :attr:`now_s`.
+        """
+        header = message.header
+        topic = message.topic
+        if topic == "spectrum":
+            spec = _spectrum_dict(message)
+            if header.get("kind") == "average":
+                self.average = spec
+            else:
+                if not _same_integration(self.spectrum, spec):
+                    arrays = spec["arrays"]
+                    data = np.asarray(arrays["data"], dtype=float)
+                    flagged = np.asarray(arrays.get("flagged", np.zeros(data.shape, bool)),
+                                         dtype=bool)
+                    self.waterfall.append((data, flagged))
+                self.spectrum = spec
+        elif topic == "status":
+            self.status = dict(header)
+            tsys_k = header.get("tsys_k")
+            if tsys_k is not None and math.isfinite(tsys_k):
+                self.tsys_history.append((float(now_s), float(tsys_k)))
+        elif topic == "progress":
+            self.progress = dict(header)
+        elif topic == "event":
+            item = (header.get("time_utc", ""), header.get("severity", "info"),
+                    header.get("text", ""))
+            if not self.events or self.events[-1] != item:
+                self.events.append(item)
+        else:
+            return
+        self.connected = True
+        self.last_message_s = float(now_s)
+        self.now_s = float(now_s)
+
+    def age_s(self) -> float | None:
+        """Seconds since the latest message (``now_s - last_message_s``); None before one."""
+        if self.last_message_s is None:
+            return None
+        return max(0.0, self.now_s - self.last_message_s)
+
+    def is_stale(self) -> bool:
+        """True when data had been arriving and none came for more than ``stale_after_s``.
+
+        Before the first message the state is "waiting", not stale.
+        """
+        age = self.age_s()
+        return age is not None and age > self.stale_after_s
+
+    def toggle_axis(self) -> None:
+        """Switch the spectrum's x axis between LSRK velocity and sky frequency."""
+        self.axis = "frequency" if self.axis == "velocity" else "velocity"
+
+    def has_data(self) -> bool:
+        """True once any message has arrived."""
+        return self.last_message_s is not None
