@@ -56,7 +56,7 @@ offset_hz = {offset}
 def inband(tmp_path_factory):
     """Default in-band switching (folded), l = 30 deg: strong, wide, optically thick line."""
     return _scan(tmp_path_factory, "inband", BASE.format(seed=3, drift=0.02, period=900.0, l=30.0,
-                                                        b=0.0, offset=-0.8e6), 60)
+                                                        b=0.0, offset=-0.8e6), 40)
 
 
 @pytest.fixture(scope="module")
