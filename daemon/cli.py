@@ -115,9 +115,10 @@ def _cmd_run(args) -> int:
     result = daemon.run()
     for f in result.files:
         n = result.file_rows.get(str(f), result.rows)
-        print(f"saved {n} integrations to {f} ({result.observed_s:.1f} s observed in all)"
+        what = f"{n} integration{'s' if n != 1 else ''}"
+        print(f"saved {what} to {f} ({result.observed_s:.1f} s observed in all)"
               if len(result.files) > 1 else
-              f"saved {n} integrations ({result.observed_s:.1f} s observed) to {f}")
+              f"saved {what} ({result.observed_s:.1f} s observed) to {f}")
     if not result.files:
         print(f"no integration finished; nothing saved in {daemon.out_dir}")
     if result.lost_samples:

@@ -1,1 +1,1 @@
-"""spinflip.tui: the terminal UI, a subscriber of the daemon (comes with its own issue)."""
+"""spinflip.tui: the terminal UI (spinflip watch, spinflip demo), a pure subscriber of the daemon."""
