@@ -13,7 +13,6 @@ import datetime as _dt
 
 import numpy as np
 
-from .lines import C_M_S
 from .spectral_axis import frequency_axis_hz, velocity_axis_lsrk_m_s
 
 
@@ -83,7 +82,7 @@ def spectrum_message(row: dict, nchan: int, kind: str, scan: str, index: int, un
         "flagged_fraction": float(np.mean(flagged)),
         "blanked_fraction": float(row.get("FLAGTIME", 0.0)),
         "nimpulse": int(row.get("NIMPULSE", 0)), "ncarrier": int(row.get("NCARRIER", 0)),
-        "time_utc": _iso_z(str(row["DATE-OBS"] if kind == "integration" else row["DATE-OBS"])),
+        "time_utc": _iso_z(str(row["DATE-OBS"])),
         "station": "",
     }
     arrays = {
@@ -99,8 +98,3 @@ def spectrum_message(row: dict, nchan: int, kind: str, scan: str, index: int, un
 def _iso_z(date_obs: str) -> str:
     """DATE-OBS (UTC, no zone) as the wire's ``YYYY-MM-DDTHH:MM:SS.ffffffZ``."""
     return _dt.datetime.fromisoformat(date_obs).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
-
-
-def channel_width_km_s(cdelt1_hz: float, restfreq_hz: float) -> float:
-    """Radio-convention channel width, km/s: c |CDELT1| / RESTFREQ."""
-    return C_M_S * abs(cdelt1_hz) / restfreq_hz / 1e3

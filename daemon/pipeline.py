@@ -195,7 +195,7 @@ def _widen(mask: np.ndarray, k: int) -> np.ndarray:
     return out
 
 
-def json_args(args: dict) -> str:
+def _as_words(args: dict) -> str:
     """Command arguments as ``key=value`` words, for the event log."""
     return " ".join(f"{k}={v}" for k, v in sorted(args.items()))
 
@@ -578,7 +578,7 @@ class Daemon:
 
     def _restart_stream(self) -> None:
         """After a gap (pause, idle, new pointing): no spectrum or Tsys firing spans it."""
-        self.spectrometer._last_lo = None
+        self.spectrometer.restart()
         if self.meter is not None:
             self.meter.reset()
 
@@ -626,6 +626,7 @@ class Daemon:
                         self._end_integration(rows_q, result, "the source ended")   # replay
                     break
                 counters["received"] += block.n_samples
+                counters["lost"] += block.lost_before
                 result.lost_samples += block.lost_before
                 self._last_block_end = block.t0_unix_s + block.duration_s
                 if self.state != "observing":
@@ -711,7 +712,7 @@ class Daemon:
             try:
                 box["result"] = self._apply(cmd, args, rows_q, result)
                 if cmd != "annotate":
-                    self.event("info", f"control: {cmd} {json_args(args)}".rstrip()
+                    self.event("info", f"control: {cmd} {_as_words(args)}".rstrip()
                                + f" -> {self.state}, scan {self.scan_name or 'none'}")
             except (ValueError, ConfigError) as exc:
                 box["error"] = str(exc).splitlines()[0]
@@ -876,7 +877,7 @@ class Daemon:
             "tsys_k": float(tsys) if tsys is not None and np.isfinite(tsys) else None,
             "tsys_source": self.tsys_plan.text,
             "samples_received": int(self.counters["received"]),
-            "samples_lost": int(self.counters["dropped"]),
+            "samples_lost": int(self.counters["lost"] + self.counters["dropped"]),
             "queue_depth": int(self._blocks_q.qsize()) if hasattr(self, "_blocks_q") else 0,
             "disk_free_bytes": int(free),
             "uptime_s": _time.monotonic() - self.started_mono, "version": __version__,

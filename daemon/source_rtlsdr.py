@@ -59,6 +59,7 @@ class RtlSdrSource:
         self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
         self.fire_now = False     # set by a control command: an extra firing as soon as possible
         self._extra_from = None
+        self._cal_wanted = False  # noise-source state of the previous block
         self.sdr = None
         self._ring = np.zeros((_RING_TRANSFERS, _TRANSFER_BYTES), dtype=np.uint8)
         self._ring_len = np.zeros(_RING_TRANSFERS, dtype=np.int64)
@@ -168,7 +169,7 @@ class RtlSdrSource:
         if self.fire_now:
             self.fire_now, self._extra_from = False, i
         wanted = sch.cal_on(i, self._extra_from) if self.forced_cal is None else self.forced_cal
-        switched = wanted != getattr(self, "_cal_wanted", False)
+        switched = wanted != self._cal_wanted
         self._cal_wanted = wanted
         cal_state = self.cal.state_for(wanted)
         if lo != self._lo:

@@ -201,6 +201,12 @@ class Spectrometer:
                 tally.sk_cells += int(bad.sum())
         return s1, s2, m, spectra, bad
 
+    def restart(self) -> None:
+        """After a gap in the samples (pause, new pointing): the next block starts afresh, so
+        no spectrum spans the gap."""
+        self._last_lo = None
+        self._last_cal = None
+
     def take(self) -> Integration:
         """Hand over the finished integration and start a new one."""
         done, self.current = self.current, self._new()

@@ -87,7 +87,3 @@ class Schedule:
                 return True
         c = (index // self.blocks_per_cycle) % self.cal_period_cycles
         return 1 <= c <= self.cal_on_cycles
-
-    def cycle_ends(self, index: int) -> bool:
-        """True when block ``index`` is the last of its switching cycle."""
-        return (index + 1) % self.blocks_per_cycle == 0

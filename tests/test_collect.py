@@ -418,7 +418,6 @@ def test_add_collect_arguments_matches_main_collect():
 # CURVE: each station with its own server key (DIR/NAME/) or the shared one (DIR)
 # ----------------------------------------------------------------------------------------------
 def test_collect_with_curve_keys(tmp_path):
-    pytest.importorskip("spinflip.daemon.keys")
     from zmq.auth import create_certificates, load_certificate
     from zmq.auth.thread import ThreadAuthenticator
 

@@ -337,10 +337,15 @@ def test_offline_beyond_and_inside_the_bundled_tables(monkeypatch, caplog):
     assert cov["beyond_eop"] and cov["beyond_leap"]
 
 
-def test_check_eop_names_an_expired_leap_second_table():
-    cov = frames.eop_coverage(Time("2026-01-01T00:00:00", scale="utc"))
-    if cov["leap_expires_mjd"] >= cov["eop_end_mjd"]:
-        pytest.skip("the bundled leap-second table outlives the Earth-orientation table")
+def test_check_eop_names_an_expired_leap_second_table(monkeypatch):
+    # the bundled tables' dates change with the package: put the leap-second table's expiry
+    # 100 days before the end of the Earth-orientation table, whatever the bundle says
+    real = frames._eop_limits()
+    leap = real["eop_end_mjd"] - 100.0
+    fake = dict(real, leap_expires_mjd=leap, leap_expires_date=frames._mjd_date(leap))
+    monkeypatch.setattr(frames, "_eop_limits", lambda: fake)
+    cov = frames.eop_coverage(Time(leap + 1.0, format="mjd", scale="utc"))
+    assert cov["beyond_leap"] and not cov["beyond_eop"]
     t = Time(cov["leap_expires_mjd"] + 1.0, format="mjd", scale="utc")
     line = frames.check_eop(t)
     assert cov["leap_expires_date"] in line and "leap-second" in line

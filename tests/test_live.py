@@ -385,3 +385,14 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
     for name, lon in (("north", 30.0), ("south", 90.0)):
         assert archived[name] and all(abs(m.header["glon_deg"] - lon) < 1e-6
                                       and m.header["station"] == name for m in archived[name])
+
+
+def test_status_counts_samples_the_source_lost_and_the_queue_dropped(tmp_path):
+    # lost = reported by the source before its blocks (USB gaps) + dropped on a full queue
+    from spinflip.daemon import config, pipeline
+    cfg = config.load(None)
+    config.merge(cfg, {"output": {"dir": str(tmp_path)}, "publish": {"data": "", "control": ""}})
+    d = pipeline.Daemon(cfg, fast=True, log=lambda m: None)
+    d.counters["lost"], d.counters["dropped"] = 5, 7
+    s = d.status()
+    assert s["samples_lost"] == 12 and s["state"] == "observing" and s["tsys_source"]

@@ -367,4 +367,4 @@ def test_no_color_keeps_the_content(width, height):
                   for p in seq.split(";") if p}
         assert not params & COLOUR_SGR                 # ECMA-48 colour parameters
         if state.is_stale():
-            assert 7 in params                         # the STALE banner in reverse video
+            assert 7 in params                         # the STALE banner in reversed colours

@@ -266,7 +266,7 @@ def link_panel(state: ViewState, width: int) -> Text:
         One line while waiting for the first message ("waiting for data from ENDPOINT") or
         while data flow (endpoint, age, drops reported by the daemon); three lines when
         stale: a line of "! STALE", the warning "STALE: no data for N s: daemon gone?
-        reconnecting to ENDPOINT", a line of "! STALE", all in reverse video.
+        reconnecting to ENDPOINT", a line of "! STALE", all in reversed colours.
 
     Notes
     -----
