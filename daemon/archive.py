@@ -525,10 +525,14 @@ def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows:
     final = out_dir / f"{scan}.fits"
     tmp = out_dir / f"{scan}.fits.tmp"
     hdul = _build_hdul(header, nchan, rows, tsys, products, rfi)
-    with open(tmp, "wb") as fh:  # "wb" truncates a .tmp a crashed run may have left
-        hdul.writeto(fh)
-        fh.flush()
-        os.fsync(fh.fileno())
+    try:
+        with open(tmp, "wb") as fh:  # "wb" truncates a .tmp a crashed run may have left
+            hdul.writeto(fh)
+            fh.flush()
+            os.fsync(fh.fileno())
+    except BaseException:            # disk full and the like: no half-written file stays
+        tmp.unlink(missing_ok=True)
+        raise
     os.replace(tmp, final)
     _fsync_dir(out_dir)
     return final
@@ -591,8 +595,13 @@ class ScanWriter:
         head = {"kind": "header", "format": JOURNAL_FORMAT, "scan": name, "nchan": self.nchan,
                 "header": self.header}
         self._size = 0
-        self._append_bytes(_encode(head))
-        _fsync_dir(self.out_dir)
+        try:
+            self._append_bytes(_encode(head))
+            _fsync_dir(self.out_dir)
+        except OSError:               # disk full at the start: leave no empty journal behind
+            os.close(self._fd)
+            self.journal_path.unlink(missing_ok=True)
+            raise
 
     def __repr__(self) -> str:
         return f"ScanWriter({str(self.journal_path)!r}, rows={self.rows})"
@@ -711,32 +720,13 @@ def recover(out_dir: Path, products=None) -> list[Path]:
                 continue
             if not jpath.exists():  # closed and unlinked between glob and lock
                 continue
-            contents = read_journal(jpath)
-            scan = jpath.name[: -len(".journal")]
-            if not contents.header_ok:
-                if contents.torn_bytes == 0:  # empty file: crash right after creating it
-                    jpath.unlink()
-                else:
-                    bad = jpath.with_name(jpath.name + ".bad")
-                    os.replace(jpath, bad)
-                    log.warning("%s: header record damaged; %d bytes kept as %s",
-                                jpath, contents.torn_bytes, bad)
-                _fsync_dir(out_dir)
+            try:
+                path = _finalise_locked(jpath, products)
+            except OSError as exc:   # disk full: the journal stays, a later start retries
+                log.warning("%s: not turned into FITS yet (%s); the journal is kept", jpath, exc)
                 continue
-            if contents.rows:
-                path = _write_fits_atomic(out_dir, scan,
-                                          _with_notes(contents.header, contents.notes),
-                                          contents.nchan,
-                                          contents.rows, contents.tsys, products, contents.rfi)
+            if path is not None:
                 written.append(path)
-                log.warning("recovered %d integrations of interrupted scan %s into %s; "
-                            "dropped %d torn bytes", len(contents.rows), scan, path,
-                            contents.torn_bytes)
-            else:
-                log.warning("interrupted scan %s had no integration; removed its journal "
-                            "(dropped %d torn bytes)", scan, contents.torn_bytes)
-            jpath.unlink()
-            _fsync_dir(out_dir)
         finally:
             os.close(fd)
     for tmp in sorted(out_dir.glob("*.fits.tmp")):
@@ -746,6 +736,55 @@ def recover(out_dir: Path, products=None) -> list[Path]:
         tmp.unlink(missing_ok=True)
         log.warning("removed %s, left by an interrupted FITS write", tmp)
     return written
+
+
+def finalise_journal(jpath: Path, products=None) -> Path | None:
+    """Turn one unlocked journal into its FITS file (as :func:`recover` does for each).
+
+    Returns the FITS file, or None when there was nothing to write or a running writer holds
+    the journal. Raises OSError when writing fails (disk full): the journal is then kept.
+    """
+    jpath = Path(jpath)
+    try:
+        fd = os.open(jpath, os.O_RDWR | getattr(os, "O_CLOEXEC", 0))
+    except FileNotFoundError:
+        return None
+    try:
+        if not _try_lock(fd) or not jpath.exists():
+            return None
+        return _finalise_locked(jpath, products)
+    finally:
+        os.close(fd)
+
+
+def _finalise_locked(jpath: Path, products=None) -> Path | None:
+    """Journal (locked by the caller) -> FITS, then remove the journal; see :func:`recover`."""
+    out_dir = jpath.parent
+    contents = read_journal(jpath)
+    scan = jpath.name[: -len(".journal")]
+    if not contents.header_ok:
+        if contents.torn_bytes == 0:  # empty file: crash right after creating it
+            jpath.unlink()
+        else:
+            bad = jpath.with_name(jpath.name + ".bad")
+            os.replace(jpath, bad)
+            log.warning("%s: header record damaged; %d bytes kept as %s",
+                        jpath, contents.torn_bytes, bad)
+        _fsync_dir(out_dir)
+        return None
+    path = None
+    if contents.rows:
+        path = _write_fits_atomic(out_dir, scan, _with_notes(contents.header, contents.notes),
+                                  contents.nchan, contents.rows, contents.tsys, products,
+                                  contents.rfi)
+        log.warning("recovered %d integrations of interrupted scan %s into %s; "
+                    "dropped %d torn bytes", len(contents.rows), scan, path, contents.torn_bytes)
+    else:
+        log.warning("interrupted scan %s had no integration; removed its journal "
+                    "(dropped %d torn bytes)", scan, contents.torn_bytes)
+    jpath.unlink()
+    _fsync_dir(out_dir)
+    return path
 
 
 def read_scan(path: Path):

@@ -26,6 +26,9 @@ class Block:
     lost_before : complex samples lost between the previous block and this one
     settle_samples : leading samples to discard (the tuner settling after a hop)
     index : number of this block in the run's switching schedule (0 for the first)
+    clock_step_s : a step of the system clock noticed just before this block, s (0: none);
+        positive: the clock jumped forward and the timestamps followed it; negative: it jumped
+        back and the timestamps did not (see :mod:`spinflip.daemon.sample_clock`)
     """
 
     raw: np.ndarray
@@ -37,6 +40,7 @@ class Block:
     lost_before: int = 0
     settle_samples: int = 0
     index: int = 0
+    clock_step_s: float = 0.0
 
     @property
     def n_samples(self) -> int:

@@ -7,6 +7,7 @@ Exit codes: 0 success, 1 a fault while running (device gone, disk error), 2 bad 
 from __future__ import annotations
 
 import argparse
+import faulthandler
 import json
 import sys
 from pathlib import Path
@@ -88,7 +89,37 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--json", action="store_true", help="machine-readable output")
     b.add_argument("--seconds", type=_positive_seconds, default=2.0,
                    help="seconds of 2.4 MS/s data per measurement (default 2)")
+    ch = sub.add_parser("chain", help="receiver-chain budget: Friis cascade, Tsys, beam, "
+                        "sensitivity, expected HI (hardware/profiles/*.toml)")
+    ch.add_argument("file", metavar="FILE", help="a receiver-chain profile (TOML)")
+    dr = sub.add_parser("doctor", help="check the station: librtlsdr, dongle, DVB driver, "
+                        "permissions, clock, disk, config, ports")
+    dr.add_argument("--config", metavar="FILE", help="TOML configuration (as for run)")
+    dr.add_argument("--out", metavar="DIR", help="output folder (as for run; overrides [output] dir)")
+    so = sub.add_parser("soak", help="the daemon in real time on the simulator with two "
+                        "subscribers: samples lost, RSS growth, CPU share")
+    so.add_argument("--seconds", type=_positive_seconds, default=600.0, metavar="S",
+                    help="how long (default 600)")
+    so.add_argument("--json", action="store_true", help="machine-readable output")
+    so.add_argument("--check", action="store_true",
+                    help="exit 1 when a target is missed (samples or messages lost, RSS growth "
+                    "above 5 %%, integrations not saved)")
     return p
+
+
+def _cmd_chain(args) -> int:
+    from .chain_table import chain_main
+    return chain_main(args.file)
+
+
+def _cmd_doctor(args) -> int:
+    from .doctor import doctor_main
+    return doctor_main(args.config, out_dir=args.out)
+
+
+def _cmd_soak(args) -> int:
+    from .soak import soak_main
+    return soak_main(args.seconds, args.json, args.check)
 
 
 def _cmd_run(args) -> int:
@@ -106,6 +137,7 @@ def _cmd_run(args) -> int:
     if args.out:
         over["output"] = {"dir": args.out}
     config_mod.merge(cfg, over, origin="command line")
+    faulthandler.enable()     # a watchdog kill (SIGABRT) leaves every thread's stack in the log
     daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration)
     daemon.install_signal_handlers()
     src = cfg["source"]["kind"]
@@ -216,7 +248,8 @@ def main(argv=None) -> int:
     handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
                "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
                "watch": _cmd_watch, "demo": _cmd_demo,
-               "collect": _cmd_collect}[args.command]
+               "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,
+               "soak": _cmd_soak}[args.command]
     from .sources import SourceError
     try:
         return handler(args)

@@ -64,6 +64,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "bias_tee": Key(False, bool, doc="power the LNA through the coax"),
         "path": Key("", str, doc="replay: .cu8 file"),
         "block_samples": Key(262144, int, 16384, 4194304, doc="complex samples per block"),
+        "reconnect_max_s": Key(30.0, float, 1, 600, doc="rtlsdr: longest wait between attempts "
+                               "to reopen a lost dongle, s (the wait doubles from 1 s)"),
     },
     "sim": {
         "start": Key("now", str, doc="UTC ISO time of the first sample, or 'now'"),
@@ -146,6 +148,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
     "output": {
         "dir": Key("spinflip-data", str),
+        "hold_mb": Key(64.0, float, 1, 4096, doc="spectra held in memory while the disk refuses"
+                       " writes (full disk), MB; past it new integrations are dropped and said so"),
     },
     "publish": {
         "data": Key("tcp://127.0.0.1:5621", str, doc="live data (PUB) endpoint; '' for none"),

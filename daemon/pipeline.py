@@ -15,6 +15,22 @@ calling thread; numpy releases the GIL) consumes it; finished rows go to a write
 journal append (with fsync) never blocks the DSP loop. For a live source (the dongle, or the
 simulator in real time) a full queue drops the block and counts its samples as lost; in
 ``--fast`` mode the reader waits instead, since simulated time does not run away.
+
+Faults (each also an event on the live socket):
+
+* a source that fails in mid-scan (the dongle unplugged) and can be reopened: the integration
+  in progress is kept if it holds a whole switching cycle, the scan file is closed, the reader
+  reopens the source with a doubling wait (1 s up to ``source.reconnect_max_s``) and a new scan
+  segment begins when samples flow again; the daemon never exits for it;
+* the disk refusing writes: :mod:`spinflip.daemon.scan_store` holds finished integrations in
+  memory within ``output.hold_mb`` and writes them when it can again;
+* SIGTERM / SIGINT: the integration in progress is kept if it holds a whole switching cycle
+  (its EXPOSURE says how long), else dropped and said so; the scan file is closed;
+* the system clock stepping: forward steps end the integration and the timestamps follow;
+  backward steps are recorded and the timestamps keep counting (never decrease), see
+  :mod:`spinflip.daemon.sample_clock`;
+* under systemd (``Type=notify``) the daemon says READY=1 once observing, STATUS= lines, and
+  WATCHDOG=1 while its main loop is alive (:mod:`spinflip.daemon.sd_notify`).
 """
 
 from __future__ import annotations
@@ -49,6 +65,8 @@ from .publisher import Publisher, PublishError
 from .lines import HI_REST_FREQ_HZ, radio_velocity_m_s
 from .noise_switch import NoiseSwitchError, make_noise_switch
 from .scan_product import scan_products
+from .scan_store import ScanStore
+from . import sd_notify
 from .sources import SourceError, make_source
 from .spectral_axis import velocity_wcs_m_s
 from .carriers import CarrierFinder
@@ -57,6 +75,7 @@ from .static_masks import named_channels
 from .tsys import TsysMeter
 
 _QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
+_WATCHDOG_STALL_S = 10.0         # a main loop silent this long is hung: no more WATCHDOG=1
 _STOP = object()
 
 
@@ -267,8 +286,9 @@ class Daemon:
         self.integ_blocks = 0           # blocks in the integration being made
         self.total_blocks = 0           # blocks observed (paused and idle ones not counted)
         self.started_mono = _time.monotonic()
-        self.counters = {"received": 0, "lost": 0, "dropped": 0, "error": None,
-                         "write_error": None}
+        self.counters = {"received": 0, "lost": 0, "dropped": 0, "error": None}
+        self.notifier = sd_notify.Notifier.from_env()
+        self.store = None
         self.row_index = 0
         self.average = RunningAverage()
         self._pending_log: list = []    # interference log records of the row being made
@@ -298,19 +318,33 @@ class Daemon:
                                              "time_utc": wire.now_utc_iso(), "station": ""})
 
     # -- the threads -----------------------------------------------------------------------
+    def _put_waiting(self, q: queue.Queue, item) -> bool:
+        """Queue ``item``, waiting for room; False if a stop came first."""
+        while not self.stop_event.is_set():
+            try:
+                q.put(item, timeout=0.2)
+                return True
+            except queue.Full:
+                continue
+        return False
+
     def _reader(self, q: queue.Queue, counters: dict) -> None:
         try:
             while not self.stop_event.is_set():
-                block = self.source.read()
+                try:
+                    block = self.source.read()
+                except SourceError as exc:
+                    if not hasattr(self.source, "reopen"):
+                        raise
+                    lost_at = _time.monotonic()
+                    if not self._put_waiting(q, ("lost", str(exc))) or not self._reconnect():
+                        break
+                    self._put_waiting(q, ("back", _time.monotonic() - lost_at))
+                    continue
                 if block is None:
                     break
                 if self.fast:
-                    while not self.stop_event.is_set():
-                        try:
-                            q.put(block, timeout=0.2)
-                            break
-                        except queue.Full:
-                            continue
+                    self._put_waiting(q, block)
                 else:
                     try:
                         q.put_nowait(block)
@@ -321,44 +355,21 @@ class Daemon:
         finally:
             q.put(_STOP)
 
-    def _writer(self, q: queue.Queue, result: RunResult) -> None:
-        """Writes rows, Tsys and interference records and notes; opens and closes scans."""
-        writer = None
-        products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
-
-        def close():
-            if writer is not None:
-                rows = writer.rows
-                path = writer.close()
-                if path:
-                    result.files.append(path)
-                    result.file_rows[str(path)] = rows
-                    self.log(f"scan saved: {path}")
-
-        while True:
-            item = q.get()
+    def _reconnect(self) -> bool:
+        """Reopen a lost source, waiting 1, 2, 4 ... s (at most ``source.reconnect_max_s``)
+        between attempts; True once it delivers again, False if a stop came first."""
+        wait_s, cap_s = 1.0, self.cfg["source"]["reconnect_max_s"]
+        attempt = 0
+        while not self.stop_event.wait(wait_s):
+            attempt += 1
             try:
-                if item is _STOP:
-                    close()
-                    break
-                if isinstance(item, tuple) and item[0] == "open":
-                    close()
-                    writer = archive.ScanWriter(self.out_dir, item[1], item[2], self.nchan,
-                                                products=products)
-                    self.scan_name = writer.scan_name
-                elif isinstance(item, tuple) and item[0] == "close":
-                    close()
-                    writer = None
-                elif writer is None:
-                    continue
-                elif isinstance(item, tuple):
-                    {"tsys": writer.append_tsys, "rfi": writer.append_rfi,
-                     "note": writer.append_note}[item[0]](item[1])
-                else:
-                    writer.append(item)
-            except OSError as exc:
-                self.counters["write_error"] = exc
-                self.log(f"error: cannot write to {writer}: {exc}")
+                self.source.reopen()
+                return True
+            except (SourceError, OSError) as exc:
+                self.log(f"info: reconnection attempt {attempt} failed ({str(exc).splitlines()[0]});"
+                         f" next in {min(2 * wait_s, cap_s):.0f} s")
+            wait_s = min(2 * wait_s, cap_s)
+        return False
 
     # -- one row ---------------------------------------------------------------------------
     def _warn_once(self, key: str, severity: str, text: str) -> None:
@@ -603,20 +614,26 @@ class Daemon:
         for p in result.recovered:
             self.log(f"recovered integrations of an interrupted scan into {p}")
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
-        rows_q: queue.Queue = queue.Queue()
+        self.store = ScanStore(self.out_dir, self.nchan, products, self.event,
+                               hold_bytes=int(self.cfg["output"]["hold_mb"] * 1e6),
+                               on_open=self._scan_opened)
+        rows_q = self.store            # the DSP loop only ever put()s into it
         self._blocks_q = blocks_q
         counters = self.counters
         reader = threading.Thread(target=self._reader, args=(blocks_q, counters), daemon=True,
                                   name="reader")
-        wthread = threading.Thread(target=self._writer, args=(rows_q, result), name="writer")
         reader.start()
-        wthread.start()
+        self.store.start()
         self._open_scan(rows_q, self.t_start)
         max_blocks = None if self.duration_s is None else max(
             1, round(self.duration_s / self.block_s))
+        self._heartbeat = _time.monotonic()
+        pinger = self._systemd_start()
         try:
             while not self.stop_event.is_set():
+                self._heartbeat = _time.monotonic()
                 self._run_commands(rows_q, result)
+                self._systemd_status()
                 try:
                     block = blocks_q.get(timeout=0.2)
                 except queue.Empty:
@@ -625,10 +642,15 @@ class Daemon:
                     if counters["error"] is None and not self.stop_event.is_set():
                         self._end_integration(rows_q, result, "the source ended")   # replay
                     break
+                if isinstance(block, tuple):          # ("lost", why) / ("back", seconds)
+                    self._source_fault(block, rows_q, result)
+                    continue
                 counters["received"] += block.n_samples
                 counters["lost"] += block.lost_before
                 result.lost_samples += block.lost_before
                 self._last_block_end = block.t0_unix_s + block.duration_s
+                if block.clock_step_s:
+                    self._clock_stepped(block, rows_q, result)
                 if self.state != "observing":
                     continue
                 s1, m = self.spectrometer.add(block)
@@ -646,26 +668,102 @@ class Daemon:
                     self._end_integration(rows_q, result, "planned end")
                     break
         finally:
+            stopped_by_signal = self.stop_event.is_set()
             self.stop_event.set()
             self.state = "stopping"
-            if self.integ_blocks:
-                self.log(f"note: the unfinished integration ({self.integ_blocks * self.block_s:.1f}"
-                         " s) was dropped; every finished one is saved")
-            if self.pending:           # no measurement ever came: keep them, fully flagged
-                self._gave_up_waiting = True
-                self._flush_pending(rows_q)
-            rows_q.put(_STOP)
-            wthread.join()
-            reader.join(timeout=5)
-            self.source.close()
-            self.switch.close()
-            self._live_stop()
+            self.notifier.stopping("stopping: writing the scan")
+            try:
+                if self.integ_blocks:
+                    self._end_integration(rows_q, result, "stop signal" if stopped_by_signal
+                                          else "stopped by an error")
+            finally:
+                if self.pending:           # no measurement ever came: keep them, fully flagged
+                    self._gave_up_waiting = True
+                    self._flush_pending(rows_q)
+                self.store.finish()
+                if pinger is not None:
+                    pinger.stop()
+                reader.join(timeout=5)
+                self.source.close()
+                self.switch.close()
+                self._live_stop()
+        result.files, result.file_rows = self.store.files, self.store.file_rows
         result.lost_samples += counters["dropped"]
-        if counters["write_error"] is not None:
-            raise OSError(f"writing {self.out_dir}: {counters['write_error']}")
+        unsaved = self.store.unsaved_rows + self.store.dropped_rows
+        if unsaved:
+            raise OSError(f"writing {self.out_dir}: {unsaved} integration(s) could not be saved "
+                          f"({self.store.error or 'memory bound output.hold_mb reached'})")
         if counters["error"] is not None:
             raise SourceError(str(counters["error"]))
         return result
+
+    # -- faults ------------------------------------------------------------------------------
+    def _source_fault(self, marker: tuple, rows_q, result: RunResult) -> None:
+        """The reader lost the source (``("lost", why)``) or got it back (``("back", s)``)."""
+        kind, what = marker
+        if kind == "lost":
+            self.event("error", f"source lost: {what}; every finished integration is saved, "
+                       "reconnecting")
+            self._state_before_loss = self.state
+            if self.state in ("observing", "paused"):
+                self._end_integration(rows_q, result, "source lost")
+                self._flush_before_switch(rows_q)
+                rows_q.put(("close",))
+                self.scan_name = None
+                self.state = "reconnecting"
+        else:
+            self.event("info", f"source back after {what:.0f} s: a new scan segment begins")
+            self._restart_stream()
+            if self.state == "reconnecting":
+                self.state = self._state_before_loss
+                self._open_scan(rows_q, Time.now())
+
+    def _clock_stepped(self, block, rows_q, result: RunResult) -> None:
+        """Record a step of the system clock; after a forward one no integration spans it."""
+        step = block.clock_step_s
+        t = Time(block.t0_unix_s, format="unix", scale="utc").isot
+        if step > 0:
+            text = (f"system clock stepped forward by {step:.1f} s at {t[:19]}: timestamps "
+                    "follow it from here; the integration in progress ends at the step")
+            self._end_integration(rows_q, result, "clock step")
+            self._restart_stream()
+        else:
+            text = (f"system clock stepped back by {-step:.1f} s near {t[:19]}: timestamps keep "
+                    f"counting, now {-step:.1f} s ahead of the system clock; check time sync")
+        self.event("warning", text)
+        if self.scan_name is not None:
+            rows_q.put(("note", {"DATE-OBS": t, "TEXT": text}))
+
+    # -- systemd ---------------------------------------------------------------------------
+    def _systemd_start(self):
+        """READY=1 (and the watchdog pinger) once observing, when run by systemd."""
+        n = self.notifier
+        self._sd_status_at = _time.monotonic()
+        if not n.enabled:
+            return None
+        n.ready(f"observing {self.pointing.object}")
+        if n.watchdog_interval_s is None:
+            return None
+        pinger = sd_notify.WatchdogPinger(
+            n, alive=lambda: _time.monotonic() - self._heartbeat < _WATCHDOG_STALL_S)
+        pinger.start()
+        return pinger
+
+    def _systemd_status(self) -> None:
+        """A STATUS= line for ``systemctl status`` every few seconds."""
+        if not self.notifier.enabled or _time.monotonic() - self._sd_status_at < 5.0:
+            return
+        self._sd_status_at = _time.monotonic()
+        tsys = self.tsys_now.tsys_k if self.tsys_now is not None else float("nan")
+        lost = self.counters["lost"] + self.counters["dropped"]
+        self.notifier.status(f"{self.state}, scan {self.scan_name or 'none'}: "
+                             f"{self.row_index} integrations, Tsys {tsys:.1f} K, "
+                             f"{lost} samples lost, writing {self.store.state}")
+
+    def _scan_opened(self, name: str) -> None:
+        """The writer opened the scan under ``name`` (with -1, -2 ... if the name was taken)."""
+        if self.scan_name is not None:
+            self.scan_name = name
 
     # -- scans -------------------------------------------------------------------------------
     def _flush_before_switch(self, rows_q: queue.Queue) -> None:
@@ -733,11 +831,12 @@ class Daemon:
             self._restart_stream()
             self.state = "observing"
         elif cmd == "stop":
-            if state not in ("observing", "paused"):
+            if state not in ("observing", "paused", "reconnecting"):
                 raise ValueError(f"stop: the daemon is {state}; nothing to stop")
-            self._end_integration(rows_q, result, "stopped")
-            self._flush_before_switch(rows_q)
-            rows_q.put(("close",))
+            if state != "reconnecting":     # a lost source's scan is closed already
+                self._end_integration(rows_q, result, "stopped")
+                self._flush_before_switch(rows_q)
+                rows_q.put(("close",))
             self.scan_name = None
             self.state = "idle"
         elif cmd in ("start", "new_scan"):
@@ -880,6 +979,9 @@ class Daemon:
             "samples_lost": int(self.counters["lost"] + self.counters["dropped"]),
             "queue_depth": int(self._blocks_q.qsize()) if hasattr(self, "_blocks_q") else 0,
             "disk_free_bytes": int(free),
+            "writing": self.store.state if self.store is not None else "writing",
+            "held_integrations": self.store.held_rows if self.store is not None else 0,
+            "dropped_integrations": self.store.dropped_rows if self.store is not None else 0,
             "uptime_s": _time.monotonic() - self.started_mono, "version": __version__,
             "scan": self.scan_name,
             "pointing": {"frame": self.pointing.frame, "lon_deg": self.pointing.lon,

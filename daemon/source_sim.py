@@ -35,6 +35,7 @@ from astropy.time import Time
 
 from . import frames
 from .block import Block
+from .sample_clock import SampleClock
 from .cal_control import CalControl
 from .galaxy import ModelGalaxy
 from .lines import C_M_S, HI_REST_FREQ_HZ
@@ -121,6 +122,8 @@ class SimSource:
         self.location = frames.site_location(site["lat"], site["lon"], site["height_m"])
         start = sim["start"]
         self.t_start = Time.now() if start == "now" else Time(start, scale="utc")
+        self._live = start == "now"
+        self.clock = None
         self.galaxy = ModelGalaxy()
         lam = C_M_S / HI_REST_FREQ_HZ
         self.beam_fwhm_deg = float(np.degrees(1.2 * lam / site["dish_diameter_m"]))
@@ -226,6 +229,10 @@ class SimSource:
     # -- the Source interface --------------------------------------------------------------
     def open(self) -> None:
         self._wall0 = _time.monotonic()
+        # live ("now", real time): stamped like a dongle's samples, from the monotonic clock
+        # anchored to the system clock, whose steps are noticed (sample_clock); a set start
+        # date is simulated time, which no clock step touches
+        self.clock = SampleClock() if (self._live and not self.fast) else None
 
     def close(self) -> None:
         pass
@@ -254,6 +261,10 @@ class SimSource:
             delay = self._wall0 + t_rel + self.block_samples / self.fs - _time.monotonic()
             if delay > 0:
                 _time.sleep(delay)
-        return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs,
-                     t0_unix_s=float(self.t_start.unix) + t_rel, phase=phase, cal_on=cal_state,
-                     lost_before=0, settle_samples=sch.settle_samples if hop else 0, index=i)
+        t0, step = float(self.t_start.unix) + t_rel, 0.0
+        if self.clock is not None:
+            step = self.clock.check()
+            t0 = self.clock.time_of(self._wall0 + t_rel)
+        return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs, t0_unix_s=t0,
+                     phase=phase, cal_on=cal_state, lost_before=0,
+                     settle_samples=sch.settle_samples if hop else 0, index=i, clock_step_s=step)

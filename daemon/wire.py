@@ -118,7 +118,8 @@ exposure_s         ``<f4``  "s"       per-channel exposure left after flagging
 Topic "status": the daemon's state
 ----------------------------------
 ==================  ==============  =========================================================
-state               string          "observing", "paused", "idle" or "stopping"
+state               string          "observing", "paused", "idle", "reconnecting" (the
+                                    source was lost; reopening it) or "stopping"
 source              string          the source of samples ("sim", "rtlsdr", "replay", ...)
 lo_hz               number          local-oscillator (tuner centre) frequency, Hz
 gain_db             number          tuner gain, dB
@@ -129,6 +130,11 @@ samples_received    integer         complex samples received since start
 samples_lost        integer         complex samples lost since start
 queue_depth         integer         blocks waiting between reader and DSP
 disk_free_bytes     integer         free space in the output folder, bytes
+writing             string          "writing", or "holding": the disk refuses writes and
+                                    finished integrations wait in memory
+held_integrations   integer         integrations waiting in memory to be written
+dropped_integrations integer        integrations dropped since start because the memory
+                                    bound (output.hold_mb) was reached while holding
 uptime_s            number          seconds since the daemon started
 version             string          spinflip version
 scan                string | null   the scan being written, null between scans
@@ -256,6 +262,7 @@ _FIELDS = {
         "state": _STR, "source": _STR, "lo_hz": _NUM, "gain_db": _NUM, "sample_rate_hz": _NUM,
         "tsys_k": _NUM_OR_NULL, "tsys_source": _STR, "samples_received": _INT,
         "samples_lost": _INT, "queue_depth": _INT, "disk_free_bytes": _INT, "uptime_s": _NUM,
+        "writing": _STR, "held_integrations": _INT, "dropped_integrations": _INT,
         "version": _STR, "scan": _STR_OR_NULL, "pointing": ("object",), "drops": ("object",),
         "rfi": ("object",),
     },
@@ -270,7 +277,8 @@ _FIELDS = {
 _CHOICES = {
     ("spectrum", "kind"): ("integration", "average"),
     ("spectrum", "unit"): ("K", "count"),
-    ("status", "state"): ("observing", "paused", "idle", "stopping"),
+    ("status", "state"): ("observing", "paused", "idle", "reconnecting", "stopping"),
+    ("status", "writing"): ("writing", "holding"),
     ("event", "severity"): ("info", "warning", "error"),
 }
 

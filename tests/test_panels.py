@@ -76,6 +76,7 @@ def status_frames(tsys_k=74.2):
         "sample_rate_hz": 2_400_000.0, "tsys_k": tsys_k, "tsys_source": "noise_source",
         "samples_received": 123_456_789, "samples_lost": 1_000, "queue_depth": 1,
         "disk_free_bytes": 9_876_543_210, "uptime_s": 61.5, "version": "0.1.0",
+        "writing": "writing", "held_integrations": 0, "dropped_integrations": 0,
         "scan": "scan-0007",
         "pointing": {"frame": "galactic", "lon_deg": 120.0, "lat_deg": 0.5, "object": "G120"},
         "drops": {"spectrum": 0}, "rfi": {"impulses": 4, "carrier_onsets": 1, "sk_cells": 17,

@@ -61,6 +61,7 @@ def status_header():
         "gain_db": 40.2, "sample_rate_hz": 2_400_000.0, "tsys_k": None,
         "tsys_source": "noise_source", "samples_received": 123_456_789, "samples_lost": 0,
         "queue_depth": 1, "disk_free_bytes": 9_876_543_210, "uptime_s": 61.5,
+        "writing": "writing", "held_integrations": 0, "dropped_integrations": 0,
         "version": "0.1.0", "scan": None,
         "pointing": {"frame": "galactic", "lon_deg": 120.0, "lat_deg": 0.5, "object": "G120"},
         "drops": {"spectrum": 0, "status": 2}, "rfi": {"impulses": 4, "carrier_onsets": 1,
@@ -357,7 +358,7 @@ def test_malformed_messages_are_refused_with_one_line(what, damage, pattern):
 
 
 @pytest.mark.parametrize("topic,change,pattern", [
-    ("status", _set("state", "sleeping"), r"allowed are observing, paused, idle, stopping"),
+    ("status", _set("state", "sleeping"), r"allowed are observing, paused, idle, reconnecting, stopping"),
     ("status", lambda h: h["pointing"].pop("lat_deg"), r"header.pointing lacks.*lat_deg"),
     ("status", lambda h: h["pointing"].__setitem__("frame", "ecliptic"), r"pointing.frame"),
     ("status", lambda h: h["rfi"].__setitem__("sk_cells", 1.5), r"header.rfi.sk_cells"),

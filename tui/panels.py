@@ -804,6 +804,8 @@ def receiver_panel(state: ViewState, width: int) -> Text:
     items.append(_kv("lost", lost_text))
     disk = st.get("disk_free_bytes")
     items.append(_kv("disk", _num(None if disk is None else disk / 1e9, ".1f", "GB free")))
+    if st.get("writing") == "holding":
+        items.append(_kv("WRITING HELD", f"{st.get('held_integrations', 0)} in memory"))
     if width >= 44 and st:
         items.append(_kv("source", str(st.get("source", "?"))))
         items.append(_kv("queue", str(st.get("queue_depth", 0))))
