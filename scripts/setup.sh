@@ -1,6 +1,7 @@
 #!/usr/bin/env bash
 # Set up spinflip in a virtual environment (.venv) on Debian / Raspberry Pi OS, Python >= 3.11.
-# Idempotent: a second run only checks. Installs python3-venv with apt-get when it is missing.
+# Idempotent: a second run only checks. Installs python3-venv, tmux and gcc with apt-get when
+# missing (tmux and gcc only for the tests).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PY=${PYTHON:-python3}
@@ -24,6 +25,12 @@ if ! command -v tmux >/dev/null && command -v apt-get >/dev/null; then
   SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
   { $SUDO apt-get update -qq && $SUDO apt-get install -y -qq tmux; } \
     || echo "setup: could not install tmux: tests/test_tui_live.py will fail without it" >&2
+fi
+if ! command -v cc >/dev/null && command -v apt-get >/dev/null; then
+  echo "setup: installing gcc with apt-get (the tests build an emulated librtlsdr with it)" >&2
+  SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
+  { $SUDO apt-get update -qq && $SUDO apt-get install -y -qq gcc libc6-dev; } \
+    || echo "setup: could not install gcc: tests/test_rtlsdr_emulated.py will fail without it" >&2
 fi
 stamp=.venv/.spinflip-installed
 if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then
