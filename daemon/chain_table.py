@@ -30,8 +30,8 @@ def _db(value: float | None, decimals: int = 1) -> str:
 
 def stage_table(budget: Budget) -> Table:
     """The stage table of a budget (a rich Table)."""
-    table = Table(title=f"Receiver chain: {budget.profile.telescope_name}", show_footer=True,
-                  title_justify="left")
+    table = Table(title=Text(f"Receiver chain: {budget.profile.telescope_name}"),
+                  show_footer=True, title_justify="left")
     table.add_column("stage", footer="cascade (at the feed input)")
     table.add_column("kind")
     table.add_column("gain dB", justify="right")
@@ -41,7 +41,8 @@ def stage_table(budget: Budget) -> Table:
     table.add_column("cumulative gain dB", justify="right")
     for row in budget.rows:
         s = row.stage
-        table.add_row(s.name, s.kind, _db(s.gain_db, 2), f"{s.noise_figure_db:.2f}",
+        # Text: a stage name from the profile is never taken as rich markup
+        table.add_row(Text(s.name), s.kind, _db(s.gain_db, 2), f"{s.noise_figure_db:.2f}",
                       f"{s.noise_temp_k:.1f}", f"{row.contribution_k:.2f}",
                       _db(row.cumulative_gain_db))
     return table

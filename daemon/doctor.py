@@ -54,6 +54,7 @@ from pathlib import Path
 from typing import Callable
 
 from . import config as config_mod
+from .source_rtlsdr import DVB_MODULES  # the kernel's DVB-T modules that claim the dongle
 
 #: USB vendor:product ids of RTL2832U dongles (from memory; cross-checked against the known
 #: devices table in librtlsdr.c, which lists more). The first two are the generic dongles.
@@ -75,10 +76,6 @@ RTL2832U_USB_IDS: dict[tuple[str, str], str] = {
     ("1f4d", "b803"): "GTek T803",
     ("1f4d", "c803"): "Lifeview LV5TDeluxe",
 }
-
-#: Kernel modules of the DVB-T television driver that claim the dongle; the one that holds the
-#: USB interface first (common practice: the blacklist in hardware/ names the same four).
-DVB_MODULES = ("dvb_usb_rtl28xxu", "rtl2832_sdr", "rtl2832", "rtl2830")
 
 #: Clock states of ``adjtimex(2)``: the return value when the clock is not synchronised.
 TIME_ERROR = 5
@@ -731,7 +728,8 @@ def render(checks: list[Check]):
     table.add_column("found", overflow="fold")
     table.add_column("fix", overflow="fold")
     for c in checks:
-        table.add_row(c.name, Text(c.status, style=_STYLE[c.status]), c.detail, c.fix)
+        table.add_row(Text(c.name), Text(c.status, style=_STYLE[c.status]), Text(c.detail),
+                      Text(c.fix))    # Text: no rich markup ("[publish]" is a section name)
     return table
 
 

@@ -73,7 +73,8 @@ _RING_S = 4.0                     # the ring holds at least this much signal, s
 _STALL_S = 3.0                    # no transfer for this long: the dongle is taken as gone, s
 _JITTER_S = 0.25                  # transfers may come this late before samples count as lost, s
 _RETUNE_TRIES = 2                 # a failed retune is tried once more
-_DVB_MODULES = ("dvb_usb_rtl28xxu", "rtl2832_sdr", "rtl2832", "rtl2830")
+#: Kernel modules of the DVB-T television driver that claim the RTL2832U (from memory).
+DVB_MODULES = ("dvb_usb_rtl28xxu", "rtl2832_sdr", "rtl2832", "rtl2830")
 
 #: libusb error names of the codes librtlsdr passes on (libusb.h, from memory).
 _LIBUSB_ERRORS = {-1: "LIBUSB_ERROR_IO", -4: "LIBUSB_ERROR_NO_DEVICE",
@@ -104,7 +105,7 @@ def transfer_bytes_for(sample_rate: float) -> int:
 
 
 def _dvb_driver_loaded(sys_module: Path = Path("/sys/module")) -> str | None:
-    for name in _DVB_MODULES:
+    for name in DVB_MODULES:
         if (sys_module / name).exists():
             return name
     return None

@@ -27,7 +27,7 @@ lon = 0.0
 lat = 80.0
 [spectrometer]
 channels = 256
-integration_s = 1.0
+integration_s = 0.5
 [calibration]
 tsys_from = "fixed"
 [publish]
@@ -79,11 +79,11 @@ def main(work: Path) -> None:
             pass
     t_full = time.monotonic()
     wait_for(said("writing paused"))
-    time.sleep(3.0)                          # integrations pile up in memory meanwhile
+    time.sleep(2.0)                          # integrations pile up in memory meanwhile
     ballast.unlink()
     t_freed = time.monotonic()
     wait_for(said("resumed"))
-    time.sleep(1.5)
+    time.sleep(1.0)
     proc.send_signal(signal.SIGTERM)
     proc.wait(timeout=30)
     log.close()

@@ -398,8 +398,10 @@ def test_port_taken_names_the_holder(tmp_path, taken_port):
     assert f"pid {os.getpid()}" in data.detail                 # this test process holds it
     assert "systemctl status spinflip" in data.fix and "[publish] data" in data.fix
     assert checks["port control"].status == "ok"
-    console, _ = text_console()
+    console, buf = text_console()
     assert doctor_main(cfg, console=console, roots=station(tmp_path)) == 1
+    # printed as written: "[publish]" is a section name, not rich markup to be swallowed
+    assert "[publish]" in buf.getvalue()
 
 
 def test_port_held_by_our_daemon_only_warns(tmp_path, taken_port):

@@ -285,7 +285,7 @@ def test_daemon_on_a_full_disk_holds_then_writes_every_integration(tmp_path):
     assert [f for f in res["files"] if not f.endswith(".fits")] == [], res["files"]
     t = Time(res["dates"], format="isot", scale="utc").unix
     step = np.diff(t)
-    # integrations of 1 s (rounded up to whole switching cycles): none missing while full
+    # integrations of 0.5 s (rounded up to whole switching cycles): none missing while full
     assert len(t) >= 5 and np.all(step > 0)
     assert t[-1] - t[0] > res["full_s"]             # the rows span the time the disk was full
     assert step.max() < 1.6 * np.median(step), step

@@ -216,10 +216,10 @@ def test_still_publishing_and_observing_after_the_fuzzing(daemon):
 
 
 def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch):
-    # in this process, simulated time as fast as the CPU allows: 30 s of sky in a few seconds
+    # in this process, simulated time as fast as the CPU allows: 25 s of sky in a few seconds
     from spinflip.daemon import config, pipeline, publisher
     monkeypatch.setattr(publisher, "_SNDHWM", 4)      # small queues, so that a stall shows
-    monkeypatch.setattr(publisher, "_SNDBUF", 8192)   # within a 30 s stall
+    monkeypatch.setattr(publisher, "_SNDBUF", 8192)   # within a 15 s stall
     port = free_port()
     cfg = config.load(None)
     config.merge(cfg, {"sim": {"start": "2026-03-01T04:00:00"},
@@ -227,7 +227,7 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
                        "spectrometer": {"integration_s": 0.5},
                        "output": {"dir": str(tmp_path / "o")},
                        "publish": {"data": f"tcp://127.0.0.1:{port}", "control": ""}})
-    d = pipeline.Daemon(cfg, fast=True, duration_s=45.0, log=lambda m: None)
+    d = pipeline.Daemon(cfg, fast=True, duration_s=25.0, log=lambda m: None)
     ctx = zmq.Context.instance()
     ep = f"tcp://127.0.0.1:{port}"
     reader, stalled = ctx.socket(zmq.SUB), ctx.socket(zmq.SUB)
@@ -244,8 +244,8 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
                 seqs.append(json.loads(reader.recv_multipart()[1])["seq"])
 
     def read_after_a_stall():
-        # reads nothing for the first 30 s of simulated time, then everything
-        while not done.is_set() and d.total_blocks * d.block_s < 30.0:
+        # reads nothing for the first 15 s of simulated time, then everything
+        while not done.is_set() and d.total_blocks * d.block_s < 15.0:
             time.sleep(0.05)
         while not done.is_set():
             if stalled.poll(100):

@@ -31,7 +31,7 @@ lon = 0.0
 lat = 80.0
 [spectrometer]
 channels = 256
-integration_s = 1.0
+integration_s = 0.5
 [calibration]
 tsys_from = "fixed"
 [publish]
