@@ -509,6 +509,8 @@ class RtlSdrSource:
             return
         try:
             if getattr(sdr, "device_opened", True):   # pyrtlsdr closes it itself on some errors
+                if self.cfg["source"]["bias_tee"] and hasattr(sdr, "set_bias_tee"):
+                    sdr.set_bias_tee(False)   # the LNA's supply off while nobody observes
                 sdr.close()
         except Exception:
             pass

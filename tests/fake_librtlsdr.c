@@ -580,6 +580,8 @@ API int rtlsdr_set_and_get_tuner_bandwidth(rtlsdr_dev_t *dev, uint32_t bw, uint3
     return 0;
 }
 
+static int g_last_bias = -1;   /* the last state any handle set the bias tee to */
+
 API int rtlsdr_set_bias_tee(rtlsdr_dev_t *dev, int on) {
     int r = dev_enter(dev);
     if (r) return r;
@@ -587,6 +589,7 @@ API int rtlsdr_set_bias_tee(rtlsdr_dev_t *dev, int on) {
     dev->gpio_dir |= 1;
     dev->gpio_val = on ? (dev->gpio_val | 1) : (dev->gpio_val & ~1);
     dev->bias_tee = on != 0;
+    g_last_bias = dev->bias_tee;
     return 0;
 }
 
@@ -723,8 +726,10 @@ API int rtlsdr_cancel_async(rtlsdr_dev_t *dev) {
 /* ---------------------------------------------------------------- test hooks */
 /* A counter by name (-1 if unknown): opens, open_fails, closes, open_handles, transfers,
  * short_transfers, bytes, retunes, retune_failures, stale_calls, close_while_streaming,
- * control_reads, async_running, cancels, bias_tee (of the newest live handle; -1 if none). */
+ * control_reads, async_running, cancels, bias_tee (of the newest live handle; -1 if none),
+ * bias_tee_last (the last state any handle set the bias tee to; -1 if never set). */
 API long long fakertl_stat(const char *name) {
+    if (name && !strcmp(name, "bias_tee_last")) return g_last_bias;  /* any handle, even closed */
     long long v = -1;
     if (!name) return -1;
     pthread_mutex_lock(&g_lock);

@@ -90,6 +90,9 @@ def test_blocks_follow_the_switching_schedule_through_pyrtlsdr(fakertl, sources)
                                        if b.lo_hz != blocks[k - 1].lo_hz]
     assert fakertl.tunes() == [80_000_000] + hops
     assert fakertl.stat("bias_tee") == 1
+    src.close()          # the bias tee is switched off with the device (hardware/SAFETY.md)
+    assert fakertl.stat("bias_tee_last") == 0
+    src.open()
     # each block's samples were taken at its own LO: the tone sits at (sky - LO) at baseband
     # (the mixer's definition: baseband = RF - LO, common practice), within two bins; a block
     # that still held samples of the previous LO (queued before the retune) would show it
