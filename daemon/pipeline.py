@@ -287,7 +287,7 @@ class Daemon:
         self.total_blocks = 0           # blocks observed (paused and idle ones not counted)
         self.started_mono = _time.monotonic()
         self.counters = {"received": 0, "lost": 0, "dropped": 0, "error": None}
-        self.notifier = sd_notify.Notifier.from_env()
+        self.notifier = sd_notify.Notifier.from_env(log=self.log)
         self.store = None
         self.row_index = 0
         self.average = RunningAverage()
@@ -687,6 +687,7 @@ class Daemon:
                 self.store.finish()
                 if pinger is not None:
                     pinger.stop()
+                self.notifier.close()
                 reader.join(timeout=5)
                 self.source.close()
                 self.switch.close()
