@@ -470,7 +470,9 @@ def beam_directions(glon_deg, glat_deg, beam_fwhm_deg):
     return out
 
 
-@functools.lru_cache(maxsize=2048)
+# 24 kB per sightline: 256 of them is 6 MB. A fixed pointing's beam needs a few dozen; a drift
+# scan never comes back to a position, so a bigger cache would only grow the daemon's memory.
+@functools.lru_cache(maxsize=256)
 def _sightline(galaxy: ModelGalaxy, glon_deg: float, glat_deg: float) -> Sightline:
     """Build (and cache) the path elements toward (l, b); see :meth:`ModelGalaxy.sightline`."""
     lon, lat = math.radians(glon_deg), math.radians(glat_deg)
