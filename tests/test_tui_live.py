@@ -190,7 +190,8 @@ def test_demo_shows_the_observation_and_quits_on_q(tmp_path, width, height):
 def test_demo_says_observation_finished_and_ends_by_itself(tmp_path):
     out = tmp_path / "out"
     # NO_COLOR (https://no-color.org): the ASCII fallback, no braille
-    argv = ["env", "NO_COLOR=1", *app_argv("demo", "--fast", "--seconds", 8, "--out", out)]
+    # 16 s of simulated sky: long enough that the UI is connected before the daemon ends
+    argv = ["env", "NO_COLOR=1", *app_argv("demo", "--fast", "--seconds", 16, "--out", out)]
     with Pane(tmp_path, 100, 30, argv) as pane:
         screen = pane.wait_for(lambda s: "observation finished" in s, 30,
                                "'observation finished'")
