@@ -627,12 +627,12 @@ class Daemon:
         self._open_scan(rows_q, self.t_start)
         max_blocks = None if self.duration_s is None else max(
             1, round(self.duration_s / self.block_s))
-        self._heartbeat = _time.monotonic()
+        self._heartbeat = sd_notify.Heartbeat(_WATCHDOG_STALL_S)   # the main loop's pulse
         self._outage_pending = False
         pinger = self._systemd_start()
         try:
             while not self.stop_event.is_set():
-                self._heartbeat = _time.monotonic()
+                self._heartbeat.beat()
                 self._run_commands(rows_q, result)
                 self._systemd_status()
                 try:
@@ -750,8 +750,7 @@ class Daemon:
         n.ready(f"observing {self.pointing.object}")
         if n.watchdog_interval_s is None:
             return None
-        pinger = sd_notify.WatchdogPinger(
-            n, alive=lambda: _time.monotonic() - self._heartbeat < _WATCHDOG_STALL_S)
+        pinger = sd_notify.WatchdogPinger(n, alive=self._heartbeat.alive, log=self.log)
         pinger.start()
         return pinger
 
