@@ -457,3 +457,12 @@ def test_real_machine_runs(tmp_path):
     if not dongles:                                # this machine: no dongle (a container)
         assert checks["dongle"].status == "fail" and "lsusb" in checks["dongle"].fix
         assert code == 1 and "dongle" in buf.getvalue().splitlines()[-1]
+
+
+def test_doctor_command_fails_on_a_bad_config_and_names_the_key(tmp_path):
+    from cli_runner import run_cli
+    bad = tmp_path / "bad.toml"
+    bad.write_text("[spectrometer]\nchannels = 1000\n")
+    r = run_cli(["doctor", "--config", bad, "--out", tmp_path / "o"])
+    assert r.returncode == 1, r.stdout + r.stderr
+    assert "spectrometer.channels" in r.stdout and "fail" in r.stdout

@@ -346,3 +346,14 @@ def test_defaults_are_applied_and_stated():
     assert p.stages[-1].noise_figure_db == rc.DEFAULT_DONGLE_NF_DB == 6.0
     assert p.sample_rate_hz == 2.4e6 and p.channels == 1024 and p.integration_s == 10.0
     assert p.stages[0].noise_temp_k == pytest.approx(290.0 * (10 ** 0.01 - 1))  # 290 K default
+
+
+def test_chain_command_prints_the_cascade_and_refuses_a_bad_profile(tmp_path):
+    from cli_runner import run_cli
+    r = run_cli(["chain", rc.SHIPPED_PROFILES_DIR / "hrfs_3m_dish.toml"])
+    assert r.returncode == 0 and "cascade temperature" in r.stdout and "44.4 K" in r.stdout
+    bad = tmp_path / "bad.toml"
+    text = (rc.SHIPPED_PROFILES_DIR / "hrfs_3m_dish.toml").read_text()
+    bad.write_text(text.replace("dish_diameter_m = 3.0", "dish_diameter_m = -3.0"))
+    r = run_cli(["chain", bad])
+    assert r.returncode == 2 and r.stderr.count("\n") == 1 and "dish_diameter_m" in r.stderr
