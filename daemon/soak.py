@@ -6,7 +6,9 @@ What a station left alone for days needs, measured on this machine:
   the reader could not queue, plus any a source reports lost);
 * **messages missed** by each of two subscribers: gaps in the per-topic ``seq`` numbers;
 * **RSS growth** (target at most 5 %): the daemon's resident memory at the end against the
-  same after a warm-up (the first fifth of the run, at least 10 s), from ``/proc/PID/status``;
+  same after a warm-up (the first fifth of the run, at least 10 s), from ``/proc/PID/status``,
+  read every second; each is the median over a window of a tenth of the run (at least 5 s),
+  since numpy's allocations make the RSS swing by several MB from one second to the next;
 * **CPU share**: CPU seconds the daemon used (``/proc/PID/stat`` utime + stime) per second of
   wall-clock time; 1.0 is one core busy. The simulator makes its samples itself, which a
   dongle does for free, so this is an upper bound of what a station needs.
@@ -26,6 +28,7 @@ from __future__ import annotations
 import json
 import os
 import socket
+import statistics
 import subprocess
 import sys
 import tempfile
@@ -132,7 +135,9 @@ def run_soak(seconds: float = 600.0, integration_s: float = 5.0, log=None) -> di
         warmup_s = max(10.0, 0.2 * seconds)
         t0 = time.monotonic()
         cpu0 = None
-        rss_warm = rss_end = rss_peak = 0
+        rss_peak = 0
+        window_s = max(5.0, 0.1 * seconds)
+        samples: list = []               # (seconds since start, RSS bytes) after the warm-up
         try:
             while proc.poll() is None:
                 time.sleep(1.0)
@@ -143,9 +148,10 @@ def run_soak(seconds: float = 600.0, integration_s: float = 5.0, log=None) -> di
                 except OSError:
                     break
                 if cpu0 is None and el >= warmup_s:
-                    cpu0, t_cpu0, rss_warm = cpu, time.monotonic(), rss
+                    cpu0, t_cpu0 = cpu, time.monotonic()
                 if cpu0 is not None:
-                    rss_end, cpu_end, t_cpu_end = rss, cpu, time.monotonic()
+                    cpu_end, t_cpu_end = cpu, time.monotonic()
+                    samples.append((el, rss))
                     rss_peak = max(rss_peak, rss)
                 if int(el) % 60 == 0 and el > 1:
                     log(f"soak: {el:.0f} of {seconds:.0f} s, RSS {rss / 1e6:.1f} MB")
@@ -165,6 +171,11 @@ def run_soak(seconds: float = 600.0, integration_s: float = 5.0, log=None) -> di
         announced = max(len(s.integrations) for s in subs)
     cpu_share = ((cpu_end - cpu0) / (t_cpu_end - t_cpu0)
                  if cpu0 is not None and t_cpu_end > t_cpu0 else float("nan"))
+    rss_warm = rss_end = 0.0
+    if samples:
+        t_first, t_last = samples[0][0], samples[-1][0]
+        rss_warm = statistics.median(r for t, r in samples if t <= t_first + window_s)
+        rss_end = statistics.median(r for t, r in samples if t >= t_last - window_s)
     growth = (rss_end - rss_warm) / rss_warm if rss_warm else float("nan")
     return {
         "seconds": seconds, "exit_code": proc.returncode,
@@ -204,7 +215,7 @@ def format_soak(r: dict) -> str:
         f"  samples lost       {r['samples_lost']} of {r['samples_received']} received (target 0)",
         f"  messages missed    {r['messages_missed'][0]} and {r['messages_missed'][1]} "
         f"(of {sum(r['messages'][0].values())} and {sum(r['messages'][1].values())})",
-        f"  RSS                {r['rss_after_warmup_mb']:.1f} MB after warm-up -> "
+        f"  RSS (medians)      {r['rss_after_warmup_mb']:.1f} MB after warm-up -> "
         f"{r['rss_end_mb']:.1f} MB at the end: {100 * r['rss_growth']:+.1f} % (target <= 5 %)",
         f"  CPU share          {r['cpu_share_of_one_core']:.2f} of one core",
         f"  integrations       {r['integrations_published']} published, "
