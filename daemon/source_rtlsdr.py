@@ -507,10 +507,17 @@ class RtlSdrSource:
         sdr, self.sdr = self.sdr, None
         if sdr is None:
             return
+        if not getattr(sdr, "device_opened", True):  # pyrtlsdr closes it itself on some errors
+            return
+        if self.cfg["source"]["bias_tee"]:
+            try:                              # the LNA's supply off while nobody observes
+                if self._lib is not None:
+                    self._lib.rtlsdr_set_bias_tee(sdr.dev_p, 0)
+                elif hasattr(sdr, "set_bias_tee"):
+                    sdr.set_bias_tee(False)
+            except Exception:
+                pass                          # a device gone cannot be switched; close it all the same
         try:
-            if getattr(sdr, "device_opened", True):   # pyrtlsdr closes it itself on some errors
-                if self.cfg["source"]["bias_tee"] and hasattr(sdr, "set_bias_tee"):
-                    sdr.set_bias_tee(False)   # the LNA's supply off while nobody observes
-                sdr.close()
+            sdr.close()
         except Exception:
             pass
