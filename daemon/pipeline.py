@@ -628,7 +628,6 @@ class Daemon:
         max_blocks = None if self.duration_s is None else max(
             1, round(self.duration_s / self.block_s))
         self._heartbeat = sd_notify.Heartbeat(_WATCHDOG_STALL_S)   # the main loop's pulse
-        self._outage_pending = False
         pinger = self._systemd_start()
         try:
             while not self.stop_event.is_set():
@@ -649,9 +648,6 @@ class Daemon:
                 counters["received"] += block.n_samples
                 counters["lost"] += block.lost_before
                 result.lost_samples += block.lost_before
-                if self._outage_pending:     # the outage is counted, but is no gap in a row
-                    self._outage_pending = False
-                    block.lost_before = 0
                 self._last_block_end = block.t0_unix_s + block.duration_s
                 if block.clock_step_s:
                     self._clock_stepped(block, rows_q, result)
@@ -718,7 +714,6 @@ class Daemon:
                 self.state = "reconnecting"
         else:
             self.event("info", f"source back after {what:.0f} s: a new scan segment begins")
-            self._outage_pending = True
             self._restart_stream()
             if self.state == "reconnecting":
                 self.state = self._state_before_loss

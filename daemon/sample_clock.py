@@ -74,8 +74,3 @@ class SampleClock:
         if offset > self._offset_s:              # ahead of the data time: follow it
             self._offset_s = offset
         return step
-
-    @property
-    def behind_s(self) -> float:
-        """How far the system clock is behind the data time (s; 0 unless it stepped back)."""
-        return max(0.0, self._offset_s - self._seen_offset_s)

@@ -27,7 +27,6 @@ from __future__ import annotations
 
 import json
 import os
-import socket
 import statistics
 import subprocess
 import sys
@@ -35,6 +34,8 @@ import tempfile
 import threading
 import time
 from pathlib import Path
+
+from spinflip.tui.app import free_loopback_port
 
 _CONFIG = """
 [sim]
@@ -51,12 +52,6 @@ control = "tcp://127.0.0.1:{control}"
 """
 
 RSS_GROWTH_LIMIT = 0.05
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def rss_bytes(pid: int) -> int:
@@ -120,7 +115,7 @@ class _Subscriber(threading.Thread):
 def run_soak(seconds: float = 600.0, integration_s: float = 5.0, log=None) -> dict:
     """Run the daemon for ``seconds`` and measure it; see the module docstring."""
     log = log or (lambda msg: print(msg, file=sys.stderr, flush=True))
-    ports = {"data": _free_port(), "control": _free_port()}
+    ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     with tempfile.TemporaryDirectory(prefix="spinflip-soak-") as tmp:
         cfg = Path(tmp) / "soak.toml"
         cfg.write_text(_CONFIG.format(integration_s=integration_s, **ports))

@@ -27,8 +27,9 @@ Lost samples
 The dongle does not report lost samples, so they are estimated two ways and the larger is
 taken: ring overruns (the consumer fell behind), and samples received against monotonic time
 since the first transfer began, times the sample rate (USB dropped transfers), less the
-transfer being filled and ``_JITTER_S`` of delivery jitter. After a :meth:`reopen`, the first block also carries the time
-between the end of the last block before the fault and its own start, times ``fs``.
+transfer being filled and ``_JITTER_S`` of delivery jitter. The time a dongle was gone is not
+counted here: a :meth:`reopen` starts a new stream (the daemon reports the outage as events and
+begins a new scan segment).
 
 Retuning
 --------
@@ -53,7 +54,6 @@ of 512; ``rtlsdr_close`` waits for asynchronous reads to end (from memory).
 
 from __future__ import annotations
 
-import ctypes
 import math
 import threading
 from pathlib import Path
@@ -266,7 +266,7 @@ class RtlSdrSource:
         """Close whatever is left of the device and open it again (after a SourceError).
 
         Blocks go on with the next block of the switching schedule; the first one after a
-        reopen has its leading ``settle_samples`` blanked and carries the gap as lost samples.
+        reopen has its leading ``settle_samples`` blanked; the outage is not counted as lost samples.
 
         Raises
         ------
@@ -463,8 +463,6 @@ class RtlSdrSource:
         new_lost, self._lost_reported = max(0, lost - self._lost_reported), max(lost, self._lost_reported)
         fresh = self._after_reopen
         if self._last_end_unix_s is not None:
-            if fresh:   # the time between the last block before the fault and this one
-                new_lost += max(0, int(round((t0 - self._last_end_unix_s) * self.fs)))
             t0 = max(t0, self._last_end_unix_s)        # never before the previous block's end
         self._after_reopen = False
         self._last_end_unix_s = t0 + self.block_samples / self.fs

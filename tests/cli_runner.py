@@ -34,3 +34,30 @@ def model_line(glon_deg, glat_deg, v_km_s):
 def true_tsys_k(glon_deg, glat_deg, receiver_k=55.0, spillover_k=12.0):
     """The simulator's true Tsys: continuum + spillover + receiver (noise source off)."""
     return ModelGalaxy().continuum_temperature(glon_deg, glat_deg) + spillover_k + receiver_k
+
+
+_LIVE_SIM_SOURCE = "sample_rate = 1.2e6\nblock_samples = 131072"
+
+
+def live_config(integration_s, source=_LIVE_SIM_SOURCE, channels=1024, data=""):
+    """A real-time configuration looking near the zenith (always up), with a fixed Tsys and
+    no control socket: the fault tests' daemon. ``source`` is the body of ``[source]`` (default:
+    the live simulator at a low rate), ``data`` the live-data endpoint ('' for none)."""
+    return f"""
+[source]
+{source}
+[sim]
+start = "now"
+[pointing]
+frame = "azel"
+lon = 0.0
+lat = 80.0
+[spectrometer]
+channels = {channels}
+integration_s = {integration_s}
+[calibration]
+tsys_from = "fixed"
+[publish]
+data = "{data}"
+control = ""
+"""

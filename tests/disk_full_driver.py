@@ -6,7 +6,6 @@ log goes to WORKDIR (not on the tmpfs).
 """
 
 import json
-import os
 import signal
 import subprocess
 import sys
@@ -14,26 +13,7 @@ import time
 from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-
-CONFIG = """
-[source]
-sample_rate = 1.2e6
-block_samples = 131072
-[sim]
-start = "now"
-[pointing]
-frame = "azel"
-lon = 0.0
-lat = 80.0
-[spectrometer]
-channels = 256
-integration_s = 0.5
-[calibration]
-tsys_from = "fixed"
-[publish]
-data = ""
-control = ""
-"""
+from cli_runner import live_config  # noqa: E402  (tests/ is on the path now)
 
 
 def wait_for(cond, timeout_s=60.0):
@@ -51,7 +31,7 @@ def main(work: Path) -> None:
     subprocess.run(["mount", "-t", "tmpfs", "-o", "size=2m", "spinflip-test", str(out)],
                    check=True)
     cfg = work / "c.toml"
-    cfg.write_text(CONFIG)
+    cfg.write_text(live_config(0.5, channels=256))
     log_path = work / "daemon.log"
     log = open(log_path, "w")
     proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",

@@ -22,32 +22,13 @@ import pytest
 from astropy.io import fits
 from astropy.time import Time
 
+from cli_runner import live_config
 from spinflip.daemon import archive, config
 from spinflip.daemon.pipeline import Daemon
 from spinflip.daemon.sample_clock import SampleClock
 from spinflip.daemon.scan_store import ScanStore
 
 REPO = Path(__file__).resolve().parents[1]
-
-# Real time, live ("now"): the telescope looks at the zenith, which is always up.
-LIVE_CONFIG = """
-[source]
-sample_rate = 1.2e6
-block_samples = 131072
-[sim]
-start = "now"
-[pointing]
-frame = "azel"
-lon = 0.0
-lat = 80.0
-[spectrometer]
-integration_s = {integ}
-[calibration]
-tsys_from = "fixed"
-[publish]
-data = ""
-control = ""
-"""
 
 
 def _unit_stop_timeout_s() -> float:
@@ -70,7 +51,7 @@ def test_notify_ready_watchdog_and_sigterm_keeps_the_integration_in_progress(tmp
     sock.bind(sock_path)
     sock.settimeout(0.5)
     cfg = tmp_path / "c.toml"
-    cfg.write_text(LIVE_CONFIG.format(integ=2.0))
+    cfg.write_text(live_config(2.0))
     out = tmp_path / "out"
     env = dict(os.environ, NOTIFY_SOCKET=sock_path, WATCHDOG_USEC="400000")
     env.pop("WATCHDOG_PID", None)

@@ -11,7 +11,6 @@
 
 import json
 import signal
-import socket
 import subprocess
 import sys
 import threading
@@ -24,14 +23,9 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from cli_runner import run_cli, write_config
+from spinflip.tui.app import free_loopback_port
 
 DTYPES = {"<f4": "<f4", "<f8": "<f8", "<i8": "<i8", "|u1": "u1"}
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def schema_decode(frames):
@@ -67,7 +61,7 @@ control = "tcp://127.0.0.1:{control}"
 @pytest.fixture(scope="module")
 def daemon(tmp_path_factory):
     d = tmp_path_factory.mktemp("live")
-    ports = {"data": free_port(), "control": free_port()}
+    ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     cfg = write_config(d / "c.toml", CONFIG.format(**ports))
     proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
                              str(cfg), "--duration", "120", "--out", str(d / "out")],
@@ -220,7 +214,7 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
     from spinflip.daemon import config, pipeline, publisher
     monkeypatch.setattr(publisher, "_SNDHWM", 4)      # small queues, so that a stall shows
     monkeypatch.setattr(publisher, "_SNDBUF", 8192)   # within a 15 s stall
-    port = free_port()
+    port = free_loopback_port()
     cfg = config.load(None)
     config.merge(cfg, {"sim": {"start": "2026-03-01T04:00:00"},
                        "pointing": {"frame": "galactic", "lon": 30.0, "lat": 0.0},
@@ -275,7 +269,7 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
 
 
 def test_binding_beyond_loopback_needs_keys_or_the_opt_in(tmp_path):
-    port = free_port()
+    port = free_loopback_port()
     cfg = write_config(tmp_path / "c.toml", f'[publish]\ndata = "tcp://0.0.0.0:{port}"\n')
     r = run_cli(["run", "--config", cfg, "--fast", "--duration", 2, "--out", tmp_path / "o"])
     assert r.returncode == 2
@@ -299,7 +293,7 @@ def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
     (keys / "clients" / "laptop.key").write_bytes((keys / "laptop" / "client.key").read_bytes())
     for who in ("laptop", "stranger"):
         (keys / who / "server.key").write_bytes((keys / "server.key").read_bytes())
-    ports = {"data": free_port(), "control": free_port()}
+    ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     cfg = write_config(tmp_path / "c.toml", CONFIG.format(**ports) + f'keys = "{keys}"\n')
     proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
                              str(cfg), "--duration", "60", "--out", str(tmp_path / "out")],
@@ -350,7 +344,7 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
     from spinflip.daemon.collect import read_spectra
     procs, stations = [], []
     for name, lon in (("north", 30.0), ("south", 90.0)):
-        ports = {"data": free_port(), "control": free_port()}
+        ports = {"data": free_loopback_port(), "control": free_loopback_port()}
         cfg = write_config(tmp_path / f"{name}.toml", CONFIG.format(**ports).replace(
             "lon = 30.0", f"lon = {lon}"))
         procs.append(subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run",
@@ -358,7 +352,7 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
                                        str(tmp_path / name)], stdout=subprocess.PIPE,
                                       stderr=subprocess.PIPE, text=True))
         stations.append(f"{name}=tcp://127.0.0.1:{ports['data']}")
-    relay = f"tcp://127.0.0.1:{free_port()}"
+    relay = f"tcp://127.0.0.1:{free_loopback_port()}"
     try:
         coll = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "collect",
                                  *stations, "--relay", relay, "--archive",

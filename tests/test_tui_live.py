@@ -29,7 +29,6 @@ import re
 import shlex
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import termios
@@ -43,7 +42,7 @@ from rich.console import Console
 
 from cli_runner import write_config
 from spinflip.daemon import wire
-from spinflip.tui.app import Keyboard, WatchSession
+from spinflip.tui.app import Keyboard, WatchSession, free_loopback_port
 
 #: How often a pane is read while waiting for something to appear, s.
 POLL_S = 0.2
@@ -54,12 +53,6 @@ def require_tmux() -> str:
     assert path is not None, ("tmux is not installed, and these tests drive the UI in tmux "
                               "panes: run bash scripts/setup.sh or apt-get install tmux")
     return path
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def app_argv(*args) -> list[str]:
@@ -222,7 +215,7 @@ def start_daemon(cfg, out) -> subprocess.Popen:
 
 
 def test_watch_survives_the_daemon_killed_and_restarted(tmp_path):
-    ports = {"data": free_port(), "control": free_port()}
+    ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     cfg = write_config(tmp_path / "c.toml", CONFIG.format(**ports))
     argv = app_argv("watch", "--connect", f"tcp://127.0.0.1:{ports['data']}",
                     "--control", f"tcp://127.0.0.1:{ports['control']}")

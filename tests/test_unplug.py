@@ -7,7 +7,6 @@
 
 import os
 import signal
-import socket
 import subprocess
 import sys
 import threading
@@ -16,34 +15,15 @@ import time
 import zmq
 from astropy.io import fits
 
+from cli_runner import live_config
 from rtlsdr_emulator import emulator_env, fakertl_lib, set_control  # noqa: F401  (fixture)
 from spinflip.daemon import archive, wire
+from spinflip.tui.app import free_loopback_port
 
-CONFIG = """
-[source]
-kind = "rtlsdr"
+RTLSDR_SOURCE = """kind = "rtlsdr"
 sample_rate = 1.024e6
 block_samples = 65536
-reconnect_max_s = 2.0
-[pointing]
-frame = "azel"
-lon = 0.0
-lat = 80.0
-[spectrometer]
-channels = 256
-integration_s = 0.5
-[calibration]
-tsys_from = "fixed"
-[publish]
-data = "tcp://127.0.0.1:{port}"
-control = ""
-"""
-
-
-def _free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
+reconnect_max_s = 2.0"""
 
 
 class _Listener(threading.Thread):
@@ -82,9 +62,10 @@ def _journal_rows(out, skip=()):
 
 
 def test_unplugged_dongle_the_daemon_stays_up_and_resumes_a_new_scan(tmp_path, fakertl_lib):  # noqa: F811
-    port = _free_port()
+    port = free_loopback_port()
     cfg = tmp_path / "c.toml"
-    cfg.write_text(CONFIG.format(port=port))
+    cfg.write_text(live_config(0.5, source=RTLSDR_SOURCE, channels=256,
+                               data=f"tcp://127.0.0.1:{port}"))
     control = tmp_path / "fakertl.ctl"
     set_control(control, present=1)
     out = tmp_path / "out"
