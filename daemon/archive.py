@@ -635,12 +635,17 @@ class ScanWriter:
         self.rows += 1
 
     def append_note(self, rec: dict) -> None:
-        """Write an observer's note (``DATE-OBS``, ``TEXT``); it becomes a HISTORY card."""
+        """Write an observer's note (``DATE-OBS``, ``TEXT``); it becomes a HISTORY card.
+
+        FITS header cards hold printable ASCII only (FITS 4.0, section 4.1), while the control
+        socket accepts any printable text: characters beyond ASCII are kept as Python-style
+        backslash escapes (``café`` -> ``caf\\xe9``), so nothing the observer wrote is lost.
+        """
         if self._closed:
             raise ValueError(f"{self.journal_path}: append after close")
-        text = str(rec["TEXT"])
+        text = str(rec["TEXT"]).encode("ascii", "backslashreplace").decode("ascii")
         if not _is_ascii_text(text):
-            raise ValueError(f"note {text!r}: not printable ASCII")
+            raise ValueError(f"note {text!r}: not printable")
         self._append_bytes(_encode({"kind": "note", "DATE-OBS": str(rec["DATE-OBS"]),
                                     "TEXT": text}))
 

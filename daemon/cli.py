@@ -137,14 +137,27 @@ def _cmd_run(args) -> int:
     if args.out:
         over["output"] = {"dir": args.out}
     config_mod.merge(cfg, over, origin="command line")
-    faulthandler.enable()     # a watchdog kill (SIGABRT) leaves every thread's stack in the log
+    try:                      # a watchdog kill (SIGABRT) leaves every thread's stack in the log
+        faulthandler.enable()
+    except (OSError, ValueError):  # stderr is no file (run in-process under a capture)
+        pass
     daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration)
     daemon.install_signal_handlers()
     src = cfg["source"]["kind"]
     daemon.log(f"spinflip: observing {daemon.pointing.object} with the {src} source"
                f"{' (fast)' if args.fast else ''}; integrations of "
                f"{daemon.blocks_per_integration * daemon.block_s:.1f} s")
-    result = daemon.run()
+    try:
+        result = daemon.run()
+    finally:                  # after a failure too: say what was saved, nothing more
+        _report_saved(daemon.result, daemon.out_dir)
+    if result.lost_samples:
+        print(f"warning: {result.lost_samples} samples lost", file=sys.stderr)
+    return 0
+
+
+def _report_saved(result, out_dir) -> None:
+    """One line per scan file written (integrations in it), or that none was."""
     for f in result.files:
         n = result.file_rows.get(str(f), result.rows)
         what = f"{n} integration{'s' if n != 1 else ''}"
@@ -152,10 +165,8 @@ def _cmd_run(args) -> int:
               if len(result.files) > 1 else
               f"saved {what} ({result.observed_s:.1f} s observed) to {f}")
     if not result.files:
-        print(f"no integration finished; nothing saved in {daemon.out_dir}")
-    if result.lost_samples:
-        print(f"warning: {result.lost_samples} samples lost", file=sys.stderr)
-    return 0
+        print(f"no integration saved in {out_dir}" + (
+            f" ({result.rows} finished)" if result.rows else " (none finished)"))
 
 
 def _cmd_loads(args) -> int:
@@ -251,12 +262,13 @@ def main(argv=None) -> int:
                "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,
                "soak": _cmd_soak}[args.command]
     from .sources import SourceError
+    from .supervisor import WorkerFailed
     try:
         return handler(args)
     except (ConfigError, ValueError) as exc:     # bad input: configuration, options, files
         print(f"spinflip {args.command}: {exc}", file=sys.stderr)
         return 2
-    except (SourceError, OSError) as exc:        # a fault while running: device, disk
+    except (SourceError, OSError, WorkerFailed) as exc:   # a fault while running
         print(f"spinflip {args.command}: {exc}", file=sys.stderr)
         return 1
 

@@ -42,6 +42,7 @@ import logging
 import math
 import sys
 import threading
+import time
 from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
@@ -381,8 +382,10 @@ class ControlServer:
     """
 
     def __init__(self, endpoint: str, handler: Handler, security: Any = None,
-                 context: zmq.Context | None = None):
+                 context: zmq.Context | None = None,
+                 guard: Callable[[str, Callable[[], None]], Callable[[], None]] | None = None):
         self.endpoint = endpoint
+        self.guard = guard
         self.handler = handler
         self.security = security
         self.context = context
@@ -405,7 +408,8 @@ class ControlServer:
         """
         if self._thread is not None:
             raise ControlError("control server already started")
-        self._thread = threading.Thread(target=self._run, name="spinflip-control", daemon=True)
+        target = self.guard("control", self._run) if self.guard is not None else self._run
+        self._thread = threading.Thread(target=target, name="spinflip-control", daemon=True)
         self._thread.start()
         self._ready.wait()
         if self._bind_error is not None:
@@ -423,6 +427,20 @@ class ControlServer:
         """Whether the server thread runs."""
         return self._thread is not None and self._thread.is_alive()
 
+    def _bind(self, sock: zmq.Socket) -> None:
+        """Bind; when running again after a failure, wait up to 2 s for the old socket's
+        endpoint to be released (ZeroMQ unbinds a closed socket in its I/O thread)."""
+        again = self._ready.is_set()
+        deadline = time.monotonic() + 2.0
+        while True:
+            try:
+                sock.bind(self.endpoint)
+                return
+            except zmq.ZMQError as exc:
+                if not again or exc.errno != zmq.EADDRINUSE or time.monotonic() > deadline:
+                    raise
+                time.sleep(0.05)
+
     def _run(self) -> None:
         ctx = self.context or zmq.Context.instance()
         try:
@@ -435,12 +453,14 @@ class ControlServer:
             sock.setsockopt(zmq.LINGER, 0)
             if self.security is not None:
                 self.security.apply(sock)
-            sock.bind(self.endpoint)
+            self._bind(sock)
             self.bound_endpoint = sock.getsockopt(zmq.LAST_ENDPOINT).decode()
         except Exception as exc:  # noqa: BLE001 - reported to start() as one line
             sock.close(0)
-            self._bind_error = _one_line(f"control endpoint {self.endpoint!r} cannot be bound: "
-                                         f"{exc}")
+            text = _one_line(f"control endpoint {self.endpoint!r} cannot be bound: {exc}")
+            if self._ready.is_set():          # running again after a failure: the guard says
+                raise ControlError(text) from None
+            self._bind_error = text
             self._ready.set()
             return
         self._ready.set()

@@ -72,6 +72,7 @@ from .spectral_axis import velocity_wcs_m_s
 from .carriers import CarrierFinder
 from .spectrometer import FlagSettings, Spectrometer
 from .static_masks import named_channels
+from .supervisor import Supervisor, WorkerFailed
 from .tsys import TsysMeter
 
 _QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
@@ -230,6 +231,9 @@ class Daemon:
         self.log = log or (lambda msg: print(msg, file=sys.stderr, flush=True))
         self.events: list = []          # (severity, text), newest last
         self.stop_event = threading.Event()
+        self.publisher = None
+        self.supervisor = Supervisor(self.event, self.log, on_fatal=self.stop_event.set)
+        self.result = RunResult()       # what run() did so far (read after a failure too)
         self.out_dir = check_output_dir(Path(cfg["output"]["dir"]))
         self.source = make_source(cfg, fast=fast)
         site = cfg["site"]
@@ -329,6 +333,14 @@ class Daemon:
         return False
 
     def _reader(self, q: queue.Queue, counters: dict) -> None:
+        """The reader thread: blocks into ``q`` (its body runs again after a failure, see
+        :mod:`spinflip.daemon.supervisor`), then the end marker."""
+        try:
+            self.supervisor.guard("reader", lambda: self._read_blocks(q, counters))()
+        finally:
+            q.put(_STOP)
+
+    def _read_blocks(self, q: queue.Queue, counters: dict) -> None:
         try:
             while not self.stop_event.is_set():
                 try:
@@ -352,8 +364,6 @@ class Daemon:
                         counters["dropped"] += block.n_samples
         except (SourceError, OSError) as exc:
             counters["error"] = exc
-        finally:
-            q.put(_STOP)
 
     def _reconnect(self) -> bool:
         """Reopen a lost source, waiting 1, 2, 4 ... s (at most ``source.reconnect_max_s``)
@@ -585,7 +595,7 @@ class Daemon:
             self.spectrometer.take()
             if partial:
                 self.log(f"note: the unfinished integration ({partial * self.block_s:.1f} s) "
-                         f"was dropped ({why}); every finished one is saved")
+                         f"was dropped ({why}): shorter than one switching cycle")
 
     def _restart_stream(self) -> None:
         """After a gap (pause, idle, new pointing): no spectrum or Tsys firing spans it."""
@@ -596,7 +606,7 @@ class Daemon:
     # -- the run ---------------------------------------------------------------------------
     def run(self) -> RunResult:
         """Acquire until the duration is reached, the source ends, or a stop signal."""
-        result = RunResult()
+        result = self.result = RunResult()
         self._gave_up_waiting = False
         try:
             self.source.open()        # a source that cannot start leaves nothing behind
@@ -616,12 +626,13 @@ class Daemon:
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         self.store = ScanStore(self.out_dir, self.nchan, products, self.event,
                                hold_bytes=int(self.cfg["output"]["hold_mb"] * 1e6),
-                               on_open=self._scan_opened)
+                               on_open=self._scan_opened, guard=self.supervisor.guard)
         rows_q = self.store            # the DSP loop only ever put()s into it
         self._blocks_q = blocks_q
         counters = self.counters
         reader = threading.Thread(target=self._reader, args=(blocks_q, counters), daemon=True,
                                   name="reader")
+        self.supervisor.install_excepthook()
         reader.start()
         self.store.start()
         self._open_scan(rows_q, self.t_start)
@@ -668,14 +679,14 @@ class Daemon:
                     self._end_integration(rows_q, result, "planned end")
                     break
         finally:
-            stopped_by_signal = self.stop_event.is_set()
+            stopped_by_signal = self.stop_event.is_set() and self.supervisor.fatal is None
             self.stop_event.set()
             self.state = "stopping"
             self.notifier.stopping("stopping: writing the scan")
             try:
                 if self.integ_blocks:
                     self._end_integration(rows_q, result, "stop signal" if stopped_by_signal
-                                          else "stopped by an error")
+                                          else "stopped by a failure")
             finally:
                 if self.pending:           # no measurement ever came: keep them, fully flagged
                     self._gave_up_waiting = True
@@ -688,15 +699,33 @@ class Daemon:
                 self.source.close()
                 self.switch.close()
                 self._live_stop()
+                self.supervisor.remove_excepthook()
         result.files, result.file_rows = self.store.files, self.store.file_rows
         result.lost_samples += counters["dropped"]
-        unsaved = self.store.unsaved_rows + self.store.dropped_rows
+        unsaved = self._unsaved_text()
+        if self.supervisor.fatal is not None:
+            raise WorkerFailed(f"the {self.supervisor.fatal.worker} thread failed "
+                               f"({self.supervisor.fatal.text})" + (f"; {unsaved}" if unsaved
+                                                                    else ""))
         if unsaved:
-            raise OSError(f"writing {self.out_dir}: {unsaved} integration(s) could not be saved "
-                          f"({self.store.error or 'memory bound output.hold_mb reached'})")
+            raise OSError(f"writing {self.out_dir}: {unsaved}")
         if counters["error"] is not None:
             raise SourceError(str(counters["error"]))
         return result
+
+    def _unsaved_text(self) -> str:
+        """What the store could not save, by cause; '' when everything finished is saved."""
+        st = self.store
+        parts = []
+        if st.unsaved_rows:
+            parts.append(f"{st.unsaved_rows} still held when the disk kept refusing "
+                         f"({st.error or 'write error'})")
+        if st.dropped_rows:
+            parts.append(f"{st.dropped_rows} dropped at the memory bound output.hold_mb")
+        if st.failed_rows:
+            parts.append(f"{st.failed_rows} failed to write (see the log)")
+        n = st.unsaved_rows + st.dropped_rows + st.failed_rows
+        return f"{n} integration(s) could not be saved: " + ", ".join(parts) if n else ""
 
     # -- faults ------------------------------------------------------------------------------
     def _source_fault(self, marker: tuple, rows_q, result: RunResult) -> None:
@@ -745,7 +774,8 @@ class Daemon:
         n.ready(f"observing {self.pointing.object}")
         if n.watchdog_interval_s is None:
             return None
-        pinger = sd_notify.WatchdogPinger(n, alive=self._heartbeat.alive, log=self.log)
+        pinger = sd_notify.WatchdogPinger(n, alive=self._heartbeat.alive, log=self.log,
+                                          guard=self.supervisor.guard)
         pinger.start()
         return pinger
 
@@ -918,10 +948,12 @@ class Daemon:
             self.security.start(zmq.Context.instance())
         try:
             if pub["data"]:
-                self.publisher = Publisher(pub["data"], self.security)
+                self.publisher = Publisher(pub["data"], self.security,
+                                           guard=self.supervisor.guard)
                 self.publisher.start()
             if pub["control"]:
-                self.control = ControlServer(pub["control"], self.submit, self.security)
+                self.control = ControlServer(pub["control"], self.submit, self.security,
+                                             guard=self.supervisor.guard)
                 self.control.start()
         except (PublishError, OSError, RuntimeError) as exc:
             self._live_stop()
@@ -929,8 +961,9 @@ class Daemon:
         if self._insecure:
             self.event("warning", self._insecure)
         self._status_stop = threading.Event()
-        self._status_thread = threading.Thread(target=self._status_loop, name="status",
-                                               daemon=True)
+        self._status_thread = threading.Thread(
+            target=self.supervisor.guard("status", self._status_loop), name="status",
+            daemon=True)
         self._status_thread.start()
 
     def _live_stop(self) -> None:
@@ -950,13 +983,12 @@ class Daemon:
             self.security.stop()
 
     def _status_loop(self) -> None:
+        """Status and progress every second (a failure is the supervisor's: an event, then
+        the loop runs again)."""
         while not self._status_stop.wait(1.0):
-            try:
-                if self.publisher is not None:
-                    self.publisher.publish(*self._status_message())
-                    self.publisher.publish(*self._progress_message())
-            except Exception as exc:  # the status must never take the daemon down
-                self.log(f"warning: status not published: {exc}")
+            if self.publisher is not None:
+                self.publisher.publish(*self._status_message())
+                self.publisher.publish(*self._progress_message())
 
     def status(self) -> dict:
         """The daemon's state, as the status message carries it (units in the names)."""
@@ -981,12 +1013,14 @@ class Daemon:
             "disk_free_bytes": int(free),
             "writing": self.store.state if self.store is not None else "writing",
             "held_integrations": self.store.held_rows if self.store is not None else 0,
-            "dropped_integrations": self.store.dropped_rows if self.store is not None else 0,
+            "dropped_integrations": (self.store.dropped_rows + self.store.failed_rows
+                                     if self.store is not None else 0),
             "uptime_s": _time.monotonic() - self.started_mono, "version": __version__,
             "scan": self.scan_name,
             "pointing": {"frame": self.pointing.frame, "lon_deg": self.pointing.lon,
                          "lat_deg": self.pointing.lat, "object": self.pointing.object},
             "drops": dict(self.publisher.drops) if self.publisher is not None else {},
+            "worker_failures": self.supervisor.counts(),
             "rfi": dict(self.rfi_totals), "time_utc": wire.now_utc_iso(), "station": "",
         }
         return "status", header, {}

@@ -40,10 +40,13 @@ class Publisher:
     endpoint : where to bind, e.g. ``tcp://127.0.0.1:5621``
     security : object with ``apply(socket)`` (CURVE server keys) or None
     context : zmq.Context (default: the process's shared one)
+    guard : callable(worker, body) -> thread target, or None
+        Wraps the sending thread's body (the daemon's supervisor); None: run it bare.
     """
 
-    def __init__(self, endpoint: str, security=None, context=None):
+    def __init__(self, endpoint: str, security=None, context=None, guard=None):
         self.endpoint = endpoint
+        self.guard = guard
         self.security = security
         self.context = context or zmq.Context.instance()
         self.drops = {t: 0 for t in wire.TOPICS}
@@ -75,7 +78,8 @@ class Publisher:
                                "another spinflip run using it?") from None
         self.bound = sock.getsockopt_string(zmq.LAST_ENDPOINT)
         self.socket = sock
-        self._thread = threading.Thread(target=self._run, name="publisher", daemon=True)
+        target = self.guard("publisher", self._run) if self.guard is not None else self._run
+        self._thread = threading.Thread(target=target, name="publisher", daemon=True)
         self._thread.start()
 
     def publish(self, topic: str, header: dict, arrays: dict | None = None) -> None:

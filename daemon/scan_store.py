@@ -18,6 +18,13 @@ event says writing resumed. A scan whose FITS file could not be made (the journa
 is finalised at a later retry or by the recovery at the next start. No file is ever left
 half-written: journals are cut back to their last whole record, FITS files are written to
 a temporary name and renamed, and the temporary is removed on failure.
+
+An item that fails for any other reason (a bug, a record the journal refuses) is dropped with an
+error event and counted (``failed_items``; rows among them in ``failed_rows``), and writing goes on with the next: one bad note never stops the saving of
+spectra. The thread body runs under the daemon's supervisor
+(:mod:`spinflip.daemon.supervisor`): should it fail all the same, it runs again with its queue
+and held items intact; and if it cannot, :meth:`ScanStore.finish` writes what is left from the
+calling thread, so every finished integration is saved or counted as unsaved.
 """
 
 from __future__ import annotations
@@ -26,9 +33,11 @@ import collections
 import queue
 import threading
 import time as _time
+from collections.abc import Callable
 from pathlib import Path
 
 from . import archive
+from .supervisor import one_line
 
 _STOP = object()
 
@@ -59,10 +68,13 @@ class ScanStore:
         Seconds between attempts while writing fails.
     on_open : callable(name) or None
         Told the name a scan was opened under (``-1``, ``-2`` ... added if it was taken).
+    guard : callable(worker, body) -> target, or None
+        Wraps the thread body (the daemon's :meth:`Supervisor.guard`); None: run it bare.
     """
 
     def __init__(self, out_dir: Path, nchan: int, products, event, hold_bytes: int,
-                 retry_s: float = 2.0, on_open=None):
+                 retry_s: float = 2.0, on_open=None,
+                 guard: Callable[[str, Callable[[], None]], Callable[[], None]] | None = None):
         self.out_dir = Path(out_dir)
         self.nchan = nchan
         self.products = products
@@ -78,10 +90,16 @@ class ScanStore:
         self.held_bytes = 0
         self.dropped_rows = 0
         self.unsaved_rows = 0               # rows still held when the store had to give up
+        self.failed_items = 0               # items dropped because writing them raised a bug
+        self.failed_rows = 0                # integrations among them
         self.error: OSError | None = None   # the write error, while writing fails
         self._unfinished: list[Path] = []   # journals whose FITS file is still to be made
         self._writer = None
-        self._thread = threading.Thread(target=self._run, name="writer")
+        self._stopping_since: float | None = None
+        self._give_up_after_s = 5.0
+        self._done = False                  # the thread body saw the stop and ended
+        target = guard("writer", self._run) if guard is not None else self._run
+        self._thread = threading.Thread(target=target, name="writer")
 
     # -- the DSP loop's side -----------------------------------------------------------------
     def start(self) -> None:
@@ -96,10 +114,26 @@ class ScanStore:
         self._give_up_after_s = float(give_up_after_s)
         self.q.put(_STOP)
         self._thread.join()
+        if not self._done:            # the thread failed for good: finish from here
+            try:
+                self._run()
+            except Exception as exc:  # noqa: BLE001 - counted as unsaved, said in one line
+                self.unsaved_rows += self.held_rows + sum(
+                    1 for it in list(self.q.queue) if isinstance(it, dict))
+                self.event("error", f"writing failed at the end ({one_line(exc)}): "
+                           f"{self.unsaved_rows} integration(s) not saved")
+                try:                  # what the journal holds becomes the FITS file
+                    self._close()
+                except Exception as close_exc:  # noqa: BLE001 - the journal stays for recovery
+                    self.event("error", f"scan file not finished ({one_line(close_exc)}); its "
+                               "journal is recovered at the next start")
 
     @property
     def state(self) -> str:
-        """``writing`` or ``holding`` (a write failed; items wait in memory)."""
+        """``writing``, ``holding`` (a write failed; items wait in memory) or ``failed`` (the
+        writer thread is gone; the daemon is stopping)."""
+        if self._thread.ident is not None and not self._thread.is_alive() and not self._done:
+            return "failed"
         return "holding" if self.error is not None else "writing"
 
     @property
@@ -108,26 +142,27 @@ class ScanStore:
 
     # -- the thread --------------------------------------------------------------------------
     def _run(self) -> None:
-        stopping_since = None
         while True:
-            try:
-                item = self.q.get(timeout=self.retry_s if self.error is not None else None)
-            except queue.Empty:
-                item = None
-            if item is _STOP:
-                stopping_since = _time.monotonic()
-                self.held.append(("close",))
-            elif item is not None:
-                self._hold(item)
+            if self._stopping_since is None:
+                try:
+                    item = self.q.get(timeout=self.retry_s if self.error is not None else None)
+                except queue.Empty:
+                    item = None
+                if item is _STOP:
+                    self._stopping_since = _time.monotonic()
+                    self.held.append(("close",))
+                elif item is not None:
+                    self._hold(item)
             self._drain()
-            if stopping_since is not None:
+            if self._stopping_since is not None:
                 if self.error is None:
                     break
-                if _time.monotonic() - stopping_since >= self._give_up_after_s:
+                if _time.monotonic() - self._stopping_since >= self._give_up_after_s:
                     self._give_up()
                     break
                 _time.sleep(min(self.retry_s, 0.5))
         self._retry_unfinished()
+        self._done = True
 
     def _hold(self, item) -> None:
         """Queue an item behind the ones waiting; drop a row past the memory bound."""
@@ -155,6 +190,8 @@ class ScanStore:
                                f" {self.hold_bytes / 1e6:.0f} MB) and written when it works again")
                 self.error = exc
                 return
+            except Exception as exc:  # noqa: BLE001 - one bad item never stops the writer
+                self._failed(item, exc)
             self.held.popleft()
             self.held_bytes -= item_bytes(item)
         if self.error is not None:
@@ -163,6 +200,20 @@ class ScanStore:
                        "saved" + (f" ({self.dropped_rows} were dropped while memory was full)"
                                   if self.dropped_rows else ""))
             self._retry_unfinished()
+
+    def _failed(self, item, exc: Exception) -> None:
+        """An item that could not be written for a reason other than the disk: dropped, counted
+        and said; the items after it are written as usual."""
+        self.failed_items += 1
+        if isinstance(item, dict):
+            self.failed_rows += 1
+            what = "an integration"
+        else:
+            what = {"open": "the start of a scan", "close": "the end of a scan", "tsys": "a "
+                    "system-temperature record", "rfi": "an interference record",
+                    "note": "a note"}.get(item[0], "a record")
+        self.event("error", f"could not save {what} ({one_line(exc)}): it is dropped; writing "
+                   "goes on with the next")
 
     def _write(self, item) -> None:
         if isinstance(item, tuple) and item[0] == "open":
@@ -174,8 +225,10 @@ class ScanStore:
                 self.on_open(self.scan_name)
         elif isinstance(item, tuple) and item[0] == "close":
             self._close()
-        elif self._writer is None:
-            return                                # nothing open (idle): nothing to write to
+        elif self._writer is None:                # no scan open (its start failed)
+            if isinstance(item, dict):
+                raise RuntimeError("no scan file is open")
+            return
         elif isinstance(item, tuple):
             {"tsys": self._writer.append_tsys, "rfi": self._writer.append_rfi,
              "note": self._writer.append_note}[item[0]](item[1])

@@ -412,8 +412,10 @@ class WatchdogPinger:
     """
 
     def __init__(self, notifier: Notifier, alive: Callable[[], bool],
-                 interval_s: float | None = None, log: LogFunc | None = None):
+                 interval_s: float | None = None, log: LogFunc | None = None,
+                 guard: Callable[[str, Callable[[], None]], Callable[[], None]] | None = None):
         self.notifier = notifier
+        self._guard = guard
         self.interval_s = notifier.watchdog_interval_s if interval_s is None else interval_s
         if self.interval_s is not None and (not math.isfinite(self.interval_s)
                                             or self.interval_s <= 0):
@@ -435,7 +437,8 @@ class WatchdogPinger:
         if self.interval_s is None or self.running:
             return self.running
         self._stop.clear()
-        self._thread = threading.Thread(target=self._run, name="spinflip-watchdog", daemon=True)
+        target = self._guard("watchdog", self._run) if self._guard is not None else self._run
+        self._thread = threading.Thread(target=target, name="spinflip-watchdog", daemon=True)
         self._thread.start()
         return True
 

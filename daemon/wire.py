@@ -130,11 +130,17 @@ samples_received    integer         complex samples received since start
 samples_lost        integer         complex samples lost since start
 queue_depth         integer         blocks waiting between reader and DSP
 disk_free_bytes     integer         free space in the output folder, bytes
-writing             string          "writing", or "holding": the disk refuses writes and
-                                    finished integrations wait in memory
+writing             string          "writing"; "holding": the disk refuses writes and
+                                    finished integrations wait in memory; or "failed": the
+                                    writer thread is gone and the daemon is stopping
 held_integrations   integer         integrations waiting in memory to be written
-dropped_integrations integer        integrations dropped since start because the memory
-                                    bound (output.hold_mb) was reached while holding
+dropped_integrations integer        integrations dropped since start: the memory bound
+                                    (output.hold_mb) was reached while holding, or one could
+                                    not be written (an error event says why)
+worker_failures     object          ``{thread: integer}`` unexpected failures of the
+                                    daemon's threads since start ("reader", "writer",
+                                    "publisher", "control", "status", "watchdog"); each is
+                                    also an error event; empty when none failed
 uptime_s            number          seconds since the daemon started
 version             string          spinflip version
 scan                string | null   the scan being written, null between scans
@@ -264,7 +270,7 @@ _FIELDS = {
         "samples_lost": _INT, "queue_depth": _INT, "disk_free_bytes": _INT, "uptime_s": _NUM,
         "writing": _STR, "held_integrations": _INT, "dropped_integrations": _INT,
         "version": _STR, "scan": _STR_OR_NULL, "pointing": ("object",), "drops": ("object",),
-        "rfi": ("object",),
+        "rfi": ("object",), "worker_failures": ("object",),
     },
     "progress": {
         "scan": _STR_OR_NULL, "integration": _INT, "integration_elapsed_s": _NUM,
@@ -278,7 +284,7 @@ _CHOICES = {
     ("spectrum", "kind"): ("integration", "average"),
     ("spectrum", "unit"): ("K", "count"),
     ("status", "state"): ("observing", "paused", "idle", "reconnecting", "stopping"),
-    ("status", "writing"): ("writing", "holding"),
+    ("status", "writing"): ("writing", "holding", "failed"),
     ("event", "severity"): ("info", "warning", "error"),
 }
 
@@ -463,6 +469,8 @@ def validate_header(topic: str, header: dict) -> None:
                             f"allowed are {', '.join(_POINTING_FRAMES)}")
         for name, count in header["drops"].items():
             _check_type(f"header.drops.{name}", count, _INT)
+        for name, count in header["worker_failures"].items():
+            _check_type(f"header.worker_failures.{name}", count, _INT)
         _check_fields("header.rfi", header["rfi"], {k: _INT for k in _RFI_COUNTERS})
     if topic == "event" and ("\n" in header["text"] or "\r" in header["text"]):
         raise WireError(f"header.text = {_short(header['text'])}: expected one line")

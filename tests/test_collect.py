@@ -61,7 +61,7 @@ def status_frames(station):
         "sample_rate_hz": 2.4e6, "tsys_k": None, "tsys_source": "none", "samples_received": 1,
         "samples_lost": 0, "queue_depth": 0, "disk_free_bytes": 1, "uptime_s": 1.0,
         "writing": "writing",
-        "held_integrations": 0, "dropped_integrations": 0,
+        "held_integrations": 0, "dropped_integrations": 0, "worker_failures": {},
         "version": "0", "scan": "s1", "drops": {},
         "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0, "object": "x"},
         "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}})

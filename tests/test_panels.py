@@ -70,13 +70,14 @@ def spectrum_frames(kind="integration", row=3, flag_idx=(100, 101, 700), noise_k
     return wire.encode("spectrum", header, arrays)
 
 
-def status_frames(tsys_k=74.2, writing="writing", held=0):
+def status_frames(tsys_k=74.2, writing="writing", held=0, failures=None):
     return wire.encode("status", {
         "state": "observing", "source": "sim", "lo_hz": 1_420_000_000.0, "gain_db": 40.2,
         "sample_rate_hz": 2_400_000.0, "tsys_k": tsys_k, "tsys_source": "noise_source",
         "samples_received": 123_456_789, "samples_lost": 1_000, "queue_depth": 1,
         "disk_free_bytes": 9_876_543_210, "uptime_s": 61.5, "version": "0.1.0",
         "writing": writing, "held_integrations": held, "dropped_integrations": 0,
+        "worker_failures": failures or {},
         "scan": "scan-0007",
         "pointing": {"frame": "galactic", "lon_deg": 120.0, "lat_deg": 0.5, "object": "G120"},
         "drops": {"spectrum": 0}, "rfi": {"impulses": 4, "carrier_onsets": 1, "sk_cells": 17,
@@ -237,6 +238,16 @@ def test_receiver_panel_says_when_writing_is_held():
     state.apply(wire.decode(status_frames(writing="holding", held=7)), 101.0)
     rx = render(panels.receiver_panel(state, 44), 44, 12)
     assert "WRITING HELD" in rx and "7 in memory" in rx
+
+
+def test_receiver_panel_says_when_a_thread_failed():
+    """Issue 12: a worker thread's failure is visible in the UI, not only in the log."""
+    state = full_state()
+    rx = render(panels.receiver_panel(state, 44), 44, 12)
+    assert "FAILED" not in rx
+    state.apply(wire.decode(status_frames(writing="failed", failures={"writer": 2})), 101.0)
+    rx = render(panels.receiver_panel(state, 44), 44, 12)
+    assert "THREAD FAILED" in rx and "writer ×2" in rx and "WRITING FAILED" in rx
 
 
 def test_open_ended_scan_shows_time_observed():

@@ -61,7 +61,7 @@ def status_header():
         "gain_db": 40.2, "sample_rate_hz": 2_400_000.0, "tsys_k": None,
         "tsys_source": "noise_source", "samples_received": 123_456_789, "samples_lost": 0,
         "queue_depth": 1, "disk_free_bytes": 9_876_543_210, "uptime_s": 61.5,
-        "writing": "writing", "held_integrations": 0, "dropped_integrations": 0,
+        "writing": "writing", "held_integrations": 0, "dropped_integrations": 0, "worker_failures": {},
         "version": "0.1.0", "scan": None,
         "pointing": {"frame": "galactic", "lon_deg": 120.0, "lat_deg": 0.5, "object": "G120"},
         "drops": {"spectrum": 0, "status": 2}, "rfi": {"impulses": 4, "carrier_onsets": 1,

@@ -806,6 +806,12 @@ def receiver_panel(state: ViewState, width: int) -> Text:
     items.append(_kv("disk", _num(None if disk is None else disk / 1e9, ".1f", "GB free")))
     if st.get("writing") == "holding":
         items.append(_kv("WRITING HELD", f"{st.get('held_integrations', 0)} in memory"))
+    elif st.get("writing") == "failed":
+        items.append(_kv("WRITING FAILED", "daemon stopping"))
+    failures = st.get("worker_failures") or {}
+    if failures:
+        items.append(_kv("THREAD FAILED", ", ".join(f"{name} ×{n}" for name, n in
+                                                     sorted(failures.items()))))
     if width >= 44 and st:
         items.append(_kv("source", str(st.get("source", "?"))))
         items.append(_kv("queue", str(st.get("queue_depth", 0))))
