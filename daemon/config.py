@@ -7,13 +7,14 @@ naming the key, the value and what is allowed; the command line turns it into ex
 from __future__ import annotations
 
 import copy
+import datetime as _dt
 import math
-import tomllib
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from .lines import HI_REST_FREQ_HZ
+from .toml_file import TomlFileError, read_toml
 
 
 class ConfigError(ValueError):
@@ -172,19 +173,19 @@ def _check(section: str, key: str, value: Any) -> Any:
     if spec.kind is float and isinstance(value, int) and not isinstance(value, bool):
         value, ok_type = float(value), True
     if not ok_type:
-        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
     if spec.kind is float and not math.isfinite(value):
-        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
     if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
-        raise ConfigError(f"config {where} = {value!r}: expected printable ASCII (it goes into FITS headers)")
+        raise ConfigError(f"config {where} = {_shown(value)}: expected printable ASCII (it goes into FITS headers)")
     if spec.kind is list:
         if key == "spurs_hz":
             return _check_numbers(where, value)
         return _check_windows(where, value)
     if spec.choices and value not in spec.choices:
-        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
-        raise ConfigError(f"config {where} = {value!r}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
     return value
 
 
@@ -192,7 +193,7 @@ def _check_numbers(where: str, value: list) -> list:
     """A list of finite numbers."""
     for x in value:
         if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
-            raise ConfigError(f"config {where} = {value!r}: expected a list of numbers, e.g. "
+            raise ConfigError(f"config {where} = {_shown(value)}: expected a list of numbers, e.g. "
                               f"[-300000, 450000]; {x!r} is not")
     return [float(x) for x in value]
 
@@ -205,7 +206,7 @@ def _check_windows(where: str, value: list) -> list:
               and all(isinstance(x, (int, float)) and not isinstance(x, bool)
                       and math.isfinite(x) for x in w))
         if not ok or not w[0] < w[1]:
-            raise ConfigError(f"config {where} = {value!r}: expected a list of [lo, hi] pairs of "
+            raise ConfigError(f"config {where} = {_shown(value)}: expected a list of [lo, hi] pairs of "
                               f"numbers with lo < hi, e.g. [[-250, -150], [180, 250]]; {w!r} is not")
         out.append([float(w[0]), float(w[1])])
     return out
@@ -228,7 +229,35 @@ def merge(cfg: dict, overrides: dict, origin: str = "config") -> dict:
     return cfg
 
 
+def _shown(value: Any, limit: int = 60) -> str:
+    """``repr(value)``, cut to ``limit`` characters: an error line never carries a whole file."""
+    text = repr(value)
+    return text if len(text) <= limit else text[:limit - 5] + " ...]"
+
+
+def utc_start(text: str) -> str:
+    """``sim.start``: ``"now"`` or a UTC ISO 8601 time, returned as ``YYYY-MM-DDTHH:MM:SS[.f]``.
+
+    Raises
+    ------
+    ConfigError
+        Not a time (one line naming ``sim.start``), or one with a UTC offset other than 0.
+    """
+    if text == "now":
+        return text
+    try:
+        t = _dt.datetime.fromisoformat(text)
+    except ValueError:
+        raise ConfigError(f"config sim.start = {_shown(text)}: expected 'now' or a UTC time "
+                          "in ISO 8601, e.g. '2026-03-01T04:00:00'") from None
+    if t.utcoffset() not in (None, _dt.timedelta(0)):
+        raise ConfigError(f"config sim.start = {_shown(text)}: expected a UTC time (no offset "
+                          "other than Z or +00:00)")
+    return t.replace(tzinfo=None).isoformat()
+
+
 def _cross_checks(cfg: dict) -> None:
+    cfg["sim"]["start"] = utc_start(cfg["sim"]["start"])
     n = cfg["spectrometer"]["channels"]
     if n & (n - 1):
         raise ConfigError(f"config spectrometer.channels = {n}: expected a power of two")
@@ -275,15 +304,8 @@ def load(path: str | Path | None = None) -> dict:
     if path is None:
         _cross_checks(cfg)
         return cfg
-    path = Path(path)
     try:
-        text = path.read_bytes().decode("utf-8")
-    except FileNotFoundError:
-        raise ConfigError(f"config file {path}: not found") from None
-    except (OSError, UnicodeDecodeError) as exc:
-        raise ConfigError(f"config file {path}: cannot be read ({exc})") from None
-    try:
-        data = tomllib.loads(text)
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(f"config file {path}: not valid TOML ({exc})") from None
+        data = read_toml(path, "config file")
+    except TomlFileError as exc:
+        raise ConfigError(str(exc)) from None
     return merge(cfg, data, origin=f"config file {path}")

@@ -127,7 +127,6 @@ from __future__ import annotations
 
 import math
 import numbers
-import tomllib
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
@@ -135,6 +134,7 @@ from typing import Any, Sequence
 from .line_integral import K_SWITCHED, K_TOTAL_POWER, radiometer_noise_k
 from .lines import C_M_S, HI_REST_FREQ_HZ
 from .loads import T0_K, noise_figure_db, noise_temperature_k
+from .toml_file import TomlFileError, read_toml
 
 #: Boltzmann constant, J/K (exact, SI 2019).
 BOLTZMANN_J_K = 1.380649e-23
@@ -633,19 +633,9 @@ def load_profile(path) -> Profile:
     """
     p = Path(path)
     try:
-        with open(p, "rb") as fh:
-            data = tomllib.load(fh)
-    except FileNotFoundError:
-        raise ProfileError(f"{p}: no such profile file") from None
-    except IsADirectoryError:
-        raise ProfileError(f"{p}: is a folder, expected a profile TOML file") from None
-    except OSError as exc:
-        raise ProfileError(f"{p}: cannot read the profile ({exc.strerror or exc})") from None
-    except UnicodeDecodeError:
-        raise ProfileError(f"{p}: not a text (UTF-8) TOML file") from None
-    except tomllib.TOMLDecodeError as exc:
-        msg = " ".join(str(exc).split())
-        raise ProfileError(f"{p}: not valid TOML: {msg}") from None
+        data = read_toml(p, "profile")
+    except TomlFileError as exc:
+        raise ProfileError(str(exc)) from None
     return profile_from_dict(data, str(p))
 
 

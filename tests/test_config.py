@@ -76,3 +76,73 @@ def test_windows_are_read_as_float_pairs(tmp_path):
     f.write_text("[baseline]\nmode = 'windows'\nwindows_km_s = [[-250, -150], [180.5, 250]]\n")
     assert config.load(f)["baseline"]["windows_km_s"] == [[-250.0, -150.0], [180.5, 250.0]]
     assert config.load(None)["baseline"]["windows_km_s"] == []
+
+
+# -- hostile and clumsy files (issue 12, item 6) -------------------------------------------------
+DEEP = {
+    "array": "[site]\nname = " + "[" * 3000 + "]" * 3000 + "\n",
+    "inline-table": "[site]\nname = " + "{a = " * 3000 + "1" + "}" * 3000 + "\n",
+}
+
+
+@pytest.mark.parametrize("kind", sorted(DEEP))
+def test_deeply_nested_toml_is_one_line_exit_2_for_run_doctor_and_chain(tmp_path, capsys, kind):
+    """tomllib recurses per nesting level; the traceback was 3000 lines long."""
+    from spinflip.daemon import cli
+    f = tmp_path / "deep.toml"
+    f.write_text(DEEP[kind])
+    with pytest.raises(config.ConfigError, match="nested too deeply") as err:
+        config.load(f)
+    assert "\n" not in str(err.value)
+    assert cli.main(["run", "--config", str(f), "--fast", "--duration", "1",
+                     "--out", str(tmp_path / "o")]) == 2
+    assert cli.main(["chain", str(f)]) == 2
+    err_text = capsys.readouterr().err
+    assert err_text.count("\n") == 2 and err_text.count("nested too deeply") == 2, err_text
+    assert "Traceback" not in err_text
+    assert cli.main(["doctor", "--config", str(f), "--out", str(tmp_path / "o")]) == 1
+    out = capsys.readouterr().out
+    assert "nested" in out and "Traceback" not in out     # (the table wraps the line)
+
+
+@pytest.mark.parametrize("start, fragment", [
+    ("yesterday", "expected 'now' or a UTC time in ISO 8601"),
+    ("2026-13-01T00:00:00", "expected 'now' or a UTC time in ISO 8601"),
+    ("2026-03-01T04:00:00+02:00", "expected a UTC time"),
+])
+def test_sim_start_that_is_not_a_utc_time_names_the_key(tmp_path, start, fragment):
+    f = tmp_path / "c.toml"
+    f.write_text(f'[sim]\nstart = "{start}"\n')
+    with pytest.raises(config.ConfigError) as err:
+        config.load(f)
+    msg = str(err.value)
+    assert msg.startswith("config sim.start = ") and fragment in msg and "\n" not in msg
+
+
+@pytest.mark.parametrize("start, expected", [
+    ("now", "now"), ("2026-03-01T04:00:00Z", "2026-03-01T04:00:00"),
+    ("2026-03-01 04:00:00.5", "2026-03-01T04:00:00.500000"), ("2026-03-01", "2026-03-01T00:00:00"),
+])
+def test_sim_start_is_normalised_for_astropy(tmp_path, start, expected):
+    from astropy.time import Time
+    f = tmp_path / "c.toml"
+    f.write_text(f'[sim]\nstart = "{start}"\n')
+    got = config.load(f)["sim"]["start"]
+    assert got == expected
+    if got != "now":     # astropy reads it as the same instant (astropy.time as the reference)
+        assert abs(Time(got, scale="utc").unix - Time(expected, scale="utc").unix) < 1e-6
+
+
+def test_error_lines_never_carry_a_whole_value(tmp_path):
+    f = tmp_path / "c.toml"
+    f.write_text("[rfi]\nspurs_hz = [" + ", ".join(['"x"'] * 20000) + "]\n")
+    with pytest.raises(config.ConfigError) as err:
+        config.load(f)
+    assert "rfi.spurs_hz" in str(err.value) and len(str(err.value)) < 250
+
+
+def test_a_huge_file_is_refused_before_it_is_parsed(tmp_path):
+    f = tmp_path / "c.toml"
+    f.write_text("# " + "x" * 2_000_000 + "\n")
+    with pytest.raises(config.ConfigError, match="larger than 1000 kB"):
+        config.load(f)
