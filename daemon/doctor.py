@@ -56,25 +56,18 @@ from typing import Callable
 from . import config as config_mod
 from .source_rtlsdr import DVB_MODULES  # the kernel's DVB-T modules that claim the dongle
 
-#: USB vendor:product ids of RTL2832U dongles (from memory; cross-checked against the known
-#: devices table in librtlsdr.c, which lists more). The first two are the generic dongles.
+#: USB vendor:product ids (facts, from memory) of RTL2832U-based receivers, with a generic
+#: description; ``lsusb`` names a device from the system's own USB id database. The first two
+#: are the ids most SDR dongles carry; the others are DVB-T/DAB television sticks built on
+#: the same chip.
+_TV_STICK = "RTL2832U DVB-T/DAB television stick"
 RTL2832U_USB_IDS: dict[tuple[str, str], str] = {
-    ("0bda", "2832"): "generic RTL2832U",
-    ("0bda", "2838"): "generic RTL2832U (OEM id, the usual SDR dongle)",
-    ("0ccd", "00a9"): "Terratec Cinergy T Stick Black rev 1",
-    ("0ccd", "00b3"): "Terratec NOXON DAB stick rev 1",
-    ("0ccd", "00d3"): "Terratec Cinergy T Stick RC rev 3",
-    ("0ccd", "00d7"): "Terratec T Stick PLUS",
-    ("0ccd", "00e0"): "Terratec NOXON DAB stick rev 2",
-    ("0458", "707f"): "Genius TVGo DVB-T03 ver. B",
-    ("185b", "0620"): "Compro U620F",
-    ("185b", "0650"): "Compro U650F",
-    ("1b80", "d3a4"): "Twintech UT-40",
-    ("1d19", "1101"): "Dexatek DK DVB-T",
-    ("1d19", "1102"): "Dexatek DK DVB-T (DigiVox mini II)",
-    ("1d19", "1103"): "Dexatek DK 5217 DVB-T",
-    ("1f4d", "b803"): "GTek T803",
-    ("1f4d", "c803"): "Lifeview LV5TDeluxe",
+    ("0bda", "2832"): "RTL2832U receiver, generic id",
+    ("0bda", "2838"): "RTL2832U receiver, the usual SDR dongle id",
+    **{ids: _TV_STICK for ids in (
+        ("0ccd", "00a9"), ("0ccd", "00b3"), ("0ccd", "00d3"), ("0ccd", "00d7"), ("0ccd", "00e0"),
+        ("0458", "707f"), ("185b", "0620"), ("185b", "0650"), ("1b80", "d3a4"), ("1d19", "1101"),
+        ("1d19", "1102"), ("1d19", "1103"), ("1f4d", "b803"), ("1f4d", "c803"))},
 }
 
 #: Clock states of ``adjtimex(2)``: the return value when the clock is not synchronised.
@@ -103,8 +96,8 @@ SERVICE_CONFIG = Path("/etc/spinflip/spinflip.toml")
 FIX_LIBRARY = "sudo apt-get install librtlsdr0"
 FIX_DEVICE = ("check the USB cable and the hub's power, then `lsusb` must list 0bda:2838 "
               "(or another RTL2832U id)")
-FIX_BLACKLIST = "sudo cp hardware/blacklist-rtl-dvb.conf /etc/modprobe.d/"
-FIX_UDEV = ("sudo cp hardware/20-rtlsdr.rules /etc/udev/rules.d/ && sudo udevadm control "
+FIX_BLACKLIST = "sudo cp hardware/spinflip-blacklist-dvb.conf /etc/modprobe.d/"
+FIX_UDEV = ("sudo cp hardware/60-spinflip-dongle.rules /etc/udev/rules.d/ && sudo udevadm control "
             f"--reload && sudo udevadm trigger && sudo usermod -aG {SERVICE_GROUP} $USER "
             "(log in again)")
 FIX_CLOCK = ("sudo timedatectl set-ntp true (systemd-timesyncd; or install chrony): a board "

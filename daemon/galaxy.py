@@ -62,8 +62,7 @@ Binney, J. & Merrifield, M. 1998, *Galactic Astronomy* (Princeton), ch. 9 (kinem
 the gas disk, terminal velocity).
 Dickey, J. M. & Lockman, F. J. 1990, ARA&A 28, 215 (N_HI = 1.823e18 int T_B dv; tau relation;
 HI layer thickness; values from memory).
-Kerr, F. J. & Lynden-Bell, D. 1986, MNRAS 221, 1023 (IAU 1985 Galactic constants R0 = 8.5 kpc,
-Theta0 = 220 km/s).
+IAU 1985 Galactic constants, MNRAS 221, 1023 (1986): R0 = 8.5 kpc, Theta0 = 220 km/s.
 Fixsen, D. J. 2009, ApJ 707, 916 (CMB temperature 2.725 K; from memory).
 """
 
@@ -163,7 +162,7 @@ class ModelGalaxy:
     ----------
     r0_kpc, theta0_kms : float
         Galactic constants: Sun's galactocentric radius and circular speed. Defaults are the
-        IAU 1985 values (Kerr & Lynden-Bell 1986); e.g. ``ModelGalaxy(8.15, 236.0)`` uses the
+        IAU 1985 values (MNRAS 221, 1023, 1986); e.g. ``ModelGalaxy(8.15, 236.0)`` uses the
         newer values of Reid et al. 2019 (from memory).
     r_rise_kpc : float
         Radius scale of the rotation curve's rise, kpc.

@@ -13,20 +13,20 @@ velocity dispersion and streaming motions. The daemon uses this range to keep th
 the channels it calibrates and baselines with ("line-free" channels), so the range is meant
 generous rather than tight.
 
-Galactic constants: R0 = 8.5 kpc, Theta0 = 220 km/s (IAU 1985 recommendation; Kerr &
-Lynden-Bell 1986, MNRAS 221, 1023).
+Galactic constants: R0 = 8.5 kpc, Theta0 = 220 km/s (IAU 1985 recommendation,
+MNRAS 221, 1023, 1986).
 
 References
 ----------
 Binney, J. & Merrifield, M. 1998, Galactic Astronomy, Princeton, sect. 9.1.
-Kerr, F. J. & Lynden-Bell, D. 1986, MNRAS 221, 1023 (IAU 1985 Galactic constants).
+IAU 1985 Galactic constants, MNRAS 221, 1023 (1986).
 """
 
 from __future__ import annotations
 
 import numpy as np
 
-#: IAU 1985 Galactic constants (Kerr & Lynden-Bell 1986).
+#: IAU 1985 Galactic constants (MNRAS 221, 1023, 1986).
 R0_KPC = 8.5
 THETA0_KM_S = 220.0
 

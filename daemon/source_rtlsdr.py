@@ -225,10 +225,10 @@ class RtlSdrSource:
             held = _dvb_driver_loaded()
             if held:
                 raise SourceError(f"dongle busy: the kernel's DVB driver {held} holds it: run "
-                                  f"'sudo rmmod {held}' and install hardware/blacklist-rtl-dvb.conf "
+                                  f"'sudo rmmod {held}' and install hardware/spinflip-blacklist-dvb.conf "
                                   "in /etc/modprobe.d/") from None
             raise SourceError(f"no RTL-SDR dongle {dev!r} found ({exc}): check the USB cable, "
-                              "'lsusb', and the udev rule hardware/20-rtlsdr.rules") from None
+                              "'lsusb', and the udev rule hardware/60-spinflip-dongle.rules") from None
         found = _librtlsdr_of(self.sdr)
         self._lib, cb_type = found if found else (None, None)
         try:

@@ -9,7 +9,7 @@ Outside references used below:
   <sys/timex.h> of glibc and musl for struct timex, 208 bytes on LP64 Linux (from memory).
 - proc(5): /proc/net/tcp lists local address:port in hex and the socket inode; /proc/PID/fd
   links read "socket:[INODE]"; /proc/PID/cmdline is NUL-separated.
-- RTL2832U USB ids 0bda:2832 and 0bda:2838: librtlsdr's known-devices table (from memory).
+- RTL2832U USB ids 0bda:2832 and 0bda:2838: the usual ids of these dongles (from memory).
 - Thresholds (fail < 1 h or < 100 MB, warn < 24 h) and the rate estimate are the issue's spec.
 
 Tests run as root here, where os.access always says yes: the access check is injected.
@@ -171,7 +171,7 @@ def test_no_dongle(tmp_path, kind, status, code):
 def test_dongle_ids_from_sysfs(tmp_path):
     sys_root = tmp_path / "sys"
     add_usb(sys_root, "1-1", "0BDA", "2832", 3, 17)            # sysfs writes lower case; be lenient
-    add_usb(sys_root, "1-2", "0bda", "8153", 3, 18)            # a Realtek network adapter
+    add_usb(sys_root, "1-2", "0bda", "8153", 3, 18)            # another device with the same vendor id (a network adapter)
     add_usb(sys_root, "2-1", "0bda", "2838", 2, 5, "00000001")
     dongles, n_usb = find_dongles(sys_root)
     assert n_usb == 3                                          # interfaces are not devices
@@ -202,7 +202,7 @@ def test_dvb_driver_loaded_fails_with_rmmod_and_blacklist(tmp_path):
     assert dvb.status == "fail"
     assert "dvb_usb_rtl28xxu, rtl2832" in dvb.detail
     assert dvb.fix.startswith("sudo rmmod dvb_usb_rtl28xxu rtl2832 && ")
-    assert "hardware/blacklist-rtl-dvb.conf /etc/modprobe.d/" in dvb.fix
+    assert "hardware/spinflip-blacklist-dvb.conf /etc/modprobe.d/" in dvb.fix
 
 
 # -- 4 permissions -------------------------------------------------------------------------------
@@ -220,7 +220,7 @@ def test_device_node_without_permission(tmp_path):
     acc = by_name(run_checks(cfg, roots))["device access"]
     assert asked == [(str(node), os.R_OK | os.W_OK)]          # the node that sysfs named
     assert acc.status == "fail" and str(node) in acc.detail and "mode 0000" in acc.detail
-    for part in ("hardware/20-rtlsdr.rules /etc/udev/rules.d/", "udevadm control --reload",
+    for part in ("hardware/60-spinflip-dongle.rules /etc/udev/rules.d/", "udevadm control --reload",
                  "udevadm trigger", "usermod -aG spinflip $USER"):
         assert part in acc.fix
     console, _ = text_console()
@@ -240,7 +240,7 @@ def test_as_root_the_node_mode_decides_for_the_service_user(tmp_path):
     node.chmod(0o600)          # owner root only: the spinflip service user cannot open it
     acc = by_name(run_checks(write_config(tmp_path), roots))["device access"]
     assert acc.status == "warn" and "service user spinflip cannot" in acc.detail
-    assert "20-rtlsdr.rules" in acc.fix
+    assert "60-spinflip-dongle.rules" in acc.fix
     node.chmod(0o666)
     assert by_name(run_checks(write_config(tmp_path), roots))["device access"].status == "ok"
 

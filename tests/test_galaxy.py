@@ -2,8 +2,8 @@
 
 Sources of the checks are named beside each test: Binney & Merrifield 1998 (*Galactic
 Astronomy*, ch. 9: kinematics of the gas disk, terminal velocity), Dickey & Lockman 1990
-(ARA&A 28, 215: N_HI = 1.823e18 int T_B dv), the IAU 1985 constants (Kerr & Lynden-Bell 1986,
-MNRAS 221, 1023), astropy as reference for angular separations, and common practice (observed
+(ARA&A 28, 215: N_HI = 1.823e18 int T_B dv), the IAU 1985 constants (MNRAS 221,
+1023, 1986), astropy as reference for angular separations, and common practice (observed
 HI line brightness) where no single source applies.
 """
 
@@ -31,7 +31,7 @@ def integral(tb, v=V):
 
 # -- constants and rotation curve -------------------------------------------------------------
 def test_defaults_are_iau_1985_constants(galaxy):
-    # IAU 1985: R0 = 8.5 kpc, Theta0 = 220 km/s (Kerr & Lynden-Bell 1986)
+    # IAU 1985: R0 = 8.5 kpc, Theta0 = 220 km/s (MNRAS 221, 1023, 1986)
     assert galaxy.r0_kpc == 8.5
     assert galaxy.theta0_kms == 220.0
 

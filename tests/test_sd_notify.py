@@ -31,7 +31,7 @@ from spinflip.daemon.sd_notify import (
 
 REPO = Path(__file__).resolve().parent.parent
 UNIT = REPO / "systemd" / "spinflip.service"
-UDEV_RULES = REPO / "hardware" / "20-rtlsdr.rules"
+UDEV_RULES = REPO / "hardware" / "60-spinflip-dongle.rules"
 SYSTEMD_ANALYZE = Path("/usr/bin/systemd-analyze")
 #: sun_path holds 108 bytes with its terminating NUL (unix(7)).
 _SUN_PATH_MAX_BYTES = 107
