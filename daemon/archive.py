@@ -24,16 +24,27 @@ temperature record (one firing of the noise source) has meta ``{"kind": "tsys", 
 its scalars (see :data:`TSYS_SCALARS`) and the per-channel T_sys as float32[nchan]. An
 interference record (``{"kind": "rfi", ...}``, :data:`RFI_SCALARS`, no arrays) logs what
 kind of interference was seen when. A row may carry ``CHANEXP`` (float32[nchan], the
-per-channel exposure after flagging), stored after FLAGGED (meta ``"chanexp": true``). A reader walks
-the records in order and stops at the first one whose magic, length or CRC does not check
-out: since each record is fsync'ed before the next is begun, only the last record can be torn
-by a crash, and the CRC tells a torn or zero-filled tail from a whole record (the chance that
-random bytes pass a CRC-32 is 2**-32).
+per-channel exposure after flagging), stored after FLAGGED (meta ``"chanexp": true``).
+
+Reading. A reader walks the records in order. Since each record is fsync'ed before the next is
+begun, only the last record can be torn by a crash, and the CRC tells a torn or zero-filled
+tail from a whole record (the chance that random bytes pass a CRC-32 is 2**-32). Damage in the
+middle of the file (a bad sector, a failing SD card) is another matter: at a record whose
+magic, length or CRC does not check out, the reader resynchronises on the next MAGIC marker
+whose length and CRC-32 hold (a marker occurring by chance inside a payload fails that check)
+and keeps every record after it. Bad bytes after the last good record are a torn tail, the
+ordinary mark of a crash; bad bytes followed by good records are damage, and recovery then
+keeps the original journal as ``<scan>.journal.bad``. If the header record is the damaged one,
+its cards are used if its CRC still holds over them (only the marker was hit), read unverified
+if its JSON text still parses as our header, and otherwise lost: the rows are still written,
+with the channel count taken from them and the unit of DATA left unknown (no ``BUNIT``).
 
 Atomic FITS write (common practice for crash-safe files on POSIX): write ``<scan>.fits.tmp``
 in the same folder, fsync it, ``os.replace`` it onto ``<scan>.fits`` (atomic within one file
 system) and fsync the folder so the rename itself is durable. Only then is the journal
 removed, so at every instant either the journal or the complete FITS file holds the scan.
+A journal that cannot be read at all (no permission, an I/O error, not a regular file) is
+renamed to ``<scan>.journal.unreadable`` with one error line, so that it never stops a start.
 
 A live writer holds an exclusive ``flock`` on its journal; :func:`recover` skips journals it
 cannot lock, so running it next to a live daemon in the same folder is safe. The kernel drops
@@ -66,6 +77,7 @@ import numbers
 import os
 import stat
 import struct
+import textwrap
 import zlib
 from pathlib import Path
 
@@ -482,12 +494,12 @@ def read_journal(path: Path) -> JournalContents:
         meta, verified = _salvage_header(buf, hdr_end, nchan) if hdr_end else (None, False)
         if meta is not None:
             out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
-            out.header_note = ("only its marker was damaged; its cards check out" if verified
-                               else "its cards were read from the damaged record unverified "
-                               "(its CRC-32 failed)")
+            out.header_note = ("only the header record's marker was hit; its cards check out "
+                               "and are used" if verified else "the header cards were read from "
+                               "the damaged header record, unverified (its CRC-32 failed)")
         else:
             out.nchan = nchan
-            out.header_note = ("its cards are lost: the channel count is taken from the rows; "
+            out.header_note = ("the header record is lost: channels counted from the rows; "
                                "site, telescope and the unit of DATA are unknown")
         if hdr_end:
             drop(0, hdr_end)
@@ -915,7 +927,7 @@ def _damage_text(contents: JournalContents) -> str:
         parts.append(f"{contents.torn_bytes} torn bytes at the end")
     text = f"dropped {contents.dropped_bytes} bytes ({', '.join(parts)})"
     if contents.header_note:
-        text += f"; its header record was damaged: {contents.header_note}"
+        text += f"; {contents.header_note}"
     return text
 
 
@@ -924,8 +936,8 @@ def _with_history(header: dict, contents: JournalContents) -> dict:
     what was dropped."""
     header = _with_notes(header, contents.notes)
     if contents.damaged or contents.header_note:
-        header = dict(header, _HISTORY=[f"recovered from a damaged journal: "
-                                        f"{_damage_text(contents)}"])
+        text = f"recovered from a damaged journal: {_damage_text(contents)}"
+        header = dict(header, _HISTORY=textwrap.wrap(text, 70))   # a HISTORY card holds 72
     return header
 
 
@@ -1006,8 +1018,11 @@ def _finalise_path(jpath: Path, products, report) -> Path | None:
         _set_aside_unreadable(jpath, _why(exc), report)
         return None
     try:
-        if not stat.S_ISREG(os.fstat(fd).st_mode):
-            _set_aside_unreadable(jpath, "not a regular file", report)
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            what = ("a directory" if stat.S_ISDIR(mode) else "a FIFO" if stat.S_ISFIFO(mode)
+                    else "a socket" if stat.S_ISSOCK(mode) else "a device")
+            _set_aside_unreadable(jpath, f"not a regular file but {what}", report)
             return None
         if not _try_lock(fd):
             log.info("%s: in use by a running writer; left alone", jpath)

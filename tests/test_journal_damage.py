@@ -191,7 +191,7 @@ def test_header_with_only_its_marker_hit_is_still_used(tmp_path):
     header, table = read_scan(path)
     assert len(table) == N_ROWS and header["TELESCOP"] == HEADER["TELESCOP"]
     assert table["DATA"].unit == "K"
-    assert "only its marker was damaged" in said[0][1]
+    assert "only the header record's marker was hit" in said[0][1]
     assert (tmp_path / "scan-dmg.journal.bad").exists()
 
 
@@ -315,7 +315,7 @@ def test_a_fifo_named_like_a_journal_does_not_hang_the_start(tmp_path):
     t.join(timeout=30)
     assert not t.is_alive(), "recover() blocked on a FIFO"
     (sev, text), = said
-    assert sev == "error" and "not a regular file" in text and str(fifo) in text
+    assert sev == "error" and "not a regular file but a FIFO" in text and str(fifo) in text
     assert stat.S_ISFIFO((tmp_path / "pipe.journal.unreadable").lstat().st_mode)
 
 
