@@ -348,14 +348,14 @@ def _check_body(buf: bytes, pos: int, length: int, crc: int):
     start = pos + _PREFIX.size
     if length < _U32.size or length > _MAX_PAYLOAD or start + length > len(buf):
         return None
-    payload = buf[start:start + length]
+    payload = memoryview(buf)[start:start + length]   # a view: records are not copied
     if zlib.crc32(payload, zlib.crc32(_U32.pack(length))) != crc:
         return None
     (mlen,) = _U32.unpack_from(payload, 0)
     if _U32.size + mlen > length:
         return None
     try:
-        meta = json.loads(payload[_U32.size:_U32.size + mlen].decode("utf-8"))
+        meta = json.loads(bytes(payload[_U32.size:_U32.size + mlen]).decode("utf-8"))
     except (UnicodeDecodeError, ValueError):
         return None
     if not isinstance(meta, dict):

@@ -388,7 +388,7 @@ def test_cli_run_exits_0_past_an_unreadable_journal(tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[sim]\nstart = "2026-03-01T04:00:00"\nseed = 7\n[pointing]\n'
                    'frame = "galactic"\nlon = 30.0\nlat = 0.0\n[spectrometer]\n'
-                   'integration_s = 5.0\n')
+                   'integration_s = 5.0\n[publish]\ndata = ""\ncontrol = ""\n')   # no ports
     r = run_cli(["run", "--config", cfg, "--fast", "--duration", "5", "--out", out])
     assert r.returncode == 0, r.stderr
     lines = [ln for ln in r.stderr.splitlines() if "scan-old.journal" in ln]
