@@ -24,16 +24,27 @@ temperature record (one firing of the noise source) has meta ``{"kind": "tsys", 
 its scalars (see :data:`TSYS_SCALARS`) and the per-channel T_sys as float32[nchan]. An
 interference record (``{"kind": "rfi", ...}``, :data:`RFI_SCALARS`, no arrays) logs what
 kind of interference was seen when. A row may carry ``CHANEXP`` (float32[nchan], the
-per-channel exposure after flagging), stored after FLAGGED (meta ``"chanexp": true``). A reader walks
-the records in order and stops at the first one whose magic, length or CRC does not check
-out: since each record is fsync'ed before the next is begun, only the last record can be torn
-by a crash, and the CRC tells a torn or zero-filled tail from a whole record (the chance that
-random bytes pass a CRC-32 is 2**-32).
+per-channel exposure after flagging), stored after FLAGGED (meta ``"chanexp": true``).
+
+Reading. A reader walks the records in order. Since each record is fsync'ed before the next is
+begun, only the last record can be torn by a crash, and the CRC tells a torn or zero-filled
+tail from a whole record (the chance that random bytes pass a CRC-32 is 2**-32). Damage in the
+middle of the file (a bad sector, a failing SD card) is another matter: at a record whose
+magic, length or CRC does not check out, the reader resynchronises on the next MAGIC marker
+whose length and CRC-32 hold (a marker occurring by chance inside a payload fails that check)
+and keeps every record after it. Bad bytes after the last good record are a torn tail, the
+ordinary mark of a crash; bad bytes followed by good records are damage, and recovery then
+keeps the original journal as ``<scan>.journal.bad``. If the header record is the damaged one,
+its cards are used if its CRC still holds over them (only the marker was hit), read unverified
+if its JSON text still parses as our header, and otherwise lost: the rows are still written,
+with the channel count taken from them and the unit of DATA left unknown (no ``BUNIT``).
 
 Atomic FITS write (common practice for crash-safe files on POSIX): write ``<scan>.fits.tmp``
 in the same folder, fsync it, ``os.replace`` it onto ``<scan>.fits`` (atomic within one file
 system) and fsync the folder so the rename itself is durable. Only then is the journal
 removed, so at every instant either the journal or the complete FITS file holds the scan.
+A journal that cannot be read at all (no permission, an I/O error, not a regular file) is
+renamed to ``<scan>.journal.unreadable`` with one error line, so that it never stops a start.
 
 A live writer holds an exclusive ``flock`` on its journal; :func:`recover` skips journals it
 cannot lock, so running it next to a live daemon in the same folder is safe. The kernel drops
@@ -57,15 +68,17 @@ keywords of at most 8 characters).
 
 from __future__ import annotations
 
+import dataclasses
 import datetime as _dt
 import json
 import logging
 import math
 import numbers
 import os
+import stat
 import struct
+import textwrap
 import zlib
-from dataclasses import dataclass, field
 from pathlib import Path
 
 import numpy as np
@@ -293,92 +306,245 @@ def _row_record(row: dict, nchan: int) -> bytes:
 # ----------------------------------------------------------------------------------------------
 # reading a journal
 # ----------------------------------------------------------------------------------------------
-@dataclass
+@dataclasses.dataclass
 class JournalContents:
-    """What a journal holds: its intact records and how many trailing bytes were not intact."""
+    """What a journal holds: its intact records, and which bytes were not intact.
+
+    ``torn_bytes`` are the bytes after the last usable record (a write torn by a crash, a
+    zero-filled tail: ordinary after a power cut). ``damaged`` lists the stretches of bad bytes
+    that are followed by good records, as (offset, number of bytes): that is not a crash but
+    damage to the stored file (a bad sector, a failing card). ``header_note`` says what was done
+    when the first (header) record itself was damaged ("" when it was intact); ``header`` is
+    then the cards read from the damaged record, or None if they could not be read (``nchan``
+    is then counted from the rows).
+    """
     path: Path
     scan: str | None = None
     nchan: int | None = None
     header: dict | None = None
-    rows: list = field(default_factory=list)
-    tsys: list = field(default_factory=list)
-    rfi: list = field(default_factory=list)
-    notes: list = field(default_factory=list)
+    rows: list = dataclasses.field(default_factory=list)
+    tsys: list = dataclasses.field(default_factory=list)
+    rfi: list = dataclasses.field(default_factory=list)
+    notes: list = dataclasses.field(default_factory=list)
     intact_bytes: int = 0
     torn_bytes: int = 0
+    damaged: list = dataclasses.field(default_factory=list)
+    header_note: str = ""
 
     @property
     def header_ok(self) -> bool:
         return self.header is not None
 
+    @property
+    def dropped_bytes(self) -> int:
+        """Bytes not used: the damaged stretches and the torn tail."""
+        return self.torn_bytes + sum(n for _, n in self.damaged)
 
-def _records(buf: bytes):
-    """Yield (end_offset, meta, array_bytes) for each intact record from the start of ``buf``."""
-    pos = 0
-    n = len(buf)
-    while pos + _PREFIX.size <= n:
-        magic, length, crc = _PREFIX.unpack_from(buf, pos)
-        start = pos + _PREFIX.size
-        if magic != MAGIC or length < _U32.size or length > _MAX_PAYLOAD or start + length > n:
-            return
-        payload = buf[start:start + length]
-        if zlib.crc32(payload, zlib.crc32(_U32.pack(length))) != crc:
-            return
-        (mlen,) = _U32.unpack_from(payload, 0)
-        if _U32.size + mlen > length:
-            return
-        try:
-            meta = json.loads(payload[_U32.size:_U32.size + mlen].decode("utf-8"))
-        except (UnicodeDecodeError, ValueError):
-            return
-        yield start + length, meta, payload[_U32.size + mlen:]
-        pos = start + length
+
+def _check_body(buf: bytes, pos: int, length: int, crc: int):
+    """(end, meta, arrays) of the record at ``pos`` with this length and CRC if its payload
+    checks out (sane length, CRC-32, a JSON object as meta), else None. The magic is not
+    looked at."""
+    start = pos + _PREFIX.size
+    if length < _U32.size or length > _MAX_PAYLOAD or start + length > len(buf):
+        return None
+    payload = memoryview(buf)[start:start + length]   # a view: records are not copied
+    if zlib.crc32(payload, zlib.crc32(_U32.pack(length))) != crc:
+        return None
+    (mlen,) = _U32.unpack_from(payload, 0)
+    if _U32.size + mlen > length:
+        return None
+    try:
+        meta = json.loads(bytes(payload[_U32.size:_U32.size + mlen]).decode("utf-8"))
+    except (UnicodeDecodeError, ValueError):
+        return None
+    if not isinstance(meta, dict):
+        return None
+    return start + length, meta, payload[_U32.size + mlen:]
+
+
+def _record_at(buf: bytes, pos: int):
+    """(end, meta, arrays) of the whole record starting at ``pos``, or None."""
+    if pos + _PREFIX.size > len(buf):
+        return None
+    magic, length, crc = _PREFIX.unpack_from(buf, pos)
+    if magic != MAGIC:
+        return None
+    return _check_body(buf, pos, length, crc)
+
+
+def _next_record(buf: bytes, pos: int) -> int:
+    """Offset of the first whole record at or after ``pos`` (``len(buf)`` if none).
+
+    A MAGIC marker can also occur by chance inside a payload (DATA is arbitrary bytes): a
+    marker counts only if the length after it stays inside the file and the CRC-32 over length
+    and payload holds, so a false marker is taken with probability 2**-32."""
+    while True:
+        q = buf.find(MAGIC, pos)
+        if q < 0:
+            return len(buf)
+        if _record_at(buf, q) is not None:
+            return q
+        pos = q + 1
+
+
+def _scan_records(buf: bytes):
+    """Walk ``buf``: yield ``(start, end, meta, arrays)`` for each whole record and
+    ``(start, end, None, None)`` for each stretch of bytes between them that is not one.
+
+    After a bad record the walk resynchronises on the next MAGIC marker whose record checks
+    out (:func:`_next_record`), so damage in the middle of a journal costs only the records it
+    touches."""
+    pos, n = 0, len(buf)
+    while pos < n:
+        rec = _record_at(buf, pos)
+        if rec is not None:
+            yield pos, rec[0], rec[1], rec[2]
+            pos = rec[0]
+        else:
+            nxt = _next_record(buf, pos + 1)
+            yield pos, nxt, None, None
+            pos = nxt
+
+
+def _record_nchan(meta: dict, arrays: bytes) -> int | None:
+    """Channels a row or tsys record implies by the size of its arrays (None: cannot tell)."""
+    kind = meta.get("kind")
+    per = (9 if meta.get("chanexp") else 5) if kind == "row" else 4 if kind == "tsys" else 0
+    if not per or len(arrays) % per or not arrays:
+        return None
+    return len(arrays) // per
+
+
+def _salvage_header(buf: bytes, end: int, nchan: int | None):
+    """Header meta from a damaged first record spanning ``buf[:end]``, and how sure it is.
+
+    Returns (meta, verified) or (None, False). If only the marker was hit, length and CRC-32
+    still check out: the meta is verified. Otherwise the JSON text is read where the record
+    puts it (after marker, length, CRC and meta length: byte 16); it is used only if it parses
+    as a whole JSON object of our header form, its cards pass the header checks, and its
+    channel count matches the rows'. Such cards are unverified (the CRC failed)."""
+    if end >= _PREFIX.size:
+        _magic, length, crc = _PREFIX.unpack_from(buf, 0)
+        rec = _check_body(buf[:end], 0, length, crc)
+        if rec is not None and rec[0] == end:
+            return rec[1], True
+    text_at = _PREFIX.size + _U32.size
+    try:
+        meta, _ = json.JSONDecoder().raw_decode(buf[text_at:end].decode("utf-8"))
+    except (UnicodeDecodeError, ValueError):
+        return None, False
+    try:
+        ok = (isinstance(meta, dict) and meta.get("kind") == "header"
+              and meta.get("format") == JOURNAL_FORMAT and isinstance(meta.get("scan"), str)
+              and isinstance(meta.get("nchan"), int) and meta["nchan"] >= 1
+              and (nchan is None or meta["nchan"] == nchan)
+              and isinstance(meta.get("header"), dict)
+              and _check_header(meta["header"]) == meta["header"])
+    except ValueError:
+        ok = False
+    return (meta, False) if ok else (None, False)
 
 
 def read_journal(path: Path) -> JournalContents:
-    """Parse a journal; stop at the first record that is not whole (a torn tail).
+    """Parse a journal, keeping every record whose CRC-32 holds.
+
+    A torn tail (a crash in mid-write) is counted in ``torn_bytes``. A damaged stretch in the
+    middle (a bad sector) is skipped: reading resumes at the next whole record and the stretch
+    is listed in ``damaged``. Records that check out but do not fit the scan (an unknown kind,
+    arrays of another size) are skipped the same way.
 
     Returns
     -------
     JournalContents
-        ``header`` is None if even the first (header) record is not intact. ``rows`` are dicts
-        with numpy ``DATA`` (float32) and ``FLAGGED`` (bool) and every scalar of the row.
+        ``rows`` are dicts with numpy ``DATA`` (float32) and ``FLAGGED`` (bool) and every
+        scalar of the row. If the header record is damaged, ``header`` holds the cards that
+        could still be read from it (or None) and ``header_note`` says so.
+
+    Raises
+    ------
+    OSError
+        The journal cannot be read (permissions, an I/O error).
     """
     path = Path(path)
     buf = path.read_bytes()
     out = JournalContents(path=path)
-    for end, meta, arrays in _records(buf):
-        if out.header is None:
-            if meta.get("kind") != "header" or meta.get("format") != JOURNAL_FORMAT:
-                break
-            out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
-        elif meta.get("kind") == "tsys":
-            if len(arrays) != 4 * out.nchan:
-                break
-            rec = {k: meta[k] for k in TSYS_SCALARS if k in meta}
-            rec["TSYSCHAN"] = np.frombuffer(arrays, dtype="<f4", count=out.nchan).astype(np.float32)
-            out.tsys.append(rec)
-        elif meta.get("kind") == "rfi":
-            out.rfi.append({k: meta[k] for k in RFI_SCALARS if k in meta})
-        elif meta.get("kind") == "note":
-            out.notes.append({"DATE-OBS": meta.get("DATE-OBS", ""), "TEXT": meta.get("TEXT", "")})
+    items = list(_scan_records(buf))
+    gaps: list[list[int]] = []          # [start, end) stretches not used, merged
+
+    def drop(start: int, end: int) -> None:
+        if gaps and gaps[-1][1] == start:
+            gaps[-1][1] = end
         else:
-            nchan = out.nchan
-            has_exp = bool(meta.get("chanexp"))
-            if meta.get("kind") != "row" or len(arrays) != (9 if has_exp else 5) * nchan:
-                break
-            row = {k: v for k, v in meta.items() if k not in ("kind", "extra", "chanexp")}
-            row.update(meta.get("extra", {}))
-            row["DATA"] = np.frombuffer(arrays, dtype="<f4", count=nchan).astype(np.float32)
-            row["FLAGGED"] = np.frombuffer(arrays, dtype=np.uint8, offset=4 * nchan,
-                                           count=nchan) != 0
-            if has_exp:
-                row["CHANEXP"] = np.frombuffer(arrays, dtype="<f4", offset=5 * nchan,
-                                               count=nchan).astype(np.float32)
-            out.rows.append(row)
-        out.intact_bytes = end
+            gaps.append([start, end])
+
+    first = items[0] if items else None
+    if first is not None and first[2] is not None and first[2].get("kind") == "header":
+        meta = first[2]
+        if meta.get("format") != JOURNAL_FORMAT:       # another format: read nothing of it
+            out.torn_bytes = len(buf)
+            return out
+        out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
+        out.intact_bytes = first[1]
+        items = items[1:]
+    elif first is not None:                            # the header record is damaged
+        nchan = next((k for _s, _e, m, a in items if m is not None
+                      for k in [_record_nchan(m, a)] if k is not None), None)
+        hdr_end = first[1] if first[2] is None else 0
+        meta, verified = _salvage_header(buf, hdr_end, nchan) if hdr_end else (None, False)
+        if meta is not None:
+            out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
+            out.header_note = ("only the header record's marker was hit; its cards check out "
+                               "and are used" if verified else "the header cards were read from "
+                               "the damaged header record, unverified (its CRC-32 failed)")
+        else:
+            out.nchan = nchan
+            out.header_note = ("the header record is lost: channels counted from the rows; "
+                               "site, telescope and the unit of DATA are unknown")
+        if hdr_end:
+            drop(0, hdr_end)
+            items = items[1:]
+    for start, end, meta, arrays in items:
+        if meta is None or out.nchan is None or not _take(out, meta, arrays):
+            drop(start, end)
+        else:
+            out.intact_bytes = end
     out.torn_bytes = len(buf) - out.intact_bytes
+    out.damaged = [(s, e - s) for s, e in gaps if e <= out.intact_bytes]
     return out
+
+
+def _take(out: JournalContents, meta: dict, arrays: bytes) -> bool:
+    """Add one whole record to ``out``; False if it does not fit the scan."""
+    nchan = out.nchan
+    kind = meta.get("kind")
+    if kind == "tsys":
+        if len(arrays) != 4 * nchan:
+            return False
+        rec = {k: meta[k] for k in TSYS_SCALARS if k in meta}
+        rec["TSYSCHAN"] = np.frombuffer(arrays, dtype="<f4", count=nchan).astype(np.float32)
+        out.tsys.append(rec)
+    elif kind == "rfi":
+        out.rfi.append({k: meta[k] for k in RFI_SCALARS if k in meta})
+    elif kind == "note":
+        out.notes.append({"DATE-OBS": meta.get("DATE-OBS", ""), "TEXT": meta.get("TEXT", "")})
+    elif kind == "row":
+        has_exp = bool(meta.get("chanexp"))
+        if len(arrays) != (9 if has_exp else 5) * nchan or any(k not in meta
+                                                                 for k in ROW_SCALARS):
+            return False
+        row = {k: v for k, v in meta.items() if k not in ("kind", "extra", "chanexp")}
+        row.update(meta.get("extra", {}))
+        row["DATA"] = np.frombuffer(arrays, dtype="<f4", count=nchan).astype(np.float32)
+        row["FLAGGED"] = np.frombuffer(arrays, dtype=np.uint8, offset=4 * nchan,
+                                       count=nchan) != 0
+        if has_exp:
+            row["CHANEXP"] = np.frombuffer(arrays, dtype="<f4", offset=5 * nchan,
+                                           count=nchan).astype(np.float32)
+        out.rows.append(row)
+    else:
+        return False
+    return True
 
 
 def count_rows(path: Path) -> int:
@@ -497,8 +663,10 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
                 "BUNIT": "unit of DATA", "OBSERVER": "observer"}
     for note in header.get("_NOTES", []):
         th.add_history(f"note {note}")
+    for line in header.get("_HISTORY", []):
+        th.add_history(line)
     for key, value in header.items():
-        if key in ("EXTVER", "TELESCOP", "DATE", "ORIGIN", "_NOTES"):
+        if key in ("EXTVER", "TELESCOP", "DATE", "ORIGIN", "_NOTES", "_HISTORY") or value is None:
             continue
         card_key = key if len(key) <= 8 else f"HIERARCH {key}"
         th[card_key] = (value, comments.get(key, ""))
@@ -680,13 +848,21 @@ class ScanWriter:
             return self.fits_path if self.fits_path.exists() and self.rows else None
         try:
             contents = read_journal(self.journal_path)
+            if contents.header_note:    # the header in memory is whole: nothing of it is lost
+                contents = dataclasses.replace(contents, header_note="")
             path = None
             if contents.rows:
                 path = _write_fits_atomic(self.out_dir, self.scan_name,
-                                          _with_notes(self.header, contents.notes),
+                                          _with_history(self.header, contents),
                                           self.nchan, contents.rows, contents.tsys, self.products,
                                           contents.rfi)
-            self.journal_path.unlink()
+            if contents.damaged or contents.header_note:   # the stored journal was damaged
+                bad = _set_aside(self.journal_path, ".bad")
+                log.error("scan %s: its journal was damaged on the disk: %s; %s",
+                          self.scan_name, _damage_text(contents), f"the original is kept as {bad}"
+                          if bad is not None else "the original could not be kept")
+            else:
+                self.journal_path.unlink()
             _fsync_dir(self.out_dir)
         finally:
             os.close(self._fd)  # releases the flock
@@ -697,15 +873,108 @@ class ScanWriter:
 # ----------------------------------------------------------------------------------------------
 # recovery and reading
 # ----------------------------------------------------------------------------------------------
-def recover(out_dir: Path, products=None) -> list[Path]:
+#: Unreadable journals that could not be renamed either: passed over for the rest of this
+#: process, so a retry loop does not hit (and report) them again and again.
+_PASSED_OVER: set[str] = set()
+
+
+def _say(report, severity: str, text: str) -> None:
+    """Tell ``report(severity, text)`` if given, else log ``text`` at that severity."""
+    if report is not None:
+        report(severity, text)
+    else:
+        log.log({"info": logging.INFO, "warning": logging.WARNING}.get(severity, logging.ERROR),
+                "%s", text)
+
+
+def _set_aside(jpath: Path, suffix: str) -> Path | None:
+    """Rename ``jpath`` to ``<name><suffix>`` beside it (``-1``, ``-2`` ... added if taken, so
+    nothing is overwritten); the new path, or None if renaming failed."""
+    aside = jpath.with_name(jpath.name + suffix)
+    k = 0
+    while os.path.lexists(aside):
+        k += 1
+        aside = jpath.with_name(f"{jpath.name}{suffix}-{k}")
+    try:
+        os.rename(jpath, aside)
+    except OSError:
+        return None
+    _fsync_dir(jpath.parent)
+    return aside
+
+
+def _set_aside_unreadable(jpath: Path, why: str, report) -> None:
+    """One error line for a journal that cannot be read; it is renamed to ``.unreadable`` so
+    that later starts go past it, or, if even that fails, passed over in this process."""
+    aside = _set_aside(jpath, ".unreadable")
+    if aside is not None:
+        _say(report, "error", f"{jpath}: cannot read this journal ({why}); set aside as "
+             f"{aside.name} and not recovered")
+    else:
+        _PASSED_OVER.add(os.path.abspath(jpath))
+        _say(report, "error", f"{jpath}: cannot read this journal ({why}) nor rename it; left "
+             "as it is and passed over")
+
+
+def _why(exc: OSError) -> str:
+    return exc.strerror or str(exc)
+
+
+class _Unreadable(Exception):
+    """The journal could be opened but not read (an I/O error)."""
+
+
+def _damage_text(contents: JournalContents) -> str:
+    """What was dropped from a damaged journal, in words, e.g. ``dropped 685 bytes (685
+    damaged bytes at byte 2738)``."""
+    parts = [f"{n} damaged bytes at byte {at}" for at, n in contents.damaged]
+    if contents.torn_bytes:
+        parts.append(f"{contents.torn_bytes} torn bytes at the end")
+    text = f"dropped {contents.dropped_bytes} bytes ({', '.join(parts)})"
+    if contents.header_note:
+        text += f"; {contents.header_note}"
+    return text
+
+
+def _with_history(header: dict, contents: JournalContents) -> dict:
+    """The header with the observer's notes and, for a damaged journal, HISTORY cards saying
+    what was dropped."""
+    header = _with_notes(header, contents.notes)
+    if contents.damaged or contents.header_note:
+        text = f"recovered from a damaged journal: {_damage_text(contents)}"
+        header = dict(header, _HISTORY=textwrap.wrap(text, 70))   # a HISTORY card holds 72
+    return header
+
+
+def recover(out_dir: Path, products=None, report=None) -> list[Path]:
     """Turn every journal a crashed run left in ``out_dir`` into its FITS file.
 
-    For each ``*.journal`` not locked by a live writer: its intact records become
-    ``<scan>.fits`` (written atomically, as :meth:`ScanWriter.close` does), torn trailing bytes
-    are dropped and logged, and the journal is removed. A journal with a header but no rows is
-    removed and nothing is written; one whose header record is damaged is renamed to
-    ``*.journal.bad`` (kept for inspection, never deleted). Stray ``*.fits.tmp`` files of a
-    crashed FITS write are removed.
+    For each ``*.journal`` not locked by a live writer, its intact records become
+    ``<scan>.fits`` (written atomically, as :meth:`ScanWriter.close` does):
+
+    * torn trailing bytes (a crash in mid-write) are dropped and said so, and the journal is
+      removed;
+    * a damaged stretch followed by good records (a bad sector) is skipped, every record after
+      it whose CRC-32 holds is kept, and the journal is renamed to ``*.journal.bad`` (kept for
+      inspection, never deleted or overwritten); the FITS file says what was dropped in HISTORY
+      cards. If the header record is the damaged one, the rows are still written: with the
+      header cards read from it if they can be, else without them (the unit of DATA unknown);
+    * a journal with a header but no rows is removed and nothing is written;
+    * a journal that cannot be read at all (permissions, an I/O error, not a regular file) is
+      renamed to ``*.journal.unreadable``, or, if renaming fails too, passed over for the rest
+      of this process; either way with one error line, and recovery goes on.
+
+    Stray ``*.fits.tmp`` files of a crashed FITS write are removed.
+
+    Parameters
+    ----------
+    out_dir : Path
+        The archive folder.
+    products : callable or None
+        Derived products added to each FITS file (see :class:`ScanWriter`).
+    report : callable(severity, text) or None
+        Told each message (severity ``"info"``, ``"warning"`` or ``"error"``, one line of
+        text); without it the messages go to this module's logger.
 
     Returns
     -------
@@ -716,24 +985,13 @@ def recover(out_dir: Path, products=None) -> list[Path]:
     written: list[Path] = []
     for jpath in sorted(out_dir.glob("*.journal")):
         try:
-            fd = os.open(jpath, os.O_RDWR | getattr(os, "O_CLOEXEC", 0))
-        except FileNotFoundError:  # a live writer finished meanwhile
+            path = _finalise_path(jpath, products, report)
+        except OSError as exc:   # disk full: the journal stays, a later start retries
+            _say(report, "warning", f"{jpath}: not turned into FITS yet ({_why(exc)}); the "
+                 "journal is kept")
             continue
-        try:
-            if not _try_lock(fd):
-                log.info("%s: in use by a running writer; left alone", jpath)
-                continue
-            if not jpath.exists():  # closed and unlinked between glob and lock
-                continue
-            try:
-                path = _finalise_locked(jpath, products)
-            except OSError as exc:   # disk full: the journal stays, a later start retries
-                log.warning("%s: not turned into FITS yet (%s); the journal is kept", jpath, exc)
-                continue
-            if path is not None:
-                written.append(path)
-        finally:
-            os.close(fd)
+        if path is not None:
+            written.append(path)
     for tmp in sorted(out_dir.glob("*.fits.tmp")):
         scan = tmp.name[: -len(".fits.tmp")]
         if (out_dir / f"{scan}.journal").exists():  # a live writer is closing this scan
@@ -743,51 +1001,90 @@ def recover(out_dir: Path, products=None) -> list[Path]:
     return written
 
 
-def finalise_journal(jpath: Path, products=None) -> Path | None:
+def finalise_journal(jpath: Path, products=None, report=None) -> Path | None:
     """Turn one unlocked journal into its FITS file (as :func:`recover` does for each).
 
-    Returns the FITS file, or None when there was nothing to write or a running writer holds
-    the journal. Raises OSError when writing fails (disk full): the journal is then kept.
+    Returns the FITS file, or None when there was nothing to write, a running writer holds
+    the journal, or it could not be read (then it is set aside as :func:`recover` does, and
+    ``report`` is told). Raises OSError when writing fails (disk full): the journal is kept.
     """
-    jpath = Path(jpath)
-    try:
-        fd = os.open(jpath, os.O_RDWR | getattr(os, "O_CLOEXEC", 0))
-    except FileNotFoundError:
+    return _finalise_path(Path(jpath), products, report)
+
+
+def _finalise_path(jpath: Path, products, report) -> Path | None:
+    """Open and lock one journal, then :func:`_finalise_locked`; see :func:`recover`."""
+    if os.path.abspath(jpath) in _PASSED_OVER:
+        return None
+    try:  # read-only and non-blocking: a FIFO named like a journal must not hang the start
+        fd = os.open(jpath, os.O_RDONLY | os.O_NONBLOCK | getattr(os, "O_CLOEXEC", 0))
+    except FileNotFoundError:  # a live writer finished meanwhile
+        return None
+    except OSError as exc:     # no permission, an I/O error, ...
+        _set_aside_unreadable(jpath, _why(exc), report)
         return None
     try:
-        if not _try_lock(fd) or not jpath.exists():
+        mode = os.fstat(fd).st_mode
+        if not stat.S_ISREG(mode):
+            what = ("a directory" if stat.S_ISDIR(mode) else "a FIFO" if stat.S_ISFIFO(mode)
+                    else "a socket" if stat.S_ISSOCK(mode) else "a device")
+            _set_aside_unreadable(jpath, f"not a regular file but {what}", report)
             return None
-        return _finalise_locked(jpath, products)
+        if not _try_lock(fd):
+            log.info("%s: in use by a running writer; left alone", jpath)
+            return None
+        if not jpath.exists():  # closed and unlinked between glob and lock
+            return None
+        try:
+            return _finalise_locked(jpath, products, report)
+        except _Unreadable as exc:
+            _set_aside_unreadable(jpath, str(exc), report)
+            return None
     finally:
         os.close(fd)
 
 
-def _finalise_locked(jpath: Path, products=None) -> Path | None:
-    """Journal (locked by the caller) -> FITS, then remove the journal; see :func:`recover`."""
+def _finalise_locked(jpath: Path, products=None, report=None) -> Path | None:
+    """Journal (locked by the caller) -> FITS, then remove the journal (or keep it as
+    ``.bad`` if it was damaged); see :func:`recover`."""
     out_dir = jpath.parent
-    contents = read_journal(jpath)
+    try:
+        contents = read_journal(jpath)
+    except FileNotFoundError:
+        return None
+    except OSError as exc:
+        raise _Unreadable(_why(exc)) from exc
     scan = jpath.name[: -len(".journal")]
-    if not contents.header_ok:
-        if contents.torn_bytes == 0:  # empty file: crash right after creating it
+    damaged = bool(contents.damaged or contents.header_note)
+    if not contents.rows:
+        if not contents.header_ok and contents.torn_bytes == 0:  # crash right after creating it
             jpath.unlink()
+        elif not contents.header_ok or damaged:
+            bad = _set_aside(jpath, ".bad")
+            where = f"kept as {bad}" if bad is not None else "left in place (cannot rename it)"
+            _say(report, "warning", f"{jpath}: damaged and no integration in it is intact "
+                 f"({contents.dropped_bytes} bytes); {where}")
         else:
-            bad = jpath.with_name(jpath.name + ".bad")
-            os.replace(jpath, bad)
-            log.warning("%s: header record damaged; %d bytes kept as %s",
-                        jpath, contents.torn_bytes, bad)
+            _say(report, "warning", f"interrupted scan {scan} had no integration; removed its "
+                 f"journal (dropped {contents.torn_bytes} torn bytes)")
+            jpath.unlink()
         _fsync_dir(out_dir)
         return None
-    path = None
-    if contents.rows:
-        path = _write_fits_atomic(out_dir, scan, _with_notes(contents.header, contents.notes),
-                                  contents.nchan, contents.rows, contents.tsys, products,
-                                  contents.rfi)
-        log.warning("recovered %d integrations of interrupted scan %s into %s; "
-                    "dropped %d torn bytes", len(contents.rows), scan, path, contents.torn_bytes)
+    header = contents.header if contents.header is not None else {"BUNIT": None}
+    path = _write_fits_atomic(out_dir, scan, _with_history(header, contents), contents.nchan,
+                              contents.rows, contents.tsys, products, contents.rfi)
+    n = len(contents.rows)
+    if damaged:
+        bad = _set_aside(jpath, ".bad")
+        if bad is None:   # keep it rather than lose the evidence; a later start does it again
+            kept = "the original could not be renamed and stays"
+        else:
+            kept = f"the original is kept as {bad.name}"
+        _say(report, "error", f"recovered {n} integrations of interrupted scan {scan} into "
+             f"{path}, but its journal was damaged: {_damage_text(contents)}; {kept}")
     else:
-        log.warning("interrupted scan %s had no integration; removed its journal "
-                    "(dropped %d torn bytes)", scan, contents.torn_bytes)
-    jpath.unlink()
+        _say(report, "warning", f"recovered {n} integrations of interrupted scan {scan} into "
+             f"{path}; dropped {contents.torn_bytes} torn bytes")
+        jpath.unlink()
     _fsync_dir(out_dir)
     return path
 

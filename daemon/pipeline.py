@@ -620,9 +620,7 @@ class Daemon:
             self.switch.close()
             raise
         products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
-        result.recovered = archive.recover(self.out_dir, products=products)
-        for p in result.recovered:
-            self.log(f"recovered integrations of an interrupted scan into {p}")
+        result.recovered = archive.recover(self.out_dir, products=products, report=self.event)
         blocks_q: queue.Queue = queue.Queue(maxsize=_QUEUE_BLOCKS)
         self.store = ScanStore(self.out_dir, self.nchan, products, self.event,
                                hold_bytes=int(self.cfg["output"]["hold_mb"] * 1e6),

@@ -252,18 +252,23 @@ class ScanStore:
         if path:
             self._saved(path, rows)
 
-    def _saved(self, path: Path, rows: int) -> None:
+    def _saved(self, path: Path, rows: int | None) -> None:
         self.files.append(path)
-        self.file_rows[str(path)] = rows
+        if rows is not None:
+            self.file_rows[str(path)] = rows
 
     def _retry_unfinished(self) -> None:
+        """Make the FITS files that could not be made at close. A journal damaged meanwhile is
+        read past its damage and kept as ``.bad``, one that can no longer be read is set aside
+        (:func:`archive.finalise_journal`); either is an event, and neither is tried again."""
         for jpath in list(self._unfinished):
             try:
                 rows = archive.count_rows(jpath)
-                path = archive.finalise_journal(jpath, self.products)
-            except FileNotFoundError:
-                path = None
-            except OSError:
+            except OSError:                 # gone, or unreadable: finalise_journal says which
+                rows = None
+            try:
+                path = archive.finalise_journal(jpath, self.products, report=self.event)
+            except OSError:                 # still no room: the journal is whole, try later
                 continue
             self._unfinished.remove(jpath)
             if path is not None:
