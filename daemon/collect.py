@@ -11,7 +11,14 @@ checks each message against the wire schema (:mod:`spinflip.daemon.wire`), and
 
 Which station a message belongs to is decided by the socket it arrived on, one socket per
 station, never by its content: a message from station A is relayed and archived as A.
-A message that fails the schema is counted as a decode error of its station and dropped.
+A message that fails the schema is counted as a decode error of its station, dropped and
+logged in one line of at most about 200 characters (the 1st, 2nd, 4th, 8th ... of a station),
+and collecting goes on for it and the others. Each SUB socket takes frames of at most
+:data:`spinflip.daemon.wire.MAX_FRAME_BYTES` (``zmq.MAXMSGSIZE``): ZeroMQ drops the connection
+of a station that announces a larger frame before buffering it, and reconnects. A message
+marked ``"replay": true`` that is the latest one already taken from its station and topic
+(same ``seq`` and ``time_utc``; a station re-sends its latest messages to every subscriber
+when one joins) is counted as ``replayed`` and neither relayed nor archived again.
 
 Security: with ``--keys DIR`` each SUB socket is a CURVE client with the keys of
 :class:`spinflip.daemon.keys.ClientSecurity` (``DIR/client.key``, ``DIR/client.key_secret``,
@@ -364,6 +371,8 @@ class StationCount:
     archived: int = 0
     decode_errors: int = 0
     repeated: int = 0
+    replayed: int = 0
+    latest_ids: dict = field(default_factory=dict, repr=False)
     by_topic: dict = field(default_factory=dict)
     last_error: str | None = None
 
@@ -374,6 +383,8 @@ class StationCount:
                 f"{self.decode_errors} decode errors")
         if self.repeated:
             text += f", {self.repeated} repeated spectra not archived again"
+        if self.replayed:
+            text += f", {self.replayed} replayed messages already had"
         if self.last_error:
             text += f"; last: {self.last_error}"
         return text
@@ -490,6 +501,7 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
         for name, endpoint in stations:
             sock = ctx.socket(zmq.SUB)
             sock.linger = 0
+            sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)
             sockets[sock] = report.stations[name]
             if keys_dir is not None:
                 _station_security(keys_dir, name).apply(sock)
@@ -529,17 +541,22 @@ def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) 
     count.received += 1
     try:
         msg = wire.decode(frames)
-    except wire.WireError as exc:
+        header = dict(msg.header)
+        header["station"] = count.name
+        out = wire.encode(msg.topic, header,
+                          {d["name"]: (msg.arrays[d["name"]], d["unit"])
+                           for d in msg.header["arrays"]})
+    except (wire.WireError, ValueError, TypeError, RecursionError) as exc:
         count.decode_errors += 1
-        count.last_error = str(exc)
+        count.last_error = wire.one_line(str(exc) or type(exc).__name__)
         _warn_decode_error(count, log_line)
         return
     count.by_topic[msg.topic] = count.by_topic.get(msg.topic, 0) + 1
-    header = dict(msg.header)
-    header["station"] = count.name
-    out = wire.encode(msg.topic, header,
-                      {d["name"]: (msg.arrays[d["name"]], d["unit"])
-                       for d in msg.header["arrays"]})
+    ident = (header.get("seq"), header["time_utc"])
+    if header.get("replay") is True and count.latest_ids.get(msg.topic) == ident:
+        count.replayed += 1               # the latest message of this topic, already taken
+        return
+    count.latest_ids[msg.topic] = ident
     if relay is not None:
         try:
             relay.send_multipart(out, zmq.NOBLOCK)

@@ -9,13 +9,25 @@ it for a subscriber that stops reading, without slowing the others; subscribers 
 the per-topic sequence number ``seq`` of the header.
 
 Late joiners: the socket is an XPUB, so a new subscription arrives as a message; the
-publisher then sends the latest message of every topic at once, so a viewer that joins has the
-newest spectrum, status and progress within a moment.
+publisher then sends the latest message of every topic it covers at once, so a viewer that
+joins has the newest spectrum, status and progress within a moment. PUB fans out, so the
+subscribers already connected get this replay too: each replayed message carries
+``"replay": true`` (and its original ``seq``), and readers skip one they already have (wire
+docstring, Transport).
+
+Hostile peers: the socket takes frames of at most :data:`MAX_SUBSCRIPTION_FRAME` bytes
+(``zmq.MAXMSGSIZE``; a peer that announces a larger frame, also during the handshake, is
+disconnected before anything is buffered), and runs in ``XPUB_MANUAL`` mode: the publisher
+itself passes a subscription to the socket only when it is a prefix of a topic (``""``
+included), so the socket's subscription table holds at most :data:`MAX_SUBSCRIPTIONS_PER_PEER`
+entries per peer however many subscriptions a peer sends; any other is ignored and counted
+(``refused_subscriptions``).
 """
 
 from __future__ import annotations
 
 import collections
+import json
 import threading
 
 import zmq
@@ -26,6 +38,23 @@ _QUEUE_PER_TOPIC = 8
 _SNDHWM = 200
 _SNDBUF = 0          # kernel send buffer per connection, bytes; 0: the system's default
 _POLL_MS = 50
+#: Largest frame the data socket takes from a peer, bytes (zmq.MAXMSGSIZE): a subscription
+#: is 1 + a topic's length; the CURVE handshake's largest command is a few hundred bytes.
+MAX_SUBSCRIPTION_FRAME = 1024
+#: The subscriptions the publisher passes to its socket: every prefix of every topic.
+ACCEPTED_SUBSCRIPTIONS = frozenset(t[:i] for t in wire.TOPICS for i in range(len(t) + 1))
+#: Most subscription-table entries one peer can hold.
+MAX_SUBSCRIPTIONS_PER_PEER = len(ACCEPTED_SUBSCRIPTIONS)
+#: Subscriptions read per wake-up before the publisher turns to sending again.
+_SUBSCRIPTION_BURST = 256
+
+
+def _as_replay(frames):
+    """The frames of a message marked ``"replay": true`` (header re-written, payload shared)."""
+    header = json.loads(bytes(frames[1]))
+    header["replay"] = True
+    text = json.dumps(header, allow_nan=False, ensure_ascii=False, separators=(",", ":"))
+    return [frames[0], text.encode("utf-8"), *frames[2:]]
 
 
 class PublishError(RuntimeError):
@@ -51,6 +80,9 @@ class Publisher:
         self._seq = {t: 0 for t in wire.TOPICS}
         self._queues = {t: collections.deque() for t in wire.TOPICS}
         self._latest: dict = {}
+        self._replay: dict = {}
+        self.refused_subscriptions = 0
+        self.replayed = 0
         self._lock = threading.Lock()
         self._wake = threading.Event()
         self._stop = threading.Event()
@@ -64,7 +96,8 @@ class Publisher:
         sock.setsockopt(zmq.SNDHWM, _SNDHWM)
         if _SNDBUF:
             sock.setsockopt(zmq.SNDBUF, _SNDBUF)
-        sock.setsockopt(zmq.XPUB_VERBOSE, 1)
+        sock.setsockopt(zmq.MAXMSGSIZE, MAX_SUBSCRIPTION_FRAME)
+        sock.setsockopt(zmq.XPUB_MANUAL, 1)
         if self.security is not None:
             self.security.apply(sock)
         try:
@@ -104,15 +137,7 @@ class Publisher:
         poller.register(self.socket, zmq.POLLIN)
         while not self._stop.is_set():
             if dict(poller.poll(_POLL_MS)).get(self.socket):
-                try:
-                    msg = self.socket.recv(zmq.NOBLOCK)
-                except zmq.Again:
-                    msg = b""
-                if msg[:1] == b"\x01":                 # a new subscription: bring it up to date
-                    with self._lock:
-                        latest = list(self._latest.items())
-                    for topic, frames in latest:
-                        self._send(topic, frames)
+                self._read_subscriptions()
             self._wake.clear()
             while True:
                 item = None
@@ -121,10 +146,40 @@ class Publisher:
                         if q:
                             item = (topic, q.popleft())
                             self._latest[topic] = item[1]
+                            self._replay.pop(topic, None)
                             break
                 if item is None:
                     break
                 self._send(*item)
+
+    def _read_subscriptions(self) -> None:
+        """Pass the (un)subscriptions that name a topic prefix to the socket (XPUB_MANUAL) and
+        bring each new subscriber up to date; ignore and count any other."""
+        for _ in range(_SUBSCRIPTION_BURST):
+            try:
+                msg = self.socket.recv(zmq.NOBLOCK)
+            except zmq.Again:
+                return
+            kind, prefix = msg[:1], msg[1:]
+            try:
+                text = prefix.decode("ascii")
+            except UnicodeDecodeError:
+                text = None
+            if kind not in (b"\x00", b"\x01") or text not in ACCEPTED_SUBSCRIPTIONS:
+                self.refused_subscriptions += 1
+                continue
+            if kind == b"\x00":
+                self.socket.setsockopt(zmq.UNSUBSCRIBE, prefix)
+                continue
+            self.socket.setsockopt(zmq.SUBSCRIBE, prefix)
+            with self._lock:
+                latest = [(t, f) for t, f in self._latest.items() if t.startswith(text)]
+            for topic, frames in latest:
+                replay = self._replay.get(topic)
+                if replay is None:
+                    replay = self._replay[topic] = _as_replay(frames)
+                self._send(topic, replay)
+                self.replayed += 1
 
     def stop(self) -> None:
         """Send what is queued, then close (safe to call twice)."""

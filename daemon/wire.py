@@ -640,7 +640,7 @@ def _depth(value) -> int:
     return deepest
 
 
-def _one_line(text: str, limit: int = MAX_ERROR_CHARS) -> str:
+def one_line(text: str, limit: int = MAX_ERROR_CHARS) -> str:
     """``text`` on one line (control characters as spaces), cut to ``limit`` characters."""
     flat = " ".join("".join(c if c.isprintable() else " " for c in text[: 4 * limit]).split())
     return flat if len(flat) <= limit else flat[: limit - 3] + "..."
@@ -671,12 +671,12 @@ def decode(frames) -> Message:
     try:
         return _decode(frames)
     except WireError as exc:
-        raise WireError(_one_line(str(exc))) from None
+        raise WireError(one_line(str(exc))) from None
     except RecursionError:
         raise WireError(f"header nests too deeply: at most {MAX_DEPTH} levels") from None
     except (ValueError, TypeError, OverflowError, MemoryError) as exc:
         # e.g. an integer longer than Python converts (ValueError): refused, never raised on
-        raise WireError(_one_line(f"message not usable: {type(exc).__name__}: {exc}")) \
+        raise WireError(one_line(f"message not usable: {type(exc).__name__}: {exc}")) \
             from None
 
 
