@@ -81,6 +81,7 @@ from pathlib import Path
 
 import numpy as np
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from . import wire
 from .archive import _fsync_dir, _write_all
@@ -372,6 +373,7 @@ class StationCount:
     decode_errors: int = 0
     repeated: int = 0
     replayed: int = 0
+    disconnects: int = 0
     latest_ids: dict = field(default_factory=dict, repr=False)
     by_topic: dict = field(default_factory=dict)
     last_error: str | None = None
@@ -385,6 +387,8 @@ class StationCount:
             text += f", {self.repeated} repeated spectra not archived again"
         if self.replayed:
             text += f", {self.replayed} replayed messages already had"
+        if self.disconnects:
+            text += f", {self.disconnects} connections ended"
         if self.last_error:
             text += f"; last: {self.last_error}"
         return text
@@ -486,6 +490,7 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
     report = CollectReport({n: StationCount(n, e) for n, e in stations})
     ctx = zmq.Context()
     sockets: dict = {}
+    monitors: dict = {}
     archive = SpectrumArchive(archive_dir) if archive_dir is not None else None
     relay = None
     t0 = time.monotonic()
@@ -511,12 +516,22 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
             except zmq.ZMQError as exc:
                 raise ValueError(f"station {name} {endpoint}: cannot connect ({exc})") from None
             poller.register(sock, zmq.POLLIN)
+            monitor = sock.get_monitor_socket(zmq.EVENT_DISCONNECTED)
+            monitors[monitor] = (sock, endpoint)
+            poller.register(monitor, zmq.POLLIN)
         deadline = None if duration_s is None else t0 + duration_s
         while not stop_event.is_set():
             wait_s = POLL_S if deadline is None else min(POLL_S, deadline - time.monotonic())
             if wait_s <= 0:
                 break
             for sock, _ev in poller.poll(int(math.ceil(wait_s * 1000))):
+                if sock in monitors:
+                    try:
+                        recv_monitor_message(sock, zmq.NOBLOCK)
+                    except zmq.Again:
+                        continue
+                    _reconnect(monitors[sock], sockets[monitors[sock][0]], log_line)
+                    continue
                 count = sockets[sock]
                 for _ in range(BURST):
                     try:
@@ -525,6 +540,9 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
                         break
                     _handle(count, frames, relay, archive, log_line)
     finally:
+        for monitor, (sock, _endpoint) in monitors.items():
+            sock.disable_monitor()
+            monitor.close()
         for sock in sockets:
             sock.close()
         if relay is not None:
@@ -534,6 +552,25 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
             archive.close()
         report.elapsed_s = time.monotonic() - t0
     return report
+
+
+def _reconnect(entry, count: StationCount, log_line) -> None:
+    """A station's connection ended: count it, say so (1st, 2nd, 4th ...), connect anew.
+
+    ZeroMQ reconnects by itself after a lost connection, but not after a protocol error such
+    as a frame over ``MAXMSGSIZE``; disconnect + connect covers both without a second
+    connection to the station."""
+    sock, endpoint = entry
+    count.disconnects += 1
+    n = count.disconnects
+    if n & (n - 1) == 0:
+        log_line(f"station {count.name}: connection ended ({n} so far; the station stopped, "
+                 f"or sent a frame over {wire.MAX_FRAME_BYTES} bytes): connecting again")
+    try:
+        sock.disconnect(endpoint)
+    except zmq.ZMQError:
+        pass                             # the session is gone already (protocol error)
+    sock.connect(endpoint)
 
 
 def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) -> None:
