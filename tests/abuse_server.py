@@ -12,7 +12,6 @@ so a test can tell how often a command was applied. Memory is read by the test f
 import json
 import sys
 import threading
-import time
 
 from spinflip.daemon import wire
 from spinflip.daemon.control import ControlServer
@@ -68,5 +67,4 @@ def main() -> int:
 
 
 if __name__ == "__main__":
-    time.sleep(0)
     sys.exit(main())
