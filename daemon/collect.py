@@ -11,7 +11,14 @@ checks each message against the wire schema (:mod:`spinflip.daemon.wire`), and
 
 Which station a message belongs to is decided by the socket it arrived on, one socket per
 station, never by its content: a message from station A is relayed and archived as A.
-A message that fails the schema is counted as a decode error of its station and dropped.
+A message that fails the schema is counted as a decode error of its station, dropped and
+logged in one line of at most about 200 characters (the 1st, 2nd, 4th, 8th ... of a station),
+and collecting goes on for it and the others. Each SUB socket takes frames of at most
+:data:`spinflip.daemon.wire.MAX_FRAME_BYTES` (``zmq.MAXMSGSIZE``): ZeroMQ drops the connection
+of a station that announces a larger frame before buffering it, and reconnects. A message
+marked ``"replay": true`` that is the latest one already taken from its station and topic
+(same ``seq`` and ``time_utc``; a station re-sends its latest messages to every subscriber
+when one joins) is counted as ``replayed`` and neither relayed nor archived again.
 
 Security: with ``--keys DIR`` each SUB socket is a CURVE client with the keys of
 :class:`spinflip.daemon.keys.ClientSecurity` (``DIR/client.key``, ``DIR/client.key_secret``,
@@ -74,6 +81,7 @@ from pathlib import Path
 
 import numpy as np
 import zmq
+from zmq.utils.monitor import recv_monitor_message
 
 from . import wire
 from .archive import _fsync_dir, _write_all
@@ -364,6 +372,9 @@ class StationCount:
     archived: int = 0
     decode_errors: int = 0
     repeated: int = 0
+    replayed: int = 0
+    disconnects: int = 0
+    latest_ids: dict = field(default_factory=dict, repr=False)
     by_topic: dict = field(default_factory=dict)
     last_error: str | None = None
 
@@ -374,6 +385,10 @@ class StationCount:
                 f"{self.decode_errors} decode errors")
         if self.repeated:
             text += f", {self.repeated} repeated spectra not archived again"
+        if self.replayed:
+            text += f", {self.replayed} replayed messages already had"
+        if self.disconnects:
+            text += f", {self.disconnects} connections ended"
         if self.last_error:
             text += f"; last: {self.last_error}"
         return text
@@ -475,6 +490,7 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
     report = CollectReport({n: StationCount(n, e) for n, e in stations})
     ctx = zmq.Context()
     sockets: dict = {}
+    monitors: dict = {}
     archive = SpectrumArchive(archive_dir) if archive_dir is not None else None
     relay = None
     t0 = time.monotonic()
@@ -490,6 +506,7 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
         for name, endpoint in stations:
             sock = ctx.socket(zmq.SUB)
             sock.linger = 0
+            sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)
             sockets[sock] = report.stations[name]
             if keys_dir is not None:
                 _station_security(keys_dir, name).apply(sock)
@@ -499,12 +516,22 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
             except zmq.ZMQError as exc:
                 raise ValueError(f"station {name} {endpoint}: cannot connect ({exc})") from None
             poller.register(sock, zmq.POLLIN)
+            monitor = sock.get_monitor_socket(zmq.EVENT_DISCONNECTED)
+            monitors[monitor] = (sock, endpoint)
+            poller.register(monitor, zmq.POLLIN)
         deadline = None if duration_s is None else t0 + duration_s
         while not stop_event.is_set():
             wait_s = POLL_S if deadline is None else min(POLL_S, deadline - time.monotonic())
             if wait_s <= 0:
                 break
             for sock, _ev in poller.poll(int(math.ceil(wait_s * 1000))):
+                if sock in monitors:
+                    try:
+                        recv_monitor_message(sock, zmq.NOBLOCK)
+                    except zmq.Again:
+                        continue
+                    _reconnect(monitors[sock], sockets[monitors[sock][0]], log_line)
+                    continue
                 count = sockets[sock]
                 for _ in range(BURST):
                     try:
@@ -513,6 +540,9 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
                         break
                     _handle(count, frames, relay, archive, log_line)
     finally:
+        for monitor, (sock, _endpoint) in monitors.items():
+            sock.disable_monitor()
+            monitor.close()
         for sock in sockets:
             sock.close()
         if relay is not None:
@@ -524,22 +554,46 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
     return report
 
 
+def _reconnect(entry, count: StationCount, log_line) -> None:
+    """A station's connection ended: count it, say so (1st, 2nd, 4th ...), connect anew.
+
+    ZeroMQ reconnects by itself after a lost connection, but not after a protocol error such
+    as a frame over ``MAXMSGSIZE``; disconnect + connect covers both without a second
+    connection to the station."""
+    sock, endpoint = entry
+    count.disconnects += 1
+    n = count.disconnects
+    if n & (n - 1) == 0:
+        log_line(f"station {count.name}: connection ended ({n} so far; the station stopped, "
+                 f"or sent a frame over {wire.MAX_FRAME_BYTES} bytes): connecting again")
+    try:
+        sock.disconnect(endpoint)
+    except zmq.ZMQError:
+        pass                             # the session is gone already (protocol error)
+    sock.connect(endpoint)
+
+
 def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) -> None:
     """Check, restamp, relay and archive one message of station ``count.name``."""
     count.received += 1
     try:
         msg = wire.decode(frames)
-    except wire.WireError as exc:
+        header = dict(msg.header)
+        header["station"] = count.name
+        out = wire.encode(msg.topic, header,
+                          {d["name"]: (msg.arrays[d["name"]], d["unit"])
+                           for d in msg.header["arrays"]})
+    except (wire.WireError, ValueError, TypeError, RecursionError) as exc:
         count.decode_errors += 1
-        count.last_error = str(exc)
+        count.last_error = wire.one_line(str(exc) or type(exc).__name__)
         _warn_decode_error(count, log_line)
         return
     count.by_topic[msg.topic] = count.by_topic.get(msg.topic, 0) + 1
-    header = dict(msg.header)
-    header["station"] = count.name
-    out = wire.encode(msg.topic, header,
-                      {d["name"]: (msg.arrays[d["name"]], d["unit"])
-                       for d in msg.header["arrays"]})
+    ident = (header.get("seq"), header["time_utc"])
+    if header.get("replay") is True and count.latest_ids.get(msg.topic) == ident:
+        count.replayed += 1               # the latest message of this topic, already taken
+        return
+    count.latest_ids[msg.topic] = ident
     if relay is not None:
         try:
             relay.send_multipart(out, zmq.NOBLOCK)

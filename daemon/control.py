@@ -1,12 +1,23 @@
-"""The control channel of the daemon: JSON commands over a ZeroMQ REP socket, and its client.
+"""The control channel of the daemon: JSON commands over a ZeroMQ socket, and its client.
 
 A request is one ZeroMQ frame of at most :data:`MAX_REQUEST_BYTES`, holding a UTF-8 JSON object
 
-    ``{"cmd": NAME, "args": {...}}``      (``"args"`` may be left out: no arguments)
+    ``{"cmd": NAME, "args": {...}, "id": ID}``   (``"args"`` may be left out: no arguments;
+                                                  ``"id"`` may be left out: no retry safety)
 
 and every request gets exactly one reply frame, a JSON object
 
-    ``{"ok": true, "result": {...}}``  or  ``{"ok": false, "error": "one line"}``.
+    ``{"ok": true, "result": {...}}``  or  ``{"ok": false, "error": "one line"}``
+
+(with ``"id": ID`` added when the request had one). Clients use REQ sockets (or DEALER with
+the empty delimiter frame REQ adds).
+
+Retrying safely: ``ID`` is a string of 1 to :data:`MAX_ID_CHARS` printable ASCII characters
+the client makes up (e.g. a random UUID). The server remembers the reply to each request with
+an id, the last :data:`ID_CACHE_SIZE` for :data:`ID_CACHE_S` s, and answers a request whose id
+it remembers with that reply again without running the command again; the same id with
+another command or other arguments is refused. :func:`request` sends an id and, when no reply
+comes, sends the same request again (same id) on a new connection, within its timeout.
 
 The commands and their arguments are the table :data:`COMMANDS`. Checking is strict: bytes
 that are not UTF-8, JSON that is not an object, top-level keys other than ``cmd`` and ``args``,
@@ -16,11 +27,17 @@ duplicate keys, unknown commands, unknown or missing arguments, a value of the w
 was wrong, the value, and what is allowed. Numbers may be given as JSON integers; they reach
 the handler as ``float``. Optional arguments that were not given are absent from ``args``.
 
-:class:`ControlServer` is one thread owning one REP socket. It polls with a short timeout, so
-:meth:`ControlServer.stop` returns promptly; it answers every message, even one of several
-frames or an oversize one, so a REP socket is never left waiting to send; and an exception
-from the handler other than :class:`CommandError` becomes an ``"internal error: ..."`` reply
-(logged with its traceback and counted), never the end of the thread.
+:class:`ControlServer` is one thread owning one ROUTER socket. It polls with a short timeout,
+so :meth:`ControlServer.stop` returns promptly; it answers every request that has a reply
+envelope (an empty delimiter frame), even one of several frames or an oversize one, and
+drops a message without one (nobody to answer); replies are sent without blocking, so a
+peer that does not read cannot hold the server up; and an exception from the handler other
+than :class:`CommandError` becomes an ``"internal error: ..."`` reply (logged with its
+traceback and counted), never the end of the thread. A ROUTER keeps no send/receive state
+between messages, unlike REP, so no peer can leave it waiting. Hostile peers: a frame over
+:data:`MAX_FRAME_BYTES` (``zmq.MAXMSGSIZE``, also during the handshake) closes its connection
+before it is buffered; a connection that has not finished its ZeroMQ handshake within
+:data:`HANDSHAKE_S` s is closed; at most :data:`RCVHWM` requests are queued per peer.
 
 :func:`request` is the client (one REQ socket per call, ``LINGER`` 0, a bounded wait), and
 :func:`ctl_main` is ``spinflip ctl [--connect ENDPOINT] [--keys DIR] COMMAND [KEY=VALUE ...]``.
@@ -37,12 +54,14 @@ RFC 8259 (JSON; numbers are finite, UTF-8 on the wire).
 
 from __future__ import annotations
 
+import collections
 import json
 import logging
 import math
 import sys
 import threading
 import time
+import uuid
 from dataclasses import dataclass, field
 from types import MappingProxyType
 from typing import Any, Callable, Mapping
@@ -68,6 +87,20 @@ _QUOTE_MAX_CHARS = 40
 OBJECT_MAX_CHARS = 68
 #: Example of a well-formed request, quoted in error lines.
 _EXAMPLE = '{"cmd": "status"}'
+#: Largest frame the control socket takes from a peer, bytes (``zmq.MAXMSGSIZE``): twice the
+#: largest request, so a slightly oversize request is still answered with an error line.
+MAX_FRAME_BYTES = 2 * MAX_REQUEST_BYTES
+#: Longest a connection may take over its ZeroMQ handshake before it is closed, s.
+HANDSHAKE_S = 5.0
+#: Requests queued per peer before ZeroMQ stops reading from it.
+RCVHWM = 16
+#: Longest request id, characters.
+MAX_ID_CHARS = 64
+#: Replies remembered by request id, and for how long, s.
+ID_CACHE_SIZE = 256
+ID_CACHE_S = 60.0
+#: How many times :func:`request` sends a request in all when no reply comes.
+REQUEST_ATTEMPTS = 3
 
 
 class CommandError(ValueError):
@@ -268,13 +301,34 @@ def validate_args(cmd: str, args: Any) -> dict[str, Any]:
 
 
 def validate_request(raw: bytes) -> tuple[str, dict[str, Any]]:
+    """Decode and check one request frame (see :func:`parse_request`, which also returns the
+    request's id).
+
+    Returns
+    -------
+    cmd, args
+        As :func:`parse_request`.
+    """
+    cmd, args, _request_id = parse_request(raw)
+    return cmd, args
+
+
+def _check_id(value: Any) -> str:
+    if not (isinstance(value, str) and 1 <= len(value) <= MAX_ID_CHARS and value.isascii()
+            and value.isprintable()):
+        raise CommandError(f'"id" = {_quote(value)}: expected printable ASCII text of 1 to '
+                           f"{MAX_ID_CHARS} characters")
+    return value
+
+
+def parse_request(raw: bytes) -> tuple[str, dict[str, Any], str | None]:
     """Decode and check one request frame.
 
     Parameters
     ----------
     raw : bytes
-        The request frame: a UTF-8 JSON object ``{"cmd": NAME, "args": {...}}`` of at most
-        :data:`MAX_REQUEST_BYTES` bytes; ``"args"`` may be left out.
+        The request frame: a UTF-8 JSON object ``{"cmd": NAME, "args": {...}, "id": ID}`` of
+        at most :data:`MAX_REQUEST_BYTES` bytes; ``"args"`` and ``"id"`` may be left out.
 
     Returns
     -------
@@ -282,6 +336,8 @@ def validate_request(raw: bytes) -> tuple[str, dict[str, Any]]:
         A name in :data:`COMMANDS`.
     args : dict
         Its arguments, checked (see :func:`validate_args`).
+    request_id : str or None
+        The request's id, None when it has none.
 
     Raises
     ------
@@ -321,8 +377,10 @@ def validate_request(raw: bytes) -> tuple[str, dict[str, Any]]:
         raise CommandError(f"request is {_json_type(obj)}, not a JSON object: expected "
                            f'{{"cmd": NAME, "args": {{...}}}}')
     for key in obj:
-        if key not in ("cmd", "args"):
-            raise CommandError(f"request has unknown key {_quote(key)}: allowed are cmd, args")
+        if key not in ("cmd", "args", "id"):
+            raise CommandError(f"request has unknown key {_quote(key)}: allowed are cmd, args, "
+                               "id")
+    request_id = _check_id(obj["id"]) if "id" in obj else None
     if "cmd" not in obj:
         raise CommandError(f'request has no "cmd": expected one of {_command_names()}')
     cmd = obj["cmd"]
@@ -331,22 +389,24 @@ def validate_request(raw: bytes) -> tuple[str, dict[str, Any]]:
                            f"{_command_names()}")
     if cmd not in COMMANDS:
         raise CommandError(f"unknown command {_quote(cmd)}: expected one of {_command_names()}")
-    return cmd, validate_args(cmd, obj.get("args", {}))
+    return cmd, validate_args(cmd, obj.get("args", {})), request_id
 
 
-def _encode_reply(reply: dict) -> bytes:
+def _encode_reply(reply: dict, request_id: str | None = None) -> bytes:
+    if request_id is not None:
+        reply = dict(reply, id=request_id)
     return json.dumps(reply, allow_nan=False, separators=(",", ":")).encode("ascii")
 
 
-def _error_reply(text: str) -> bytes:
-    return _encode_reply({"ok": False, "error": _one_line(text)})
+def _error_reply(text: str, request_id: str | None = None) -> bytes:
+    return _encode_reply({"ok": False, "error": _one_line(text)}, request_id)
 
 
 Handler = Callable[[str, dict], dict]
 
 
 class ControlServer:
-    """A thread answering control requests on a REP socket.
+    """A thread answering control requests on a ROUTER socket.
 
     Parameters
     ----------
@@ -371,14 +431,15 @@ class ControlServer:
         Error replies sent (refused requests and internal errors).
     internal_errors : int
         Handler exceptions other than :class:`CommandError`.
+    repeats : int
+        Requests answered from the remembered replies (an id seen before), not run again.
     bound_endpoint : str or None
         The endpoint actually bound (``LAST_ENDPOINT``), once started.
 
     Notes
     -----
     The socket is made, bound, used and closed in the server thread only (ZeroMQ sockets are
-    not thread-safe). Each message is answered with exactly one frame: a REP socket that
-    received must send before it can receive again.
+    not thread-safe). Each request is answered with exactly one frame after its envelope.
     """
 
     def __init__(self, endpoint: str, handler: Handler, security: Any = None,
@@ -392,7 +453,9 @@ class ControlServer:
         self.requests = 0
         self.errors = 0
         self.internal_errors = 0
+        self.repeats = 0
         self.bound_endpoint: str | None = None
+        self._replies: collections.OrderedDict = collections.OrderedDict()
         self._stop = threading.Event()
         self._ready = threading.Event()
         self._bind_error: str | None = None
@@ -444,13 +507,16 @@ class ControlServer:
     def _run(self) -> None:
         ctx = self.context or zmq.Context.instance()
         try:
-            sock = ctx.socket(zmq.REP)
+            sock = ctx.socket(zmq.ROUTER)
         except zmq.ZMQError as exc:
             self._bind_error = f"control socket cannot be made: {exc}"
             self._ready.set()
             return
         try:
             sock.setsockopt(zmq.LINGER, 0)
+            sock.setsockopt(zmq.MAXMSGSIZE, MAX_FRAME_BYTES)
+            sock.setsockopt(zmq.HANDSHAKE_IVL, int(HANDSHAKE_S * 1000))
+            sock.setsockopt(zmq.RCVHWM, RCVHWM)
             if self.security is not None:
                 self.security.apply(sock)
             self._bind(sock)
@@ -470,16 +536,24 @@ class ControlServer:
                 try:
                     if not sock.poll(poll_ms, zmq.POLLIN):
                         continue
-                    frames = sock.recv_multipart()
+                    frames = sock.recv_multipart(zmq.NOBLOCK)
+                except zmq.Again:
+                    continue
                 except zmq.ZMQError as exc:
                     if self._stop.is_set() or exc.errno == zmq.ETERM:
                         break
                     log.warning("control socket receive failed: %s", exc)
                     continue
                 self.requests += 1
-                reply = self._answer(frames)
+                # ROUTER: [peer id, envelope..., b"", request frames...]; the envelope goes back
                 try:
-                    sock.send(reply)
+                    split = frames.index(b"", 1)
+                except ValueError:
+                    self.errors += 1        # no reply envelope: nobody could read an answer
+                    continue
+                reply = self._answer(frames[split + 1:])
+                try:
+                    sock.send_multipart(frames[:split + 1] + [reply], zmq.NOBLOCK)
                 except zmq.ZMQError as exc:
                     self.errors += 1
                     log.warning("control reply could not be sent: %s", exc)
@@ -488,31 +562,60 @@ class ControlServer:
         finally:
             sock.close(0)
 
+    def _remembered(self, request_id: str, cmd: str, args: dict) -> bytes | None:
+        """The reply already given to ``request_id`` (None: not remembered); drops replies
+        older than :data:`ID_CACHE_S`."""
+        now = time.monotonic()
+        while self._replies:
+            oldest = next(iter(self._replies.values()))
+            if now - oldest[0] <= ID_CACHE_S:
+                break
+            self._replies.popitem(last=False)
+        entry = self._replies.get(request_id)
+        if entry is None:
+            return None
+        if entry[1] != (cmd, args):
+            raise CommandError(f'"id" = {_quote(request_id)} was given before to another '
+                               "request: make a new id for each request")
+        self.repeats += 1
+        return entry[2]
+
     def _answer(self, frames: list[bytes]) -> bytes:
-        """The one reply frame for one received message; never raises."""
+        """The one reply frame for one received request; never raises."""
+        request_id = None
         try:
             if len(frames) != 1:
                 raise CommandError(f"request has {len(frames)} frames: expected exactly one "
                                    f"frame holding a JSON object such as {_EXAMPLE}")
-            cmd, args = validate_request(frames[0])
+            cmd, args, request_id = parse_request(frames[0])
+            if request_id is not None:
+                remembered = self._remembered(request_id, cmd, args)
+                if remembered is not None:
+                    return remembered
             result = self.handler(cmd, args)
             if not isinstance(result, dict):
                 raise TypeError(f"handler for {cmd!r} returned {type(result).__name__}, "
                                 f"not dict")
-            return _encode_reply({"ok": True, "result": result})
+            reply = _encode_reply({"ok": True, "result": result}, request_id)
         except CommandError as exc:
             self.errors += 1
-            return _error_reply(str(exc) or "request refused")
+            return _error_reply(str(exc) or "request refused", request_id)
         except Exception as exc:  # noqa: BLE001 - the server thread must never die
             self.errors += 1
             self.internal_errors += 1
             log.exception("control handler failed")
-            return _error_reply(f"internal error: {type(exc).__name__}: {exc}")
+            reply = _error_reply(f"internal error: {type(exc).__name__}: {exc}", request_id)
+        if request_id is not None:
+            self._replies[request_id] = (time.monotonic(), (cmd, args), reply)
+            while len(self._replies) > ID_CACHE_SIZE:
+                self._replies.popitem(last=False)
+        return reply
 
 
 def request(endpoint: str, cmd: str, args: dict | None = None, security: Any = None,
-            timeout_s: float = DEFAULT_TIMEOUT_S, context: zmq.Context | None = None) -> dict:
-    """Send one command to a daemon and return its reply.
+            timeout_s: float = DEFAULT_TIMEOUT_S, context: zmq.Context | None = None,
+            attempts: int = REQUEST_ATTEMPTS, request_id: str | None = None) -> dict:
+    """Send one command to a daemon and return its reply; safe to retry.
 
     Parameters
     ----------
@@ -525,14 +628,22 @@ def request(endpoint: str, cmd: str, args: dict | None = None, security: Any = N
     security : object, optional
         Anything with ``apply(socket)`` (e.g. ``keys.ClientSecurity``), called before connect.
     timeout_s : float
-        Longest wait for the reply, s.
+        Longest wait for the reply in all, s.
     context : zmq.Context, optional
         Default: ``zmq.Context.instance()``.
+    attempts : int
+        How many times the request is sent in all: each attempt waits ``timeout_s /
+        attempts`` for a reply on a new connection, then sends the same request (same id)
+        again; the daemon answers a repeat with the reply it already gave, without running
+        the command twice.
+    request_id : str, optional
+        The request's id (module docstring); default: a new random one.
 
     Returns
     -------
     dict
-        The reply: ``{"ok": True, "result": {...}}`` or ``{"ok": False, "error": "..."}``.
+        The reply: ``{"ok": True, "result": {...}}`` or ``{"ok": False, "error": "..."}``
+        (its ``"id"``, checked against the request's, left out).
 
     Raises
     ------
@@ -542,15 +653,48 @@ def request(endpoint: str, cmd: str, args: dict | None = None, security: Any = N
         No reply within ``timeout_s``, an endpoint that cannot be connected, or a reply that
         is not a control reply; one line.
     """
+    request_id = request_id or uuid.uuid4().hex
     body: dict[str, Any] = {"cmd": cmd}
     if args is not None:
         body["args"] = args
+    body["id"] = request_id
     try:
         payload = json.dumps(body, allow_nan=False).encode("utf-8")
     except (TypeError, ValueError) as exc:
         raise CommandError(f"{cmd}: arguments cannot be sent as JSON: {_one_line(exc, 120)}") \
             from None
     ctx = context or zmq.Context.instance()
+    attempts = max(1, int(attempts))
+    deadline = time.monotonic() + max(0.0, timeout_s)
+    frames = None
+    for attempt in range(attempts):
+        wait_s = (deadline - time.monotonic()) / (attempts - attempt)
+        frames = _send_once(ctx, endpoint, payload, security, max(0.0, wait_s))
+        if frames is not None:
+            break
+    if frames is None:
+        raise ControlError(f"no reply from {endpoint} within {timeout_s:g} s: "
+                           f"is spinflip run going?")
+    reply = None
+    if len(frames) == 1:
+        try:
+            reply = json.loads(frames[0].decode("utf-8"))
+        except (UnicodeDecodeError, ValueError):
+            reply = None
+    ok_form = (isinstance(reply, dict) and isinstance(reply.get("ok"), bool)
+               and reply.get("id", request_id) == request_id
+               and (isinstance(reply.get("result"), dict) if reply["ok"]
+                    else isinstance(reply.get("error"), str)))
+    if not ok_form:
+        raise ControlError(f"reply from {endpoint} is not a control reply: "
+                           f"{_quote(frames[0] if len(frames) == 1 else frames)}")
+    reply.pop("id", None)
+    return reply
+
+
+def _send_once(ctx: zmq.Context, endpoint: str, payload: bytes, security: Any,
+               wait_s: float) -> list[bytes] | None:
+    """One attempt on a new REQ socket: the reply frames, or None after ``wait_s`` s."""
     sock = ctx.socket(zmq.REQ)
     try:
         sock.setsockopt(zmq.LINGER, 0)
@@ -561,25 +705,11 @@ def request(endpoint: str, cmd: str, args: dict | None = None, security: Any = N
         except zmq.ZMQError as exc:
             raise ControlError(f"cannot connect to {endpoint!r}: {exc}") from None
         sock.send(payload)
-        if not sock.poll(max(0, int(timeout_s * 1000)), zmq.POLLIN):
-            raise ControlError(f"no reply from {endpoint} within {timeout_s:g} s: "
-                               f"is spinflip run going?")
-        frames = sock.recv_multipart()
+        if not sock.poll(int(wait_s * 1000), zmq.POLLIN):
+            return None
+        return sock.recv_multipart()
     finally:
         sock.close(0)
-    reply = None
-    if len(frames) == 1:
-        try:
-            reply = json.loads(frames[0].decode("utf-8"))
-        except (UnicodeDecodeError, ValueError):
-            reply = None
-    ok_form = (isinstance(reply, dict) and isinstance(reply.get("ok"), bool)
-               and (isinstance(reply.get("result"), dict) if reply["ok"]
-                    else isinstance(reply.get("error"), str)))
-    if not ok_form:
-        raise ControlError(f"reply from {endpoint} is not a control reply: "
-                           f"{_quote(frames[0] if len(frames) == 1 else frames)}")
-    return reply
 
 
 def parse_words(words: list[str]) -> tuple[str, dict[str, Any]]:

@@ -11,8 +11,20 @@ prefix; subscribe to ``""`` for every topic). No topic is a prefix of another. A
 drops messages for a subscriber that does not keep up: a subscriber sees every message it
 receives whole, but may miss some (the daemon counts its own drops in ``status.drops``; gaps
 in ``seq`` show all of them). A new subscription is answered at once with the latest message
-of each topic, so a subscriber that joins or reconnects has the current state at once, and
-may see again a message it had already received.
+of each topic, so a subscriber that joins or reconnects has the current state at once. PUB
+fans out to every subscriber, so this replay reaches the subscribers already connected as
+well: a replayed message carries ``"replay": true`` and its original ``seq``, and a reader
+that already has that message (same topic, ``station``, ``seq`` and ``time_utc`` as the
+latest one it took) ignores it. Only subscriptions that are a prefix of a topic (``""``
+included) are taken; any other is ignored.
+
+Limits: the daemon disconnects a peer that sends it a frame over 1 KiB on the data socket
+(subscriptions are a few bytes); a reader refuses a header over :data:`MAX_HEADER_BYTES`
+(64 KiB) or nested deeper than :data:`MAX_DEPTH` (16), more than :data:`MAX_ARRAYS` (16)
+payload frames, an array of more than :data:`MAX_DIMS` (8) dimensions, or payload over
+:data:`MAX_PAYLOAD_BYTES` (the largest ``spectrometer.channels``, 65536, times 8 bytes times
+16 arrays: 8 MiB); ``spinflip collect`` disconnects from a station that sends a frame over
+:data:`MAX_FRAME_BYTES` (its ZeroMQ socket's ``MAXMSGSIZE``) and reconnects.
 ``spinflip collect`` relays the messages of several stations on one PUB socket, unchanged
 except for ``station``.
 
@@ -40,6 +52,9 @@ time_utc       string                      ISO 8601 with a UTC offset, written
                                            message was made.
 seq            integer (optional)          per-topic message counter of the sending
                                            daemon, from 1; restarts with the daemon
+replay         boolean (optional)          true: the message was sent before and is
+                                           sent again to bring a new subscriber up to
+                                           date (see Transport); absent or false: new
 station        string                      "" from a daemon; the station's name when
                                            relayed by ``spinflip collect``
 arrays         array of objects            one per payload frame, in frame order:
@@ -207,6 +222,24 @@ TOPICS = ("spectrum", "status", "progress", "event")
 #: Payload dtypes allowed on the wire.
 DTYPES = ("<f4", "<f8", "<i8", "|u1")
 
+#: The largest ``spectrometer.channels`` the configuration allows (daemon/config.py).
+MAX_CHANNELS = 65536
+#: Most payload arrays in one message (a spectrum has 5; room for arrays added later).
+MAX_ARRAYS = 16
+#: Most dimensions of one payload array.
+MAX_DIMS = 8
+#: Largest header frame a reader takes, bytes (a spectrum's header is about 1 KiB).
+MAX_HEADER_BYTES = 64 * 1024
+#: Deepest nesting of JSON objects and arrays in a header (the schema needs 3).
+MAX_DEPTH = 16
+#: Largest payload of one message, bytes: MAX_CHANNELS channels x 8 bytes x MAX_ARRAYS.
+MAX_PAYLOAD_BYTES = MAX_CHANNELS * 8 * MAX_ARRAYS
+#: Largest ZeroMQ frame a subscriber's socket takes (``zmq.MAXMSGSIZE``), bytes: one payload
+#: frame can hold at most the whole payload; 64 KiB of room for the header and CURVE framing.
+MAX_FRAME_BYTES = MAX_PAYLOAD_BYTES + 64 * 1024
+#: Longest error line :func:`decode` raises, characters.
+MAX_ERROR_CHARS = 140
+
 
 class WireError(ValueError):
     """A message that does not follow the schema (one line naming what is wrong)."""
@@ -342,6 +375,11 @@ def _short(value) -> str:
     return text if len(text) <= 60 else text[:57] + "..."
 
 
+def _short_repr(value) -> str:
+    text = repr(value)
+    return text if len(text) <= 60 else text[:57] + "..."
+
+
 def _check_schema(value) -> None:
     _check_type("header.schema", value, _INT)
     if value > SCHEMA_VERSION:
@@ -371,6 +409,8 @@ def _check_array_list(descs) -> None:
     if not isinstance(descs, list):
         raise WireError(f"header.arrays = {_short(descs)} is a JSON {_json_type(descs)}: "
                         "expected an array of {name, dtype, shape, unit} objects")
+    if len(descs) > MAX_ARRAYS:
+        raise WireError(f"header.arrays lists {len(descs)} arrays: at most {MAX_ARRAYS}")
     names = set()
     for i, d in enumerate(descs):
         where = f"header.arrays[{i}]"
@@ -382,11 +422,15 @@ def _check_array_list(descs) -> None:
         if not d["name"]:
             raise WireError(f"{where}.name is empty")
         if d["name"] in names:
-            raise WireError(f"{where}.name = {d['name']!r} appears twice: names are unique")
+            raise WireError(f"{where}.name = {_short_repr(d['name'])} appears twice: names are "
+                            "unique")
         names.add(d["name"])
         if d["dtype"] not in DTYPES:
             raise WireError(f"{where}.dtype = {_short(d['dtype'])}: allowed are "
                             f"{', '.join(DTYPES)}")
+        if len(d["shape"]) > MAX_DIMS:
+            raise WireError(f"{where}.shape has {len(d['shape'])} dimensions: at most "
+                            f"{MAX_DIMS}")
         for n in d["shape"]:
             if _json_type(n) != "integer" or n < 0:
                 raise WireError(f"{where}.shape = {_short(d['shape'])}: expected a list of "
@@ -407,8 +451,8 @@ def _check_spectrum_arrays(header: dict) -> None:
             raise WireError(f"spectrum array {name!r} has unit {d['unit']!r}: expected "
                             f"{want_unit!r}")
         if len(d["shape"]) != 1 or d["shape"][0] < 1:
-            raise WireError(f"spectrum array {name!r} has shape {d['shape']}: expected [nchan] "
-                            "with nchan >= 1")
+            raise WireError(f"spectrum array {name!r} has shape {_short(d['shape'])}: expected "
+                            "[nchan] with nchan >= 1")
         if nchan is None:
             nchan = d["shape"][0]
         elif d["shape"][0] != nchan:
@@ -445,6 +489,8 @@ def validate_header(topic: str, header: dict) -> None:
     _check_schema(header["schema"])
     if "seq" in header:
         _check_type("header.seq", header["seq"], _INT)
+    if "replay" in header:
+        _check_type("header.replay", header["replay"], ("boolean",))
     if header["topic"] != topic:
         raise WireError(f"header.topic = {header['topic']!r} differs from the topic frame "
                         f"{topic!r}")
@@ -587,6 +633,27 @@ def _refuse_constant(name: str):
     raise WireError(f"header holds the token {name}, which strict JSON does not allow")
 
 
+def _depth(value) -> int:
+    """How deeply JSON objects and arrays nest in ``value`` (0 for a scalar), without recursion;
+    stops counting past :data:`MAX_DEPTH`."""
+    deepest, stack = 0, [(value, 1)]
+    while stack:
+        item, level = stack.pop()
+        if isinstance(item, (dict, list)):
+            deepest = max(deepest, level)
+            if level > MAX_DEPTH:
+                return level
+            stack.extend((v, level + 1) for v in (item.values() if isinstance(item, dict)
+                                                  else item))
+    return deepest
+
+
+def one_line(text: str, limit: int = MAX_ERROR_CHARS) -> str:
+    """``text`` on one line (control characters as spaces), cut to ``limit`` characters."""
+    flat = " ".join("".join(c if c.isprintable() else " " for c in text[: 4 * limit]).split())
+    return flat if len(flat) <= limit else flat[: limit - 3] + "..."
+
+
 def decode(frames) -> Message:
     """Read one message, checking it against the schema.
 
@@ -609,16 +676,42 @@ def decode(frames) -> Message:
         newer one with "update spinflip"), a missing or mistyped field, a payload frame whose
         length does not match its entry in ``arrays``, or a dtype not allowed.
     """
+    try:
+        return _decode(frames)
+    except WireError as exc:
+        raise WireError(one_line(str(exc))) from None
+    except RecursionError:
+        raise WireError(f"header nests too deeply: at most {MAX_DEPTH} levels") from None
+    except (ValueError, TypeError, OverflowError, MemoryError) as exc:
+        # e.g. an integer longer than Python converts (ValueError): refused, never raised on
+        raise WireError(one_line(f"message not usable: {type(exc).__name__}: {exc}")) \
+            from None
+
+
+def _decode(frames) -> Message:
     frames = list(frames)
     if len(frames) < 2:
         raise WireError(f"a message has at least 2 frames (topic, header), got {len(frames)}")
-    raw_topic = bytes(memoryview(frames[0]))
+    raw_topic = bytes(memoryview(frames[0])[:64])
+    if memoryview(frames[0]).nbytes > 32:
+        raise WireError(f"topic frame {raw_topic[:40]!r}... is too long: expected one of "
+                        f"{', '.join(TOPICS)}")
     try:
         topic = raw_topic.decode("ascii")
     except UnicodeDecodeError:
         raise WireError(f"topic frame {raw_topic[:40]!r} is not ASCII") from None
     if topic not in TOPICS:
         raise WireError(f"topic {topic[:40]!r} is unknown: expected one of {', '.join(TOPICS)}")
+    if len(frames) - 2 > MAX_ARRAYS:
+        raise WireError(f"{topic} message has {len(frames) - 2} payload frames: at most "
+                        f"{MAX_ARRAYS}")
+    header_bytes = memoryview(frames[1]).nbytes
+    if header_bytes > MAX_HEADER_BYTES:
+        raise WireError(f"{topic} header of {header_bytes} bytes: at most {MAX_HEADER_BYTES}")
+    payload_bytes = sum(memoryview(f).nbytes for f in frames[2:])
+    if payload_bytes > MAX_PAYLOAD_BYTES:
+        raise WireError(f"{topic} payload of {payload_bytes} bytes: at most "
+                        f"{MAX_PAYLOAD_BYTES}")
     try:
         text = bytes(memoryview(frames[1])).decode("utf-8")
     except UnicodeDecodeError as exc:
@@ -631,6 +724,8 @@ def decode(frames) -> Message:
             from None
     if not isinstance(header, dict):
         raise WireError(f"{topic} header is a JSON {_json_type(header)}: expected an object")
+    if _depth(header) > MAX_DEPTH:
+        raise WireError(f"{topic} header nests too deeply: at most {MAX_DEPTH} levels")
     # the version first, so that a newer schema is reported as such and not as a missing field
     if "schema" in header:
         _check_schema(header["schema"])
@@ -645,8 +740,9 @@ def decode(frames) -> Message:
         count = math.prod(d["shape"])
         want = count * _ITEMSIZE[d["dtype"]]
         if buf.nbytes != want:
-            raise WireError(f"{topic} array {d['name']!r} has {buf.nbytes} bytes: shape "
-                            f"{d['shape']} of {d['dtype']} needs {want}")
+            raise WireError(f"{topic} array {_short_repr(d['name'])} has {buf.nbytes} bytes: shape "
+                            f"{_short(d['shape'])} of {d['dtype']} needs "
+                            f"{want if want < 10 ** 30 else 'more'}")
         dt = np.dtype(d["dtype"])
         arr = np.frombuffer(buf, dtype=dt, count=count).reshape(d["shape"])
         arrays[d["name"]] = arr.astype(dt.newbyteorder("="), copy=True)

@@ -388,7 +388,7 @@ def test_security_applied_before_bind():
 
     srv = ControlServer("tcp://127.0.0.1:*", lambda c, a: {}, security=FakeSecurity()).start()
     try:
-        assert seen == [(zmq.REP, b"")]          # applied once, to the REP socket, unbound yet
+        assert seen == [(zmq.ROUTER, b"")]       # applied once, to the ROUTER socket, unbound yet
         assert request(srv.bound_endpoint, "start") == {"ok": True, "result": {}}
     finally:
         srv.stop()

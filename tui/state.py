@@ -23,9 +23,13 @@ any                    ``connected = True``, ``last_message_s`` = arrival time
 
 Notes
 -----
-A subscriber that joins or reconnects is sent the latest message of each topic again
-(wire docstring, "Transport"), so an integration already on the waterfall (same station,
-scan, row and time) is not appended twice, nor is an event equal to the last one.
+A subscriber that joins or reconnects is sent the latest message of each topic again, and
+so is every other subscriber, marked ``"replay": true`` (wire docstring, "Transport"). A
+replayed message equal to the latest one taken of its topic and station (same ``seq`` and
+``time_utc``) is ignored: it changes nothing, not even the time of the latest message
+(:attr:`ViewState.replays_ignored` counts them). Besides, an integration already on the
+waterfall (same station, scan, row and time) is not appended twice, nor is an event equal to
+the last one.
 
 A spectrum is kept as a dict: the header's fields, with ``"arrays"`` replaced by a dict
 name -> NumPy array (``flagged`` as bool) and ``"units"`` holding name -> unit of each array.
@@ -101,6 +105,8 @@ class ViewState:
         The app's clock at the redraw, s (monotonic).
     stale_after_s : float
         Data older than this are stale, s.
+    replays_ignored : int
+        Replayed messages ignored because this state already had them.
     """
 
     spectrum: dict | None = None
@@ -117,6 +123,8 @@ class ViewState:
     last_message_s: float | None = None
     now_s: float = 0.0
     stale_after_s: float = 3.0
+    replays_ignored: int = 0
+    _latest_ids: dict = field(default_factory=dict, repr=False)
 
     def apply(self, message: wire.Message, now_s: float) -> None:
         """Fold one decoded message into the state.
@@ -131,6 +139,15 @@ class ViewState:
         """
         header = message.header
         topic = message.topic
+        if topic not in wire.TOPICS:
+            return
+        key = (header.get("station"), topic)
+        ident = (header.get("seq"), header.get("time_utc"))
+        if header.get("replay") is True and self._latest_ids.get(key) == ident:
+            self.replays_ignored += 1           # a message this state already has
+            return
+        if len(self._latest_ids) < 1024 or key in self._latest_ids:
+            self._latest_ids[key] = ident
         if topic == "spectrum":
             spec = _spectrum_dict(message)
             if header.get("kind") == "average":
