@@ -154,7 +154,7 @@ SCHEMA: dict[str, dict[str, Key]] = {
     },
     "publish": {
         "data": Key("tcp://127.0.0.1:5621", str, doc="live data (PUB) endpoint; '' for none"),
-        "control": Key("tcp://127.0.0.1:5622", str, doc="control (REP) endpoint; '' for none"),
+        "control": Key("tcp://127.0.0.1:5622", str, doc="control (ROUTER, answers REQ clients) endpoint; '' for none"),
         "keys": Key("", str, doc="folder of CURVE keys (spinflip keys); '' for none"),
         "allow_insecure": Key(False, bool, doc="bind beyond loopback without keys (warned)"),
     },

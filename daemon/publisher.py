@@ -51,7 +51,7 @@ _SNDBUF = 0          # kernel send buffer per connection, bytes; 0: the system's
 _POLL_MS = 50
 #: Largest frame the data socket takes from a peer, bytes (zmq.MAXMSGSIZE): a subscription
 #: is 1 + a topic's length; the CURVE handshake's largest command is a few hundred bytes.
-MAX_SUBSCRIPTION_FRAME = 1024
+MAX_SUBSCRIPTION_FRAME = 512
 #: The subscriptions the publisher passes to its socket: every prefix of every topic.
 ACCEPTED_SUBSCRIPTIONS = frozenset(t[:i] for t in wire.TOPICS for i in range(len(t) + 1))
 #: Most subscription-table entries one peer can hold.
@@ -64,7 +64,7 @@ _RCVHWM = 16
 #: libzmq keeps of them (in XPUB_MANUAL mode it records every subscription a peer sent, to
 #: unsubscribe upstream when the peer leaves: about 45 kB each for 900 random bytes); every
 #: subscriber then reconnects by itself (ZeroMQ's reconnect) and is brought up to date.
-MAX_IGNORED_SUBSCRIPTIONS = 512
+MAX_IGNORED_SUBSCRIPTIONS = 64
 #: Shortest time between two replays of one topic, s: replays reach every subscriber, so the
 #: newcomers of one such interval share one replay.
 REPLAY_MIN_INTERVAL_S = 0.1

@@ -86,6 +86,7 @@ class _Subscriber(threading.Thread):
         import zmq
         from . import wire
         sub = zmq.Context.instance().socket(zmq.SUB)
+        sub.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)
         sub.setsockopt(zmq.SUBSCRIBE, b"")
         sub.setsockopt(zmq.RCVTIMEO, 200)
         sub.connect(self.endpoint)
@@ -97,6 +98,8 @@ class _Subscriber(threading.Thread):
                     continue
                 msg = wire.decode(frames)
                 topic, header = msg.topic, msg.header
+                if header.get("replay"):        # a newcomer's catch-up: not a new message
+                    continue
                 self.counts[topic] = self.counts.get(topic, 0) + 1
                 seq = header.get("seq")
                 key = topic                     # the publisher numbers each topic

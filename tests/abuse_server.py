@@ -23,7 +23,7 @@ def _status_header(n: int) -> dict:
             "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n % 7, "tsys_source": "fixed",
             "samples_received": n, "samples_lost": 0, "queue_depth": 0,
             "disk_free_bytes": 1, "writing": "writing", "held_integrations": 0,
-            "dropped_integrations": 0, "uptime_s": float(n), "version": "0", "scan": "s1",
+            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n), "version": "0", "scan": "s1",
             "drops": {}, "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0,
                                       "object": "x"},
             "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}}

@@ -56,10 +56,10 @@ def _ready_sub() -> bytes:
     return b"\x04" + bytes([len(body)]) + body
 
 
-@pytest.fixture(params=["no keys", "keys"])
-def daemon(request, tmp_path):
+def _serve(tmp_path, with_keys: bool):
+    """``tests/abuse_server.py`` in a process of its own; yields its endpoints and pid."""
     args = []
-    if request.param == "keys":
+    if with_keys:
         assert keys_main(tmp_path / "keys") == 0
         args = ["--keys", str(tmp_path / "keys")]
     proc = subprocess.Popen([sys.executable, str(HERE / "abuse_server.py"), *args],
@@ -72,6 +72,19 @@ def daemon(request, tmp_path):
     finally:
         proc.stdin.close()
         proc.wait(20)
+
+
+@pytest.fixture(params=["no keys", "keys"])
+def daemon(request, tmp_path):
+    """The server with and without CURVE keys (a raw peer reaches the handshake either way)."""
+    yield from _serve(tmp_path, request.param == "keys")
+
+
+@pytest.fixture
+def plain_daemon(tmp_path):
+    """The server without keys: for raw peers that must get past the handshake (they cannot
+    do CURVE; with keys they are refused earlier still, which the tests above cover)."""
+    yield from _serve(tmp_path, False)
 
 
 def _port(endpoint: str) -> int:
@@ -133,9 +146,8 @@ def test_huge_frame_announced_before_the_handshake_is_dropped_unbuffered(daemon,
 # ----------------------------------------------------------------------------------------------
 # item: subscriptions
 # ----------------------------------------------------------------------------------------------
-def test_one_huge_subscription_drops_the_peer_and_costs_no_memory(daemon):
-    if daemon["mechanism"] != b"NULL":
-        pytest.skip("a raw peer cannot do the CURVE handshake; covered without keys")
+def test_one_huge_subscription_drops_the_peer_and_costs_no_memory(plain_daemon):
+    daemon = plain_daemon
     before = _rss_mb(daemon["pid"])
     s = socket.create_connection(("127.0.0.1", _port(daemon["data"])), timeout=10)
     try:
@@ -152,21 +164,20 @@ def test_one_huge_subscription_drops_the_peer_and_costs_no_memory(daemon):
     assert grown < RSS_SLACK_MB, f"daemon grew by {grown:.0f} MB"
 
 
-def test_many_subscriptions_to_no_topic_stay_bounded(daemon):
-    if daemon["mechanism"] != b"NULL":
-        pytest.skip("a raw peer cannot do the CURVE handshake; covered without keys")
+def test_many_subscriptions_to_no_topic_stay_bounded(plain_daemon):
+    daemon = plain_daemon
     before = _rss_mb(daemon["pid"])
     rng = np.random.default_rng(7)
     deadline = time.monotonic() + 20
     sent = 0
-    while sent < 6000 and time.monotonic() < deadline:      # 6000 x 900 random bytes
+    while sent < 20000 and time.monotonic() < deadline:     # 20000 x 500 random bytes
         s = socket.create_connection(("127.0.0.1", _port(daemon["data"])), timeout=10)
         try:
             s.sendall(_greeting(b"NULL") + _ready_sub())
-            while sent < 6000:
+            while sent < 20000:
                 buf = bytearray()
                 for _ in range(100):
-                    sub = b"\x01" + rng.bytes(900)
+                    sub = b"\x01" + rng.bytes(500)
                     buf += b"\x02" + struct.pack(">Q", len(sub)) + sub
                 s.sendall(buf)
                 sent += 100
@@ -176,7 +187,8 @@ def test_many_subscriptions_to_no_topic_stay_bounded(daemon):
             s.close()
     time.sleep(1.0)
     grown = _rss_mb(daemon["pid"]) - before
-    assert grown < 3 * RSS_SLACK_MB, f"daemon grew by {grown:.0f} MB"
+    # unbounded (before): about 25 kB a subscription kept, 500 MB here
+    assert sent >= 20000 and grown < 2.5 * RSS_SLACK_MB, f"daemon grew by {grown:.0f} MB"
     # a real subscriber still gets data
     sub = zmq.Context.instance().socket(zmq.SUB)
     sub.linger = 0
@@ -194,7 +206,7 @@ def _status(n):
             "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n, "tsys_source": "fixed",
             "samples_received": n, "samples_lost": 0, "queue_depth": 0,
             "disk_free_bytes": 1, "writing": "writing", "held_integrations": 0,
-            "dropped_integrations": 0, "uptime_s": float(n), "version": "0", "scan": "s1",
+            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n), "version": "0", "scan": "s1",
             "drops": {}, "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0,
                                       "object": "x"},
             "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}}
@@ -424,9 +436,8 @@ def test_collect_drops_a_station_announcing_a_huge_frame_without_buffering_it(tm
 # ----------------------------------------------------------------------------------------------
 # item: control under junk, retries
 # ----------------------------------------------------------------------------------------------
-def test_control_answers_at_once_after_junk_connections(daemon):
-    if daemon["mechanism"] != b"NULL":
-        pytest.skip("same socket code; without keys the client needs none")
+def test_control_answers_at_once_after_junk_connections(plain_daemon):
+    daemon = plain_daemon
     port = _port(daemon["control"])
     junk = [os.urandom(4000), b"GET / HTTP/1.1\r\nHost: x\r\n\r\n" * 20,
             b"\x01\x00" + b"\x05\x00abcd" * 50, _greeting(b"NULL")[:10],

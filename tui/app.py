@@ -200,6 +200,7 @@ class Feed(threading.Thread):
         sock = self.context.socket(zmq.SUB)
         try:
             sock.setsockopt(zmq.LINGER, 0)
+            sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)   # no frame larger than a spectrum
             sock.setsockopt(zmq.RECONNECT_IVL, int(RECONNECT_IVL_S * 1000))
             sock.setsockopt(zmq.RECONNECT_IVL_MAX, int(RECONNECT_IVL_MAX_S * 1000))
             sock.setsockopt(zmq.HEARTBEAT_IVL, int(HEARTBEAT_IVL_S * 1000))
