@@ -24,7 +24,7 @@ import pytest
 from astropy.io import fits
 
 from cli_runner import run_cli, write_config
-from spinflip.daemon import config, pipeline
+from spinflip.daemon import config, pipeline, wire
 
 DURATION_S = 120.0
 CONFIG = """
@@ -95,7 +95,9 @@ def test_interference_and_coverage_are_reported_apart_in_the_file(clean):
 
 
 def test_status_carries_both_fractions(clean):
-    rfi, cfg = clean["status"]["rfi"], clean["cfg"]
+    cfg = clean["cfg"]
+    # as a subscriber gets it: through the wire format's own encoder and decoder
+    rfi = wire.decode(wire.encode("status", dict(clean["status"]))).header["rfi"]
     rows = clean["rows"]
     assert rfi["flagged_rfi_fraction"] == pytest.approx(float(rows["RFIFRAC"][-1]))
     assert rfi["uncovered_fraction"] == pytest.approx(float(rows["UNCOVFR"][-1]))
