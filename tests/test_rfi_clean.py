@@ -122,3 +122,26 @@ def test_inspect_reports_interference_and_coverage_apart(clean):
     assert f"{100 * s['uncovered_fraction']:.1f} % not covered by the fold" in text
     assert f"{100 * s['interference_flagged_fraction']:.2f} % of channels flagged for " \
            "interference" in text
+
+
+def test_fold_geometry_of_coverage_and_spoiling():
+    # F[k] = (D_sig[k] - D_ref[k - shift]) / 2 exists where 0 <= k - shift < N
+    from spinflip.daemon.calibrate import fold_covered, fold_spoiled
+    n, shift = 64, -10
+    covered = fold_covered(n, shift)
+    assert covered.sum() == n - abs(shift) and not covered[n - abs(shift):].any()
+    bad = np.zeros(n, bool)
+    bad[20] = True                     # spoils F[20] (signal copy) and F[10] (reference copy)
+    assert np.flatnonzero(fold_spoiled(bad, shift, True)).tolist() == [10, 20]
+    bad[:] = False
+    bad[60] = True                     # F[60] is not covered; only F[50] uses channel 60
+    assert np.flatnonzero(fold_spoiled(bad, shift, True)).tolist() == [50]
+    assert np.flatnonzero(fold_spoiled(bad, shift, False)).tolist() == [60]
+
+
+def test_status_before_the_first_integration_says_not_known(tmp_path):
+    path = write_config(tmp_path / "c.toml", CONFIG.format(out=tmp_path / "out"))
+    daemon = pipeline.Daemon(config.load(path), fast=True, duration_s=1.0, log=lambda m: None)
+    rfi = wire.decode(wire.encode("status", dict(daemon.status()))).header["rfi"]
+    assert rfi["flagged_rfi_fraction"] is None and rfi["uncovered_fraction"] is None
+    assert rfi["uncovered_hz"] is None and rfi["carrier_onsets"] == 0
