@@ -431,11 +431,11 @@ class Daemon:
         dc[self.nchan // 2] = cfg["rfi"]["flag_dc"]
         rfi_base = np.zeros(self.nchan, dtype=bool)
         for mask in bad.values():
-            rfi_base |= mask & ~dc
+            rfi_base |= mask
         for ph in integ.sums.values():
             if ph.spectra:
                 rfi_base |= ph.m == 0
-        rfi_flagged = fold_spoiled(rfi_base, sch.shift_channels, spec.folded)
+        rfi_flagged = fold_spoiled(rfi_base & ~dc, sch.shift_channels, spec.folded)
         crpix1 = self.nchan // 2 + 1.0
         cdelt1 = fs / self.nchan
         fl = integ.flags
