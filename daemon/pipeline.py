@@ -57,7 +57,7 @@ from spinflip import __version__
 from . import archive, frames, wire
 from . import loads as loads_mod
 from .cal_control import CalControl
-from .calibrate import calibrate, fold_covered, fold_spoiled
+from .calibrate import calibrate
 from .config import ConfigError
 from .kinematics import expected_velocity_range_km_s
 from .live import RunningAverage, spectrum_message
@@ -69,7 +69,7 @@ from .scan_store import ScanStore
 from . import sd_notify
 from .sources import SourceError, make_source
 from .spectral_axis import velocity_wcs_m_s
-from .carriers import CarrierFinder, lo_channels
+from .carriers import CarrierFinder
 from .spectrometer import FlagSettings, Spectrometer
 from .static_masks import named_channels
 from .tsys import TsysMeter
@@ -396,6 +396,7 @@ class Daemon:
         return self.tsys_now.tsys_k, age, age <= self.cfg["calibration"]["tsys_max_age_s"]
 
     def _row(self, integ) -> dict:
+        from .calibrate import fold_spoiled
         cfg = self.cfg
         sch = self.source.schedule
         switched = sch.mode == "frequency"
@@ -468,6 +469,7 @@ class Daemon:
 
     def _interference(self, integ, t_mid: Time):
         """Per phase: channels flagged by name or as carriers; the count; log records."""
+        from .carriers import lo_channels
         cfg, sch = self.cfg["rfi"], self.source.schedule
         bad, n_carrier, log = {}, 0, []
         fl = integ.flags
@@ -980,6 +982,7 @@ class Daemon:
         return self._status_message()[1]
 
     def _status_message(self):
+        from .calibrate import fold_covered
         sch, src = self.source.schedule, self.cfg["source"]
         tsys = self.tsys_now.tsys_k if self.tsys_now is not None else (
             self.tsys_plan.tsys_k if self.tsys_plan.kind in ("fixed", "loads") else None)
