@@ -19,7 +19,9 @@ D_ref. In-band switching (|offset| less than half the band) is folded by shiftin
     F(nu) = [D_sig(nu) - D_ref(nu - offset)] / 2,
 
 which puts both copies of the line on top of each other and lowers the noise by sqrt(2);
-channels without a partner in the band are flagged. Folding leaves negative half-height
+channels without a partner in the band (k - shift outside 0 .. N - 1: |shift| channels at one
+edge, a share |offset| / sample rate of the band) are not covered by the fold and are flagged
+(:func:`fold_covered`; told apart from interference by ``Spectrum.covered``). Folding leaves negative half-height
 ghosts at +- offset (choose an offset wider than the line). Out-of-band switching is not
 folded (D_sig alone). Total-power mode has no reference: its DATA stay in counts.
 
@@ -55,6 +57,31 @@ class Spectrum:
     exposure_s: float
     folded: bool
     chan_exposure_s: np.ndarray | None = None   # float32[nchan], after flagging
+    covered: np.ndarray | None = None   # bool[nchan]: has a fold partner (all, unfolded)
+
+
+def fold_covered(nchan: int, shift_channels: int) -> np.ndarray:
+    """bool[nchan]: folded channels k with a partner k - shift inside the band."""
+    partner = np.arange(nchan) - int(shift_channels)
+    return (partner >= 0) & (partner < nchan)
+
+
+def fold_spoiled(baseband: np.ndarray, shift_channels: int, folded: bool) -> np.ndarray:
+    """bool[nchan]: calibrated channels whose sums use a channel of ``baseband``.
+
+    Unfolded, channel c itself; folded, F[k] uses baseband k (signal-phase copy) and k - shift
+    (reference-phase copy), so c spoils F[c] and F[c + shift]. Channels without a fold partner
+    are left out (they are not covered; :func:`fold_covered`).
+    """
+    baseband = np.asarray(baseband, dtype=bool)
+    if not folded:
+        return baseband.copy()
+    nchan = baseband.size
+    k = np.arange(nchan)
+    ok = fold_covered(nchan, shift_channels)
+    out = np.zeros(nchan, dtype=bool)
+    out[ok] = baseband[k[ok]] | baseband[k[ok] - int(shift_channels)]
+    return out
 
 
 def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: bool,
@@ -88,9 +115,11 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
         flagged[nchan // 2] = True
     for mask in (bad or {}).values():
         flagged |= mask
+    everywhere = np.ones(nchan, dtype=bool)
     if not switched:
         return Spectrum(sig.mean().astype(np.float32), flagged | ~np.isfinite(sig.mean()), "count",
-                        sig.exposure_s, False, sig.channel_exposure_s().astype(np.float32))
+                        sig.exposure_s, False, sig.channel_exposure_s().astype(np.float32),
+                        everywhere)
     s, r = sig.mean(), ref.mean()
     scale = tsys_k / beam_efficiency
     with np.errstate(divide="ignore", invalid="ignore"):
@@ -104,15 +133,14 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
     sh = int(shift_channels)
     if abs(sh) >= nchan // 2:
         return Spectrum(d_sig.astype(np.float32), flagged, "K", exposure, False,
-                        chan_exp.astype(np.float32))
+                        chan_exp.astype(np.float32), everywhere)
     # fold: F[k] = (D_sig[k] - D_ref[k - sh]) / 2 where 0 <= k - sh < nchan
     k = np.arange(nchan)
     partner = k - sh
-    ok = (partner >= 0) & (partner < nchan)
+    ok = fold_covered(nchan, sh)
     f = np.zeros(nchan)
     f[ok] = 0.5 * (d_sig[k[ok]] - d_ref[partner[ok]])
-    fl = ~ok | flagged
-    fl[ok] |= flagged[partner[ok]]
+    fl = ~ok | fold_spoiled(flagged, sh, True)
     exp_f = np.zeros(nchan)
     exp_f[ok] = 0.5 * (chan_exp[k[ok]] + chan_exp[partner[ok]])
-    return Spectrum(f.astype(np.float32), fl, "K", exposure, True, exp_f.astype(np.float32))
+    return Spectrum(f.astype(np.float32), fl, "K", exposure, True, exp_f.astype(np.float32), ok)

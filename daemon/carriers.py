@@ -18,6 +18,13 @@ integration reaches s sqrt(H) there, so one of s >= (c + 2.33)/sqrt(H) is found 
 of the time once H integrations are in. Around each detected channel the flag grows over
 neighbours with r > 3 sigma_k (the filterbank's leakage of a strong carrier).
 
+The channel at the LO and its two neighbours are never searched: the receiver's DC offset (LO
+leakage) puts a steady tone there, which ``rfi.flag_dc`` flags by name. Near the spectral-kurtosis
+threshold such a tone is removed in a varying share of blocks, so a search there would report
+it appearing and going with the noise level (more easily in integrations with fewer blocks of a
+phase, those holding a noise-source firing); :func:`lo_channels` is the one definition both
+carrier rules (this shape search and the pipeline's spectral-kurtosis majority) leave out.
+
 The 21 cm line is never flagged here: it is broad and noise-like, but its steep flanks and
 narrow components can still stand out of a 15-channel median, so channels whose sky frequency
 lies where HI toward the pointing can be (:mod:`spinflip.daemon.kinematics`) are left to
@@ -40,6 +47,13 @@ from numpy.lib.stride_tricks import sliding_window_view
 _HALF_WIDTH = 7
 _GROW_SIGMA = 3.0
 _EDGE_FRACTION = 0.04
+
+
+def lo_channels(nchan: int) -> np.ndarray:
+    """bool[nchan]: the channel at the LO (N // 2) and its two neighbours, never a carrier."""
+    out = np.zeros(nchan, dtype=bool)
+    out[max(nchan // 2 - 1, 0):nchan // 2 + 2] = True
+    return out
 
 
 def running_median(p: np.ndarray, half_width: int = _HALF_WIDTH) -> np.ndarray:
@@ -92,7 +106,7 @@ class CarrierFinder:
         edge = int(np.ceil(_EDGE_FRACTION * nchan))
         self.usable = np.zeros(nchan, dtype=bool)
         self.usable[edge:nchan - edge] = True
-        self.usable[nchan // 2 - 1:nchan // 2 + 2] = False      # DC: flagged by name
+        self.usable &= ~lo_channels(nchan)                      # DC: flagged by name
         self._past: dict = {}                                    # (phase, lo) -> deque of r
         self.last_found: dict = {}                               # phase -> the newest result
         self.last_z: dict = {}                                   # phase -> r / sigma

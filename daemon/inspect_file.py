@@ -62,7 +62,8 @@ def _load(path: Path):
                 unit = hdu.columns["DATA"].unit or ""
                 cols = {k: np.array(hdu.data[k]) for k in REQUIRED_ROW_KEYS}
                 extras = {k: np.array(hdu.data[k]) for k in
-                          ("FLAGTIME", "SKFRAC", "NIMPULSE", "NCARRIER") if k in names}
+                          ("FLAGTIME", "SKFRAC", "NIMPULSE", "NCARRIER", "RFIFRAC", "UNCOVFR")
+                          if k in names}
                 if RFI_EXTNAME in hdul:
                     extras["rfi_kinds"] = [str(k).strip() for k in hdul[RFI_EXTNAME].data["KIND"]]
                 if TSYS_EXTNAME in hdul:
@@ -89,7 +90,10 @@ def summarize(path: Path) -> dict:
     ``tsys_mean_k``, ``tsys_min_k``, ``tsys_max_k`` (None where no row carries a Tsys),
     ``data_unit``, ``channel_width_hz``, ``channel_width_km_s``, ``restfreq_hz``, ``specsys``,
     ``line_peak`` (maximum of the scan average, in ``data_unit``), ``line_velocity_lsrk_km_s``
-    (LSRK radio velocity of that channel), ``flagged_fraction``.
+    (LSRK radio velocity of that channel), ``flagged_fraction`` (of all channel-rows, FLAGGED:
+    for any reason), ``interference_flagged_fraction`` (mean of RFIFRAC: flagged for
+    interference) and ``uncovered_fraction`` (mean of UNCOVFR: without a fold partner, flagged
+    but no interference); these two are None for files written before those columns.
 
     Raises
     ------
@@ -181,6 +185,9 @@ def summarize(path: Path) -> dict:
         "sk_removed_fraction": float(np.mean(extras["SKFRAC"])) if "SKFRAC" in extras else None,
         "impulses": int(np.sum(extras["NIMPULSE"])) if "NIMPULSE" in extras else None,
         "carrier_onsets": int(sum(k == "carrier-on" for k in extras.get("rfi_kinds", []))),
+        "interference_flagged_fraction": (float(np.mean(extras["RFIFRAC"]))
+                                          if "RFIFRAC" in extras else None),
+        "uncovered_fraction": float(np.mean(extras["UNCOVFR"])) if "UNCOVFR" in extras else None,
     }
 
 
@@ -198,6 +205,9 @@ def format_summary(d: dict) -> str:
         line = (f"peak {d['line_peak']:.4g} {unit} at v_LSRK = "
                 f"{d['line_velocity_lsrk_km_s']:+.2f} km/s (radio convention)")
     objects = ", ".join(d["objects"])
+    flagged = f"{100 * d['flagged_fraction']:.1f} % of channels flagged"
+    if d.get("uncovered_fraction") is not None:
+        flagged += f" ({100 * d['uncovered_fraction']:.1f} % not covered by the fold)"
     lines = [
         f"file      {d['file']}  (written by {d['origin'] or 'unknown'}; "
         f"telescope {d['telescope'] or 'unnamed'})",
@@ -209,8 +219,7 @@ def format_summary(d: dict) -> str:
         f"Tsys      {tsys}",
         f"spectrum  {d['nchan']} channels of {d['channel_width_hz'] / 1e3:.3f} kHz "
         f"({d['channel_width_km_s']:.3f} km/s), rest frequency {d['restfreq_hz'] / 1e6:.6f} MHz, "
-        f"DATA in {unit}, axis {d['specsys'] or '?'}; "
-        f"{100 * d['flagged_fraction']:.1f} % of channels flagged",
+        f"DATA in {unit}, axis {d['specsys'] or '?'}; {flagged}",
         f"line      {line}",
         f"velocity  LSRK radio velocity {d['velocity_axis_lsrk_km_s'][0]:+.1f} .. "
         f"{d['velocity_axis_lsrk_km_s'][1]:+.1f} km/s; VFRAME {d['vframe_km_s'][0]:+.3f} .. "
@@ -226,7 +235,9 @@ def format_summary(d: dict) -> str:
         lines.append(f"rfi       {d['impulses']} impulses ({100 * d['blanked_time_fraction']:.2f} % "
                      f"of spectra blanked), {100 * d['sk_removed_fraction']:.2f} % of channel-blocks "
                      f"removed by spectral kurtosis, {d['carrier_onsets']} carrier onsets; "
-                     f"{100 * d['flagged_fraction']:.1f} % of channels flagged")
+                     + (f"{100 * d['interference_flagged_fraction']:.2f} % of channels flagged "
+                        "for interference"
+                        if d.get("interference_flagged_fraction") is not None else flagged))
     if d["line_integral_k_km_s"] is not None:
         rms = (f", rms {d['baseline_rms_k']:.3f} K" if d["baseline_rms_k"] is not None else "")
         lines.append(f"integral  {d['line_integral_k_km_s']:.1f} K km/s over "

@@ -406,6 +406,7 @@ class Daemon:
         return self.tsys_now.tsys_k, age, age <= self.cfg["calibration"]["tsys_max_age_s"]
 
     def _row(self, integ) -> dict:
+        from .calibrate import fold_spoiled
         cfg = self.cfg
         sch = self.source.schedule
         switched = sch.mode == "frequency"
@@ -434,6 +435,18 @@ class Daemon:
             self._warn_once("low-el", "error", f"{self.pointing.object} is at elevation "
                             f"{pos['ELEVATIO']:.1f} deg, below pointing.min_elevation = "
                             f"{cfg['pointing']['min_elevation']:g} deg: rows are saved fully flagged")
+        # interference apart from fold coverage: the baseband channels flagged for it (carriers,
+        # spurs, masks; every spectrum removed by SK or blanking), not the DC channel flagged by
+        # name, carried through the fold onto the covered channels they spoil
+        dc = np.zeros(self.nchan, dtype=bool)
+        dc[self.nchan // 2] = cfg["rfi"]["flag_dc"]
+        rfi_base = np.zeros(self.nchan, dtype=bool)
+        for mask in bad.values():
+            rfi_base |= mask
+        for ph in integ.sums.values():
+            if ph.spectra:
+                rfi_base |= ph.m == 0
+        rfi_flagged = fold_spoiled(rfi_base & ~dc, sch.shift_channels, spec.folded)
         crpix1 = self.nchan // 2 + 1.0
         cdelt1 = fs / self.nchan
         fl = integ.flags
@@ -454,6 +467,8 @@ class Daemon:
             "CHANEXP": spec.chan_exposure_s,
             "FLAGTIME": fl.blanked / fl.spectra if fl.spectra else 0.0,
             "FLAGFREQ": float(np.mean(flagged)),
+            "RFIFRAC": float(np.mean(rfi_flagged)),
+            "UNCOVFR": float(np.mean(~spec.covered)),
             "SKFRAC": fl.sk_cells / (fl.blocks * self.nchan) if fl.blocks else 0.0,
             "NIMPULSE": int(fl.impulses), "NCARRIER": int(n_carrier),
         }
@@ -464,6 +479,7 @@ class Daemon:
 
     def _interference(self, integ, t_mid: Time):
         """Per phase: channels flagged by name or as carriers; the count; log records."""
+        from .carriers import lo_channels
         cfg, sch = self.cfg["rfi"], self.source.schedule
         bad, n_carrier, log = {}, 0, []
         fl = integ.flags
@@ -484,8 +500,11 @@ class Daemon:
             mask = named_channels(lo, self.nchan, sch.channel_hz, cfg["flag_dc"], cfg["spurs_hz"],
                                   cfg["masks_mhz"])
             # a channel SK removed in most blocks is a strong steady carrier, whose leakage
-            # reaches neighbours SK may miss; the shape search finds the weaker ones
-            carrier = (ph.sk_hits > 0.5 * ph.blocks) if ph.blocks else np.zeros(self.nchan, bool)
+            # reaches neighbours SK may miss; the shape search finds the weaker ones. Neither
+            # looks at the LO channels: the receiver's LO leakage there is a steady tone near
+            # the SK threshold, removed in a varying share of blocks (carriers.lo_channels)
+            carrier = ((ph.sk_hits > 0.5 * ph.blocks) & ~lo_channels(self.nchan) if ph.blocks
+                       else np.zeros(self.nchan, bool))
             mask |= _widen(carrier, _LEAKAGE_CHANNELS)
             if self.carriers is not None:
                 protected = self._emission_mask(phase, float(t_mid.unix))
@@ -993,6 +1012,7 @@ class Daemon:
         return self._status_message()[1]
 
     def _status_message(self):
+        from .calibrate import fold_covered
         sch, src = self.source.schedule, self.cfg["source"]
         tsys = self.tsys_now.tsys_k if self.tsys_now is not None else (
             self.tsys_plan.tsys_k if self.tsys_plan.kind in ("fixed", "loads") else None)
@@ -1021,6 +1041,17 @@ class Daemon:
             "worker_failures": self.supervisor.counts(),
             "rfi": dict(self.rfi_totals), "time_utc": wire.now_utc_iso(), "station": "",
         }
+        # the newest integration: interference apart from the channels the fold does not cover
+        last = getattr(self, "last_row", None)
+        rfi = header["rfi"]
+        rfi["flagged_rfi_fraction"] = float(last["RFIFRAC"]) if last is not None else None
+        rfi["uncovered_fraction"] = float(last["UNCOVFR"]) if last is not None else None
+        rfi["uncovered_hz"] = None
+        if last is not None and last["FOLDED"]:
+            k = np.flatnonzero(~fold_covered(self.nchan, sch.shift_channels))
+            if k.size:
+                f = sch.sig_lo_hz + (k - self.nchan // 2) * sch.channel_hz
+                rfi["uncovered_hz"] = [float(f.min()), float(f.max())]
         return "status", header, {}
 
     def _progress_message(self):

@@ -164,7 +164,18 @@ pointing            object          ``{"frame": string, "lon_deg": number,
                                     "galactic", "radec" or "azel"
 drops               object          ``{topic: integer}`` messages dropped per topic
 rfi                 object          ``{"impulses", "carrier_onsets", "sk_cells",
-                                    "blanked_spectra"}``, integers since start
+                                    "blanked_spectra"}``, integers since start; and of
+                                    the newest integration (null before the first):
+                                    ``"flagged_rfi_fraction"`` number, fraction (0..1) of
+                                    its channels flagged for interference (carriers,
+                                    spurs, masks, channels emptied by flagging; not the
+                                    DC channel); ``"uncovered_fraction"`` number,
+                                    fraction (0..1) of its channels without a fold
+                                    partner (flagged, but no interference; 0 unfolded);
+                                    ``"uncovered_hz"`` ``[first, last]`` numbers,
+                                    topocentric sky frequencies of the first and last
+                                    uncovered channel (one run at a band edge), Hz, or
+                                    null when none is
 ==================  ==============  =========================================================
 
 No arrays (in this version).

@@ -179,3 +179,19 @@ def test_line_channels_are_only_flagged_where_a_carrier_explains_it(with_rfi):
     line = (v > 0) & (v < 120) & partner
     bad = rows["FLAGGED"][:, line & ~explained]
     assert not bad.any(), np.flatnonzero((rows["FLAGGED"][:, :] & (line & ~explained)).any(axis=0))
+
+
+def test_interference_share_reported_apart_from_fold_coverage(with_rfi, without_rfi):
+    # RFIFRAC: channels flagged for interference; UNCOVFR: channels without a fold partner,
+    # the same share with or without interference (|offset| / sample rate of the band).
+    # The steady 1420.9 MHz carrier lies in the signal band's uncovered edge (channel c), but
+    # spectral kurtosis removes it in most blocks, so it is flagged with two neighbours each
+    # side: 5 baseband channels, which spoil the covered folded channels c + shift
+    rows, clean = with_rfi["rows"], without_rfi["rows"]
+    nchan = rows["DATA"].shape[1]
+    cfg = with_rfi["cfg"]
+    expected = abs(cfg["switching"]["offset_hz"]) / cfg["source"]["sample_rate"]
+    assert np.all(np.abs(rows["UNCOVFR"] - expected) <= 0.5 / nchan)
+    assert np.array_equal(rows["UNCOVFR"], clean["UNCOVFR"])
+    assert np.all(rows["RFIFRAC"] >= 5 / nchan), rows["RFIFRAC"]
+    assert np.all(clean["RFIFRAC"] <= 2 * cfg["rfi"]["sk_pfa"]), clean["RFIFRAC"]

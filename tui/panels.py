@@ -425,7 +425,10 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     as ``state.axis`` says; y is the data in their unit, K or count. The plot's y range
     leaves flagged channels out (a strong carrier does not squash the line); they are drawn
     in the flagged style and clipped at the edge, and the strip under the plot marks their
-    columns with 'x' so that flags do not depend on colour.
+    columns with 'x' so that flags do not depend on colour. Channels the fold does not cover
+    (:meth:`ViewState.uncovered_channels`: no partner in the other switching phase) are not
+    interference: they are left out of the plot and its x range, not marked 'x', and the
+    legend counts them apart ("N ch not covered").
     """
     specs = [s for s in (state.average, state.spectrum) if s is not None]
     if not specs:
@@ -442,6 +445,7 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     x_label = "v LSRK km/s" if state.axis == "velocity" else "f sky MHz"
     legend = Text()
     series, xs, flags = [], [], []
+    uncovered = 0
     for spec, style, name in ((state.average, S_AVERAGE, "average"),
                               (state.spectrum, S_INTEGRATION, "integration")):
         if spec is None:
@@ -449,10 +453,14 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
         arrays = spec["arrays"]
         x = _axis_x(spec, state.axis)
         mask = np.asarray(arrays["flagged"], dtype=bool)
+        y = np.asarray(arrays["data"], dtype=float)
+        keep = ~state.uncovered_channels(spec)
+        if keep.shape == x.shape:              # the fold's uncovered edge is left out
+            uncovered = int(np.count_nonzero(~keep))
+            x, y, mask = x[keep], y[keep], mask[keep]
         xs.append(x[np.isfinite(x)])
         flags.append((x, mask))
-        series.append(Series(x=x, y=np.asarray(arrays["data"], dtype=float), style=style,
-                             name=name, mask=mask))
+        series.append(Series(x=x, y=y, style=style, name=name, mask=mask))
         if legend.cell_len:
             legend.append("  ")
         if name == "average":
@@ -464,6 +472,8 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     legend.append("  ")
     legend.append(FLAG_MARK, style=S_FLAGGED)
     legend.append(f" flagged {nflag} ch", style=S_LABEL)
+    if uncovered:
+        legend.append(f"  {uncovered} ch not covered", style=S_LABEL)
     if state.is_stale():
         legend.append("  STALE", style=S_STALE)
     allx = np.concatenate(xs)
@@ -652,7 +662,8 @@ def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
 # ----------------------------------------------------------------------------------------------
 # interference
 # ----------------------------------------------------------------------------------------------
-def waterfall_rows(rows, width: int, height: int, ascii: bool = False) -> list[Text]:
+def waterfall_rows(rows, width: int, height: int, ascii: bool = False,
+                   keep: np.ndarray | None = None) -> list[Text]:
     """Recent integrations, newest on top: one line per integration, one cell per channel group.
 
     Parameters
@@ -664,6 +675,9 @@ def waterfall_rows(rows, width: int, height: int, ascii: bool = False) -> list[T
         there are fewer channels); at most ``height`` rows, the newest.
     ascii : bool
         ASCII shades ".:-=#" instead of "·░▒▓█".
+    keep : numpy.ndarray of bool, optional
+        Channels to show (e.g. not those the fold does not cover); rows of another length
+        are shown whole.
 
     Returns
     -------
@@ -680,6 +694,8 @@ def waterfall_rows(rows, width: int, height: int, ascii: bool = False) -> list[T
     for data, flagged in shown:
         data = np.asarray(data, dtype=float)
         flagged = np.asarray(flagged, dtype=bool)
+        if keep is not None and keep.shape == data.shape == flagged.shape:
+            data, flagged = data[keep], flagged[keep]
         groups = np.array_split(np.arange(data.size), min(width, max(1, data.size)))
         means, marks = [], []
         for g in groups:
@@ -724,18 +740,31 @@ def rfi_panel(state: ViewState, width: int, height: int, ascii: bool = False) ->
 
     Notes
     -----
-    From the latest integration: ``flagged_fraction`` (of channels, shown in %),
+    From the status, of the newest integration: the share of channels flagged for
+    interference ("interference flagged", %) and, labelled as coverage, the share the fold
+    does not cover ("coverage ... % uncovered": no partner in the other switching phase,
+    flagged but not interference); from a daemon that does not send them, the
+    integration's ``flagged_fraction`` (all flags, "flagged", %). From the latest integration:
     ``blanked_fraction`` (of samples blanked as impulses, %), ``nimpulse``, ``ncarrier``;
     from the status: the daemon's counters since start (impulses, carrier onsets, SK cells).
+    The waterfall leaves the uncovered channels out.
     """
     lines = [_rule("interference", width)]
     spec = state.spectrum
     items = []
+    rfi_frac, uncovered = state.rfi_fractions()
     if spec:
-        items = [_kv("flagged", f"{100 * spec.get('flagged_fraction', 0.0):.1f} %"),
-                 _kv("imp", f"{spec.get('nimpulse', 0)}"),
-                 _kv("car", f"{spec.get('ncarrier', 0)}"),
-                 _kv("blanked", f"{100 * spec.get('blanked_fraction', 0.0):.2f} %")]
+        if rfi_frac is not None:
+            items = [_kv("interference flagged", f"{100 * rfi_frac:.1f} %")]
+            if uncovered is not None:
+                cov = _kv("coverage", f"{100 * uncovered:.1f} %")
+                cov.append(" uncovered", style=S_LABEL)
+                items.append(cov)
+        else:
+            items = [_kv("flagged", f"{100 * spec.get('flagged_fraction', 0.0):.1f} %")]
+        items += [_kv("imp", f"{spec.get('nimpulse', 0)}"),
+                  _kv("car", f"{spec.get('ncarrier', 0)}"),
+                  _kv("blanked", f"{100 * spec.get('blanked_fraction', 0.0):.2f} %")]
     else:
         items = [Text("flagged — % (no integration yet)", style=S_LABEL)]
     rfi = (state.status or {}).get("rfi")
@@ -750,7 +779,8 @@ def rfi_panel(state: ViewState, width: int, height: int, ascii: bool = False) ->
     if rows_left >= 3 and state.waterfall and width >= 30:
         lines.append(Text(f"waterfall: newest on top, {FLAG_MARK} flagged", style=S_LABEL))
         rows_left -= 1
-    lines += waterfall_rows(state.waterfall, width, rows_left, ascii)
+    shown = ~state.uncovered_channels(spec) if spec else None
+    lines += waterfall_rows(state.waterfall, width, rows_left, ascii, shown)
     return _block(lines, width, height)
 
 

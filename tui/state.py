@@ -33,6 +33,13 @@ the last one.
 
 A spectrum is kept as a dict: the header's fields, with ``"arrays"`` replaced by a dict
 name -> NumPy array (``flagged`` as bool) and ``"units"`` holding name -> unit of each array.
+
+Flagged is not all interference: with frequency switching folded, the channels at one band
+edge have no partner in the other phase and are flagged as not covered. The status's ``rfi``
+says which sky frequencies those are (``uncovered_hz``) and how much of the newest integration
+is flagged for interference (``flagged_rfi_fraction``) and not covered
+(``uncovered_fraction``); :meth:`ViewState.uncovered_channels` turns the range into a mask
+so the panels can leave those channels out instead of showing them as flagged.
 """
 
 from __future__ import annotations
@@ -177,6 +184,37 @@ class ViewState:
         self.connected = True
         self.last_message_s = float(now_s)
         self.now_s = float(now_s)
+
+    def rfi_fractions(self) -> tuple[float | None, float | None]:
+        """(fraction flagged for interference, fraction not covered by the fold) of the newest
+        integration, from the status; None for each the daemon did not send."""
+        rfi = (self.status or {}).get("rfi") or {}
+
+        def frac(key):
+            v = rfi.get(key)
+            return float(v) if isinstance(v, (int, float)) and math.isfinite(v) else None
+        return frac("flagged_rfi_fraction"), frac("uncovered_fraction")
+
+    def uncovered_channels(self, spec: dict | None) -> np.ndarray:
+        """bool per channel of ``spec``: not covered by the fold (no partner in the other
+        switching phase), from the status's ``rfi.uncovered_hz`` [first, last] sky
+        frequencies (Hz) against the spectrum's ``freq_hz``, half a channel of tolerance.
+        All False when the status does not say (no fold, or an older daemon)."""
+        if spec is None:
+            return np.zeros(0, dtype=bool)
+        freq = np.asarray(spec["arrays"].get("freq_hz", ()), dtype=float)
+        out = np.zeros(freq.shape, dtype=bool)
+        span = ((self.status or {}).get("rfi") or {}).get("uncovered_hz")
+        if not (isinstance(span, (list, tuple)) and len(span) == 2 and freq.size > 1):
+            return out
+        try:
+            first, last = sorted(float(v) for v in span)
+        except (TypeError, ValueError):
+            return out
+        steps = np.abs(np.diff(freq))
+        half = 0.5 * float(np.median(steps[np.isfinite(steps)])) if np.isfinite(steps).any() \
+            else 0.0
+        return np.isfinite(freq) & (freq >= first - half) & (freq <= last + half)
 
     def age_s(self) -> float | None:
         """Seconds since the latest message (``now_s - last_message_s``); None before one."""
