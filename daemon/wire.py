@@ -529,6 +529,17 @@ def validate_header(topic: str, header: dict) -> None:
         for name, count in header["worker_failures"].items():
             _check_type(f"header.worker_failures.{name}", count, _INT)
         _check_fields("header.rfi", header["rfi"], {k: _INT for k in _RFI_COUNTERS})
+        rfi = header["rfi"]
+        for key in ("flagged_rfi_fraction", "uncovered_fraction"):    # of the newest row
+            if key in rfi:
+                _check_type(f"header.rfi.{key}", rfi[key], _NUM_OR_NULL)
+                if rfi[key] is not None and not 0.0 <= rfi[key] <= 1.0:
+                    raise WireError(f"header.rfi.{key} = {rfi[key]!r}: expected a fraction 0..1")
+        band = rfi.get("uncovered_hz")
+        if band is not None and not (isinstance(band, list) and len(band) == 2 and all(
+                isinstance(f, (int, float)) and not isinstance(f, bool) for f in band)):
+            raise WireError(f"header.rfi.uncovered_hz = {_short(band)}: expected [first, last] "
+                            "sky frequencies in Hz, or null")
     if topic == "event" and ("\n" in header["text"] or "\r" in header["text"]):
         raise WireError(f"header.text = {_short(header['text'])}: expected one line")
 

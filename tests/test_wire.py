@@ -394,3 +394,23 @@ def test_encode_refuses_what_the_schema_does_not_allow():
     short = {**arrays, "flagged": (arrays["flagged"][0][:-1], "")}
     with pytest.raises(WireError, match=r"'flagged' has 31 channels, freq_hz has 32"):
         encode("spectrum", header, short)
+
+
+@pytest.mark.parametrize("rfi_extra, fragment", [
+    ({"flagged_rfi_fraction": 1.5}, "header.rfi.flagged_rfi_fraction = 1.5: expected a fraction"),
+    ({"uncovered_fraction": "a third"}, "header.rfi.uncovered_fraction"),
+    ({"uncovered_hz": [1.4e9]}, "header.rfi.uncovered_hz"),
+    ({"worker_failures_bad": None}, None),
+])
+def test_status_fractions_of_the_newest_row_are_checked(rfi_extra, fragment):
+    """The rfi fractions and the uncovered range (issue 12, item 11) are typed on the wire."""
+    header = status_header()
+    good = dict(header["rfi"], flagged_rfi_fraction=0.0, uncovered_fraction=1 / 3,
+                uncovered_hz=[1.4196e9, 1.4200e9])
+    assert wire.decode(wire.encode("status", dict(header, rfi=good))).header["rfi"] == good
+    bad = dict(good, **rfi_extra)
+    if fragment is None:                          # an unknown extra key is passed over
+        wire.decode(wire.encode("status", dict(header, rfi=bad)))
+        return
+    with pytest.raises(wire.WireError, match=re.escape(fragment)):
+        wire.decode(wire.encode("status", dict(header, rfi=bad)))
