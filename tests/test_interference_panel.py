@@ -67,7 +67,7 @@ def status_frames(new_fields=True):
         "sample_rate_hz": 2_400_000.0, "tsys_k": 72.0, "tsys_source": "noise_source",
         "samples_received": 1, "samples_lost": 0, "queue_depth": 0, "disk_free_bytes": 10**10,
         "uptime_s": 10.0, "version": "0.1.0", "writing": "writing", "held_integrations": 0,
-        "dropped_integrations": 0, "scan": "scan-1",
+        "dropped_integrations": 0, "worker_failures": {}, "scan": "scan-1",
         "pointing": {"frame": "galactic", "lon_deg": 80.0, "lat_deg": 0.0, "object": "G080"},
         "drops": {}, "rfi": rfi})
 
