@@ -18,12 +18,14 @@ from spinflip.daemon.control import ControlServer
 from spinflip.daemon.publisher import Publisher
 
 
-def _status_header(n: int) -> dict:
+def status_header(n: int) -> dict:
+    """A valid status header whose numbers follow ``n`` (also used by the abuse tests)."""
     return {"state": "observing", "source": "sim", "lo_hz": 1.42e9, "gain_db": 40.0,
-            "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n % 7, "tsys_source": "fixed",
+            "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n, "tsys_source": "fixed",
             "samples_received": n, "samples_lost": 0, "queue_depth": 0,
             "disk_free_bytes": 1, "writing": "writing", "held_integrations": 0,
-            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n), "version": "0", "scan": "s1",
+            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n),
+            "version": "0", "scan": "s1",
             "drops": {}, "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0,
                                       "object": "x"},
             "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}}
@@ -52,7 +54,7 @@ def main() -> int:
         n = 0
         while not stop.wait(0.1):
             n += 1
-            pub.publish("status", dict(_status_header(n), time_utc=wire.now_utc_iso()))
+            pub.publish("status", dict(status_header(n), time_utc=wire.now_utc_iso()))
 
     thread = threading.Thread(target=publish, daemon=True)
     thread.start()

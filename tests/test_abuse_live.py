@@ -28,6 +28,7 @@ import numpy as np
 import pytest
 import zmq
 
+from abuse_server import status_header
 from spinflip.daemon import collect, control, wire
 from spinflip.daemon.keys import keys_main
 from spinflip.daemon.publisher import Publisher
@@ -201,17 +202,6 @@ def test_many_subscriptions_to_no_topic_stay_bounded(plain_daemon):
         sub.close(0)
 
 
-def _status(n):
-    return {"state": "observing", "source": "sim", "lo_hz": 1.42e9, "gain_db": 40.0,
-            "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n, "tsys_source": "fixed",
-            "samples_received": n, "samples_lost": 0, "queue_depth": 0,
-            "disk_free_bytes": 1, "writing": "writing", "held_integrations": 0,
-            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n), "version": "0", "scan": "s1",
-            "drops": {}, "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0,
-                                      "object": "x"},
-            "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}}
-
-
 def test_subscriptions_to_no_topic_are_ignored_and_prefixes_work():
     pub = Publisher("tcp://127.0.0.1:*")
     pub.start()
@@ -226,9 +216,9 @@ def test_subscriptions_to_no_topic_are_ignored_and_prefixes_work():
             subs.append(s)
         deadline = time.monotonic() + 5
         while pub.refused_subscriptions < 2 and time.monotonic() < deadline:
-            pub.publish("status", _status(1))
+            pub.publish("status", status_header(1))
             time.sleep(0.05)
-        pub.publish("status", _status(2))
+        pub.publish("status", status_header(2))
         assert subs[0].poll(5000) and wire.decode(subs[0].recv_multipart()).topic == "status"
         time.sleep(0.3)
         assert not subs[1].poll(0) and not subs[2].poll(0)
@@ -258,7 +248,7 @@ def test_late_joiners_do_not_give_a_running_subscriber_repeated_data():
         n = 0
         while not stop.wait(0.05):
             n += 1
-            pub.publish("status", _status(n))
+            pub.publish("status", status_header(n))
 
     thread = threading.Thread(target=publish, daemon=True)
     thread.start()
@@ -297,9 +287,9 @@ def test_late_joiners_do_not_give_a_running_subscriber_repeated_data():
 def test_replay_that_brings_news_is_taken():
     """A replay A has not seen (it missed the original) is new data, not ignored."""
     state = ViewState()
-    first = wire.decode(wire.encode("status", dict(_status(1), seq=1)))
-    missed = wire.decode(wire.encode("status", dict(_status(2), seq=2, replay=True)))
-    again = wire.decode(wire.encode("status", dict(_status(2), seq=2, replay=True,
+    first = wire.decode(wire.encode("status", dict(status_header(1), seq=1)))
+    missed = wire.decode(wire.encode("status", dict(status_header(2), seq=2, replay=True)))
+    again = wire.decode(wire.encode("status", dict(status_header(2), seq=2, replay=True,
                                                     time_utc=missed.header["time_utc"])))
     for msg in (first, missed, again):
         state.apply(msg, 1.0)

@@ -14,7 +14,6 @@ from __future__ import annotations
 import datetime as dt
 import json
 import math
-import os
 
 import pytest
 from astropy.io import fits

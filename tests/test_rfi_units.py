@@ -5,7 +5,7 @@ import pytest
 
 from spinflip.daemon import config
 from spinflip.daemon.carriers import CarrierFinder, running_median
-from spinflip.daemon.impulses import CHUNK_SAMPLES, ImpulseBlanker
+from spinflip.daemon.impulses import ImpulseBlanker
 from spinflip.daemon.static_masks import named_channels
 
 N, TAPS = 256, 4
