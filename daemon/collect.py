@@ -84,6 +84,7 @@ import zmq
 from zmq.utils.monitor import recv_monitor_message
 
 from . import wire
+from .publisher import MAX_SUBSCRIPTION_FRAME
 from .archive import _fsync_dir, _write_all
 
 try:  # POSIX advisory locks
@@ -498,6 +499,7 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
         if relay_endpoint is not None:
             relay = ctx.socket(zmq.PUB)
             relay.linger = 0
+            relay.setsockopt(zmq.MAXMSGSIZE, MAX_SUBSCRIPTION_FRAME)   # it reads subscriptions
             try:
                 relay.bind(relay_endpoint)
             except zmq.ZMQError as exc:

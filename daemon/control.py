@@ -698,6 +698,7 @@ def _send_once(ctx: zmq.Context, endpoint: str, payload: bytes, security: Any,
     sock = ctx.socket(zmq.REQ)
     try:
         sock.setsockopt(zmq.LINGER, 0)
+        sock.setsockopt(zmq.MAXMSGSIZE, MAX_FRAME_BYTES)      # a reply is one small frame
         if security is not None:
             security.apply(sock)
         try:

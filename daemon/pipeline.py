@@ -299,6 +299,7 @@ class Daemon:
         self.tsys_now = None            # newest good TsysMeasurement
         self.pending: list = []         # integrations waiting for the first measurement
         self._warned: set = set()
+        self._scan_names: set = set()   # scan names used in this run
 
     def _emission_mask(self, phase: str, t_unix_s: float) -> np.ndarray:
         """bool[nchan]: channels of ``phase`` where HI of the current pointing may appear."""
@@ -824,7 +825,13 @@ class Daemon:
     def _open_scan(self, rows_q: queue.Queue, t: Time) -> None:
         """Start a new scan file (named after its start time; the writer adds -1, -2 if taken)."""
         self._flush_before_switch(rows_q)
-        name = "scan-" + t.strftime("%Y%m%dT%H%M%S")
+        base = name = "scan-" + t.strftime("%Y%m%dT%H%M%S")
+        k = 0                 # the name the file will have, so a control reply can say it
+        while name in self._scan_names or any(
+                (self.out_dir / f"{name}{ext}").exists() for ext in (".fits", ".journal")):
+            k += 1
+            name = f"{base}-{k}"
+        self._scan_names.add(name)
         self.scan_name = name
         self.average.reset()
         self.row_index = 0
