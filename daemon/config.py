@@ -13,8 +13,8 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from .lines import HI_REST_FREQ_HZ
-from .toml_file import TomlFileError, read_toml
+from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
+from spinflip.daemon.toml_file import TomlFileError, read_toml
 
 
 class ConfigError(ValueError):

@@ -25,7 +25,7 @@ d, c = free(), free()
 tmp = tempfile.mkdtemp()
 cfg = os.path.join(tmp, "c.toml")
 open(cfg, "w").write(f'[sim]\nstart = "now"\n[pointing]\nframe = "azel"\nlon = 0.0\nlat = 80.0\n[calibration]\ntsys_from = "fixed"\n[publish]\ndata = "tcp://127.0.0.1:{d}"\ncontrol = "tcp://127.0.0.1:{c}"\n')
-p = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config", cfg, "--out", os.path.join(tmp, "out")], stderr=subprocess.DEVNULL, stdout=subprocess.DEVNULL)
+p = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config", cfg, "--out", os.path.join(tmp, "out")], stderr=subprocess.DEVNULL, stdout=subprocess.DEVNULL)
 time.sleep(8)
 r0 = rss(p.pid); print(f"daemon RSS at rest: {r0:.0f} MB")
 for name, port in (("control", c), ("data", d)):

@@ -20,9 +20,9 @@ from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 from astropy.io import fits
 from astropy.time import Time
 
-from spinflip.daemon import frames
-from spinflip.daemon.galaxy import ModelGalaxy
-from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sky import coordinates
+from spinflip.daemon.sources.galaxy import ModelGalaxy
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 
 
 def main() -> None:
@@ -42,7 +42,7 @@ def main() -> None:
     dev = rows["TSYS"] / truth - 1
     print(f"TSYS: {len(rows)} rows, {np.nanmin(rows['TSYS']):.2f}..{np.nanmax(rows['TSYS']):.2f} K "
           f"against true {truth:.2f} K: worst {100 * np.nanmax(np.abs(dev)):.2f} %")
-    loc = frames.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
+    loc = coordinates.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
     worst = 0.0
     for r in rows:
         t = Time(r["DATE-OBS"], scale="utc")

@@ -1,7 +1,7 @@
 """Test helper: the daemon's live sockets alone, in a process of their own, for abuse tests.
 
-``python tests/abuse_server.py [--keys DIR]`` binds a :class:`~spinflip.daemon.publisher.
-Publisher` (XPUB data socket) and a :class:`~spinflip.daemon.control.ControlServer` (control
+``python tests/abuse_server.py [--keys DIR]`` binds a :class:`~spinflip.daemon.live.publisher.
+Publisher` (XPUB data socket) and a :class:`~spinflip.daemon.live.control.ControlServer` (control
 socket) on free loopback ports, prints one JSON line ``{"data": ..., "control": ...}``,
 publishes a status message every 0.1 s and runs until its standard input closes. The control
 handler counts the calls per command and returns the counts (``status`` returns them too),
@@ -13,9 +13,9 @@ import json
 import sys
 import threading
 
-from spinflip.daemon import wire
-from spinflip.daemon.control import ControlServer
-from spinflip.daemon.publisher import Publisher
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.control import ControlServer
+from spinflip.daemon.live.publisher import Publisher
 
 
 def status_header(n: int) -> dict:
@@ -34,7 +34,7 @@ def status_header(n: int) -> dict:
 def main() -> int:
     security = None
     if len(sys.argv) == 3 and sys.argv[1] == "--keys":
-        from spinflip.daemon.keys import ServerSecurity
+        from spinflip.daemon.live.keys import ServerSecurity
         import zmq
         security = ServerSecurity.from_config({"keys": sys.argv[2]})
         security.start(zmq.Context.instance())
@@ -54,7 +54,7 @@ def main() -> int:
         n = 0
         while not stop.wait(0.1):
             n += 1
-            pub.publish("status", dict(status_header(n), time_utc=wire.now_utc_iso()))
+            pub.publish("status", dict(status_header(n), time_utc=schema.now_utc_iso()))
 
     thread = threading.Thread(target=publish, daemon=True)
     thread.start()

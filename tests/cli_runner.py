@@ -5,13 +5,13 @@ import sys
 
 import numpy as np
 
-from spinflip.daemon.galaxy import ModelGalaxy
-from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sources.galaxy import ModelGalaxy
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 
 
 def run_cli(args, cwd=None, timeout=180, stdin=None):
-    """``python -m spinflip.daemon.cli ARGS`` -> CompletedProcess (text, captured)."""
-    return subprocess.run([sys.executable, "-m", "spinflip.daemon.cli", *map(str, args)],
+    """``python -m spinflip.cli ARGS`` -> CompletedProcess (text, captured)."""
+    return subprocess.run([sys.executable, "-m", "spinflip.cli", *map(str, args)],
                           cwd=cwd, capture_output=True, text=True, timeout=timeout, input=stdin)
 
 

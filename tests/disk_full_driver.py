@@ -25,7 +25,7 @@ def wait_for(cond, timeout_s=60.0):
 
 
 def main(work: Path) -> None:
-    from spinflip.daemon import archive
+    from spinflip.daemon.storage import archive
     out = work / "out"
     out.mkdir(exist_ok=True)
     subprocess.run(["mount", "-t", "tmpfs", "-o", "size=2m", "spinflip-test", str(out)],
@@ -34,7 +34,7 @@ def main(work: Path) -> None:
     cfg.write_text(live_config(0.5, channels=256))
     log_path = work / "daemon.log"
     log = open(log_path, "w")
-    proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+    proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--out", str(out)], stdout=log, stderr=subprocess.STDOUT)
 
     def rows_on_disk():

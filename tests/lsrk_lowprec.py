@@ -1,6 +1,6 @@
 """An independent, low-precision LSRK correction with numpy only (a test helper).
 
-Nothing here uses astropy: it checks :func:`spinflip.daemon.frames.vframe_lsrk_m_s` (which
+Nothing here uses astropy: it checks :func:`spinflip.daemon.sky.coordinates.vframe_lsrk_m_s` (which
 relies on astropy's frames) from textbook formulas. The observer's velocity relative to the
 kinematic LSR is the sum of three parts, all in J2000 equatorial axes (taken as ICRS: the two
 differ by some tens of milliarcseconds):

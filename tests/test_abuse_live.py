@@ -29,9 +29,11 @@ import pytest
 import zmq
 
 from abuse_server import status_header
-from spinflip.daemon import collect, control, wire
-from spinflip.daemon.keys import keys_main
-from spinflip.daemon.publisher import Publisher
+from spinflip.daemon.live import collect
+from spinflip.daemon.live import control
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.keys import keys_main
+from spinflip.daemon.live.publisher import Publisher
 from spinflip.tui.state import ViewState
 
 HERE = Path(__file__).parent
@@ -197,7 +199,7 @@ def test_many_subscriptions_to_no_topic_stay_bounded(plain_daemon):
     sub.connect(daemon["data"])
     try:
         assert sub.poll(5000), "no status after the flood"
-        assert wire.decode(sub.recv_multipart()).topic == "status"
+        assert schema.decode(sub.recv_multipart()).topic == "status"
     finally:
         sub.close(0)
 
@@ -219,7 +221,7 @@ def test_subscriptions_to_no_topic_are_ignored_and_prefixes_work():
             pub.publish("status", status_header(1))
             time.sleep(0.05)
         pub.publish("status", status_header(2))
-        assert subs[0].poll(5000) and wire.decode(subs[0].recv_multipart()).topic == "status"
+        assert subs[0].poll(5000) and schema.decode(subs[0].recv_multipart()).topic == "status"
         time.sleep(0.3)
         assert not subs[1].poll(0) and not subs[2].poll(0)
         assert pub.refused_subscriptions == 2
@@ -263,7 +265,7 @@ def test_late_joiners_do_not_give_a_running_subscriber_repeated_data():
                 s.connect(pub.bound)
                 joiners.append(s)
             while a.poll(10):
-                msg = wire.decode(a.recv_multipart())
+                msg = schema.decode(a.recv_multipart())
                 got.append(msg)
                 state.apply(msg, time.monotonic())
     finally:
@@ -287,9 +289,9 @@ def test_late_joiners_do_not_give_a_running_subscriber_repeated_data():
 def test_replay_that_brings_news_is_taken():
     """A replay A has not seen (it missed the original) is new data, not ignored."""
     state = ViewState()
-    first = wire.decode(wire.encode("status", dict(status_header(1), seq=1)))
-    missed = wire.decode(wire.encode("status", dict(status_header(2), seq=2, replay=True)))
-    again = wire.decode(wire.encode("status", dict(status_header(2), seq=2, replay=True,
+    first = schema.decode(schema.encode("status", dict(status_header(1), seq=1)))
+    missed = schema.decode(schema.encode("status", dict(status_header(2), seq=2, replay=True)))
+    again = schema.decode(schema.encode("status", dict(status_header(2), seq=2, replay=True,
                                                     time_utc=missed.header["time_utc"])))
     for msg in (first, missed, again):
         state.apply(msg, 1.0)
@@ -315,7 +317,7 @@ def _hostile_messages():
         "digits": [b"spectrum", digits, *good[2:]],
         "shape": [b"spectrum", json.dumps(shape).encode(), *good[2:]],
         "shape_big": [b"spectrum", json.dumps(shape_big).encode(), *good[2:]],
-        "big_header": [b"spectrum", b" " * (wire.MAX_HEADER_BYTES + 1), *good[2:]],
+        "big_header": [b"spectrum", b" " * (schema.MAX_HEADER_BYTES + 1), *good[2:]],
         "many_frames": [b"spectrum", good[1], *([b""] * 100)],
         "long_topic": [b"s" * 100000, good[1]],
     }
@@ -323,10 +325,10 @@ def _hostile_messages():
 
 def test_decode_refuses_every_hostile_message_in_one_bounded_line():
     for name, frames in _hostile_messages().items():
-        with pytest.raises(wire.WireError) as info:
-            wire.decode(frames)
+        with pytest.raises(schema.WireError) as info:
+            schema.decode(frames)
         text = str(info.value)
-        assert len(text) <= wire.MAX_ERROR_CHARS and "\n" not in text, (name, text)
+        assert len(text) <= schema.MAX_ERROR_CHARS and "\n" not in text, (name, text)
 
 
 def test_collect_keeps_going_past_hostile_messages(tmp_path):
@@ -397,7 +399,7 @@ def test_collect_drops_a_station_announcing_a_huge_frame_without_buffering_it(tm
     listener.listen(4)
     port = listener.getsockname()[1]
     proc = subprocess.Popen(
-        [sys.executable, "-m", "spinflip.daemon.cli", "collect", f"A=tcp://127.0.0.1:{port}",
+        [sys.executable, "-m", "spinflip.cli", "collect", f"A=tcp://127.0.0.1:{port}",
          "--duration", "8"], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     try:
         listener.settimeout(10)

@@ -25,10 +25,10 @@ from astropy.io import fits
 from astropy.time import Time
 from astropy.wcs import WCS
 
-from spinflip.daemon import archive
-from spinflip.daemon.archive import ScanWriter, read_journal, read_scan, recover
-from spinflip.daemon.inspect_file import format_summary, summarize, velocity_axis_lsrk_m_s
-from spinflip.daemon.lines import HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
+from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.archive import ScanWriter, read_journal, read_scan, recover
+from spinflip.daemon.commands.inspect import format_summary, summarize, velocity_axis_lsrk_m_s
+from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
 
 NCHAN = 64
 HEADER = {"SITELAT": 47.25, "SITELONG": 9.5, "SITEELEV": 610.0, "TELESCOP": "Hilltop 3m dish",
@@ -154,7 +154,7 @@ CHILD = """
 import os, signal, sys
 from pathlib import Path
 import numpy as np
-from spinflip.daemon import archive
+from spinflip.daemon.storage import archive
 {make_row}
 out, n, mode = Path(sys.argv[1]), int(sys.argv[2]), sys.argv[3]
 w = archive.ScanWriter(out, "scan-crash", {header!r}, {nchan})
@@ -374,7 +374,7 @@ def test_summarize_rejects_other_files_naming_them(tmp_path, content, fragment):
 
 
 def test_inspect_command_exits_2_on_garbage(tmp_path, capsys):
-    from spinflip.daemon.cli import main
+    from spinflip.cli import main
     path = tmp_path / "garbage.fits"
     path.write_bytes(os.urandom(3000))
     assert main(["inspect", str(path)]) == 2

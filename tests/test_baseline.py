@@ -1,4 +1,4 @@
-"""Polynomial baseline over line-free channels (spinflip.daemon.baseline).
+"""Polynomial baseline over line-free channels (spinflip.daemon.products.baseline).
 
 Synthetic spectrum: a cubic baseline, a positive Gaussian emission line of 30 K and the two
 negative half-height fold ghosts that frequency switching leaves at +- the switch offset
@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from numpy.polynomial import Polynomial
 
-from spinflip.daemon.baseline import BaselineFit, fit_baseline
+from spinflip.daemon.products.baseline import BaselineFit, fit_baseline
 
 NCHAN = 1024
 SIGMA_K = 0.2                    # injected noise, K

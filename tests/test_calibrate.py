@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from spinflip.daemon.block import REF, SIG
-from spinflip.daemon.calibrate import calibrate
-from spinflip.daemon.spectrometer import Integration, PhaseSums
+from spinflip.daemon.dsp.block import REF, SIG
+from spinflip.daemon.calibration.kelvin import calibrate
+from spinflip.daemon.dsp.spectrometer import Integration, PhaseSums
 
 
 def _integ(sig, ref):

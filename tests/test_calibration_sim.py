@@ -15,10 +15,10 @@ from astropy.io import fits
 from astropy.time import Time
 
 from cli_runner import model_line, run_cli, true_tsys_k, write_config
-from spinflip.daemon import frames
-from spinflip.daemon.channelizer import make_channelizer
-from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
-from spinflip.daemon.spectral_axis import velocity_axis_lsrk_m_s
+from spinflip.daemon.sky import coordinates
+from spinflip.daemon.dsp.channelizer import make_channelizer
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sky.spectral_axis import velocity_axis_lsrk_m_s
 
 SITE = (46.82, 8.37, 640.0)          # the default (fictional) site
 
@@ -131,7 +131,7 @@ def test_vframe_matches_astropy_lsrk_for_each_recorded_row(inband):
     # DATE-OBS, GLON, GLAT and site: within 0.01 km/s
     path, _ = inband
     head, rows, _, _, _ = _table(path)
-    loc = frames.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
+    loc = coordinates.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
     for r in rows[::3]:
         t = Time(r["DATE-OBS"], scale="utc")
         target = SkyCoord(l=r["GLON"] * u.deg, b=r["GLAT"] * u.deg, frame=Galactic(),
@@ -163,7 +163,7 @@ def test_pointing_columns_match_astropy(inband):
     # RA/Dec and az/el recorded per row against astropy transforms built here
     path, _ = inband
     head, rows, _, _, _ = _table(path)
-    loc = frames.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
+    loc = coordinates.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
     r = rows[-1]
     c = SkyCoord(l=r["GLON"] * u.deg, b=r["GLAT"] * u.deg, frame=Galactic())
     icrs = c.icrs
@@ -263,7 +263,7 @@ def test_column_density_against_the_model_column(thin):
     # N(HI) = 1.823e18 int T_B dv, optically thin (Dickey & Lockman 1990), against the model's
     # true (beam-averaged) column. With a peak optical depth of ~0.1 the thin formula reads a
     # few per cent low; the model's own T_B integral gives the size of that effect.
-    from spinflip.daemon.galaxy import ModelGalaxy, beam_directions
+    from spinflip.daemon.sources.galaxy import ModelGalaxy, beam_directions
     from cli_runner import beam_fwhm_deg
     path, _ = thin
     _, _, _, ah, _ = _table(path)

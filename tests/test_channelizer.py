@@ -4,8 +4,8 @@ import numpy as np
 import pytest
 import scipy.signal
 
-from spinflip.daemon.bench import radiometer_efficiency, run_bench
-from spinflip.daemon.channelizer import (Channelizer, StreamingChannelizer,
+from spinflip.daemon.commands.bench import radiometer_efficiency, run_bench
+from spinflip.daemon.dsp.channelizer import (Channelizer, StreamingChannelizer,
                                          make_channelizer, power_sums)
 
 N = 256

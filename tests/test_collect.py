@@ -22,8 +22,9 @@ import numpy as np
 import pytest
 import zmq
 
-from spinflip.daemon import collect, wire
-from spinflip.daemon.collect import (SpectrumArchive, main_collect, parse_station, read_spectra,
+from spinflip.daemon.live import collect
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.collect import (SpectrumArchive, main_collect, parse_station, read_spectra,
                                      run_collect)
 
 REST_HZ = 1_420_405_751.768          # HI rest frequency (Hellwig et al. 1970, from memory)
@@ -52,11 +53,11 @@ def spectrum_frames(station, row, kind="integration", day=DAY):
         "flagged": (np.zeros(nchan, bool), ""),
         "exposure_s": (np.ones(nchan, np.float32), "s"),
     }
-    return wire.encode("spectrum", header, arrays)
+    return schema.encode("spectrum", header, arrays)
 
 
 def status_frames(station):
-    return wire.encode("status", {
+    return schema.encode("status", {
         "state": "observing", "source": f"sim-{station}", "lo_hz": 1.42e9, "gain_db": 40.0,
         "sample_rate_hz": 2.4e6, "tsys_k": None, "tsys_source": "none", "samples_received": 1,
         "samples_lost": 0, "queue_depth": 0, "disk_free_bytes": 1, "uptime_s": 1.0,
@@ -68,7 +69,7 @@ def status_frames(station):
 
 
 def event_frames(text):
-    return wire.encode("event", {"severity": "info", "text": text})
+    return schema.encode("event", {"severity": "info", "text": text})
 
 
 def free_tcp_endpoint():
@@ -158,7 +159,7 @@ def test_two_stations_relayed_and_archived_without_mixing(tmp_path):
         def drain(timeout_ms=20):
             while relayed.poll(timeout_ms):
                 frames = relayed.recv_multipart()
-                got.append((frames, wire.decode(frames)))
+                got.append((frames, schema.decode(frames)))
                 timeout_ms = 0
 
         deadline = time.monotonic() + 8.0
@@ -245,8 +246,8 @@ def test_two_stations_relayed_and_archived_without_mixing(tmp_path):
 # the archive on its own: format, torn tails, CRC, day files, lock
 # ----------------------------------------------------------------------------------------------
 def relabel(frames, station):
-    msg = wire.decode(frames)
-    return wire.encode("spectrum", {**msg.header, "station": station},
+    msg = schema.decode(frames)
+    return schema.encode("spectrum", {**msg.header, "station": station},
                        {d["name"]: (msg.arrays[d["name"]], d["unit"])
                         for d in msg.header["arrays"]})
 

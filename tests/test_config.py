@@ -88,7 +88,7 @@ DEEP = {
 @pytest.mark.parametrize("kind", sorted(DEEP))
 def test_deeply_nested_toml_is_one_line_exit_2_for_run_doctor_and_chain(tmp_path, capsys, kind):
     """tomllib recurses per nesting level; the traceback was 3000 lines long."""
-    from spinflip.daemon import cli
+    from spinflip import cli
     f = tmp_path / "deep.toml"
     f.write_text(DEEP[kind])
     with pytest.raises(config.ConfigError, match="nested too deeply") as err:

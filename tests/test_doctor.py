@@ -27,8 +27,8 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from spinflip.daemon import doctor
-from spinflip.daemon.doctor import (
+from spinflip.daemon.commands import doctor
+from spinflip.daemon.commands.doctor import (
     Check,
     ClockState,
     Roots,
@@ -286,7 +286,7 @@ def test_rate_estimate_formula():
 def test_rate_estimate_covers_what_the_archive_writes(tmp_path):
     """Bytes per row on disk (journal + FITS) measured with the archive itself stay below the
     estimate: the doctor must not promise more hours than there are."""
-    from spinflip.daemon.archive import ScanWriter
+    from spinflip.daemon.storage.archive import ScanWriter
     nchan = 2048
     header = {"SITELAT": 54.0, "SITELONG": -2.0, "SITEELEV": 400.0, "TELESCOP": "HRFS-3",
               "SPECSYS": "TOPOCENT", "BUNIT": "K"}
@@ -427,7 +427,7 @@ def test_port_held_by_our_daemon_only_warns(tmp_path, taken_port):
 def test_spinflip_daemon_argv():
     assert doctor._is_spinflip_daemon(["/opt/spinflip/bin/python", "/opt/spinflip/bin/spinflip",
                                        "run", "--config", "x.toml"])
-    assert doctor._is_spinflip_daemon(["python", "-m", "spinflip.daemon.cli", "demo"])
+    assert doctor._is_spinflip_daemon(["python", "-m", "spinflip.cli", "demo"])
     assert not doctor._is_spinflip_daemon(["python", "-m", "pytest", "/home/obs/spinflip"])
 
 

@@ -23,10 +23,11 @@ from astropy.io import fits
 from astropy.time import Time
 
 from cli_runner import live_config
-from spinflip.daemon import archive, config
-from spinflip.daemon.pipeline import Daemon
-from spinflip.daemon.sample_clock import SampleClock
-from spinflip.daemon.scan_store import ScanStore
+from spinflip.daemon.storage import archive
+from spinflip.daemon import config
+from spinflip.daemon.run.observation import Daemon
+from spinflip.daemon.sources.sample_clock import SampleClock
+from spinflip.daemon.storage.writer import ScanStore
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -55,7 +56,7 @@ def test_notify_ready_watchdog_and_sigterm_keeps_the_integration_in_progress(tmp
     out = tmp_path / "out"
     env = dict(os.environ, NOTIFY_SOCKET=sock_path, WATCHDOG_USEC="400000")
     env.pop("WATCHDOG_PID", None)
-    proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+    proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--out", str(out)], env=env,
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     got: list[tuple[float, str]] = []

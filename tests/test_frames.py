@@ -16,8 +16,8 @@ from astropy.utils.exceptions import AstropyWarning
 from erfa import ErfaWarning
 
 import lsrk_lowprec
-from spinflip.daemon import frames
-from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
+from spinflip.daemon.sky import coordinates
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
 
 ARCSEC_DEG = 1.0 / 3600.0
 
@@ -82,14 +82,14 @@ def _galactic(l_deg, b_deg):
 def test_vframe_against_astropy_spectralcoord(quiet, iso, lat, lon, height, l, b):
     """VFRAME from our velocity projection vs astropy's SpectralCoord LSRK transform."""
     t = Time(iso, scale="utc")
-    loc = frames.site_location(lat, lon, height)
+    loc = coordinates.site_location(lat, lon, height)
     target = SkyCoord(l=l * u.deg, b=b * u.deg, frame=Galactic(), distance=1 * u.kpc,
                       radial_velocity=0 * u.km / u.s, pm_l_cosb=0 * u.mas / u.yr, pm_b=0 * u.mas / u.yr)
     # Reference: astropy's SpectralCoord moved to an observer at rest in its LSRK frame.
     sc = SpectralCoord(HI_REST_FREQ_HZ * u.Hz, observer=loc.get_itrs(t), target=target)
     f_lsrk = sc.with_observer_stationary_relative_to("lsrk").to_value(u.Hz)
     v_ref = C_M_S * (HI_REST_FREQ_HZ - f_lsrk) / HI_REST_FREQ_HZ
-    ours = frames.vframe_lsrk_m_s(_galactic(l, b), loc, t)
+    ours = coordinates.vframe_lsrk_m_s(_galactic(l, b), loc, t)
     assert abs(ours - v_ref) < 10.0   # m/s, i.e. 0.01 km/s
     assert abs(ours) < 60e3           # Earth orbit + rotation + solar motion stay below ~50 km/s
 
@@ -106,15 +106,15 @@ def test_vframe_against_independent_low_precision(quiet, iso, lat, lon, height, 
     t = Time(iso, scale="utc")
     ra, dec = lsrk_lowprec.galactic_to_radec_deg(l, b)
     expected = lsrk_lowprec.vframe_lsrk_m_s(t.jd, lat, lon, height, ra, dec)
-    ours = frames.vframe_lsrk_m_s(_galactic(l, b), frames.site_location(lat, lon, height), t)
+    ours = coordinates.vframe_lsrk_m_s(_galactic(l, b), coordinates.site_location(lat, lon, height), t)
     assert abs(ours - expected) < 100.0   # m/s, i.e. 0.1 km/s
 
 
 def test_vframe_is_vectorised_over_time(quiet):
     times = Time([c[0] for c in LSRK_CASES[:4]], scale="utc")
-    loc = frames.site_location(46.82, 8.37, 640.0)
-    many = frames.vframe_lsrk_m_s(_galactic(30.0, 0.0), loc, times)
-    one_by_one = [frames.vframe_lsrk_m_s(_galactic(30.0, 0.0), loc, t) for t in times]
+    loc = coordinates.site_location(46.82, 8.37, 640.0)
+    many = coordinates.vframe_lsrk_m_s(_galactic(30.0, 0.0), loc, times)
+    one_by_one = [coordinates.vframe_lsrk_m_s(_galactic(30.0, 0.0), loc, t) for t in times]
     assert many.shape == (4,)
     np.testing.assert_allclose(many, one_by_one, rtol=0, atol=1e-6)
 
@@ -176,7 +176,7 @@ def _sep_deg(lon1, lat1, lon2, lat2):
 
 def test_azel_to_sky_against_astropy(quiet, draws):
     t, loc, az, el = draws
-    got = frames.azel_to_sky(az, el, loc, t)
+    got = coordinates.azel_to_sky(az, el, loc, t)
     # Reference: astropy's AltAz (no refraction: pressure 0) built here, to Galactic and ICRS.
     aa = SkyCoord(az=az * u.deg, alt=el * u.deg,
                   frame=AltAz(obstime=t, location=loc, pressure=0 * u.hPa))
@@ -190,12 +190,12 @@ def test_sky_to_azel_against_astropy(quiet, draws):
     t, loc, az, el = draws
     l_deg = np.linspace(0, 360, N_DRAWS, endpoint=False)
     b_deg = np.linspace(-80, 80, N_DRAWS)
-    got_az, got_el = frames.sky_to_azel("galactic", l_deg, b_deg, loc, t)
+    got_az, got_el = coordinates.sky_to_azel("galactic", l_deg, b_deg, loc, t)
     ref = _galactic(l_deg, b_deg).transform_to(
         AltAz(obstime=t, location=loc, pressure=0 * u.hPa))   # astropy, as reference
     assert np.max(_sep_deg(got_az, got_el, ref.az.deg, ref.alt.deg)) < ARCSEC_DEG
     ra, dec = np.linspace(0, 360, N_DRAWS, endpoint=False), np.linspace(-85, 85, N_DRAWS)
-    got_az, got_el = frames.sky_to_azel("radec", ra, dec, loc, t)
+    got_az, got_el = coordinates.sky_to_azel("radec", ra, dec, loc, t)
     ref = SkyCoord(ra=ra * u.deg, dec=dec * u.deg).transform_to(
         AltAz(obstime=t, location=loc, pressure=0 * u.hPa))
     assert np.max(_sep_deg(got_az, got_el, ref.az.deg, ref.alt.deg)) < ARCSEC_DEG
@@ -205,8 +205,8 @@ def test_galactic_azel_galactic_round_trip(quiet, draws):
     t, loc, _az, _el = draws
     rng = np.random.default_rng(7)
     l_deg, b_deg = rng.uniform(0, 360, N_DRAWS), np.degrees(np.arcsin(rng.uniform(-1, 1, N_DRAWS)))
-    az, el = frames.sky_to_azel("galactic", l_deg, b_deg, loc, t)
-    back = frames.azel_to_sky(az, el, loc, t)
+    az, el = coordinates.sky_to_azel("galactic", l_deg, b_deg, loc, t)
+    back = coordinates.azel_to_sky(az, el, loc, t)
     assert np.max(_sep_deg(l_deg, b_deg, back["GLON"], back["GLAT"])) < 1e-6
 
 
@@ -223,7 +223,7 @@ def test_sky_to_azel_against_spherical_trigonometry():
     el_deg = np.degrees(np.arcsin(np.sin(d) * np.sin(phi) + np.cos(d) * np.cos(phi) * np.cos(h)))
     az_deg = np.degrees(np.arctan2(-np.sin(h),
                                    np.tan(d) * np.cos(phi) - np.cos(h) * np.sin(phi))) % 360
-    got_az, got_el = frames.sky_to_azel("radec", ra, dec, frames.site_location(lat, lon, 0.0), t)
+    got_az, got_el = coordinates.sky_to_azel("radec", ra, dec, coordinates.site_location(lat, lon, 0.0), t)
     assert 20.0 < el_deg < 80.0   # a well-conditioned azimuth
     assert got_el == pytest.approx(el_deg, abs=0.05)
     assert got_az == pytest.approx(az_deg, abs=0.05)
@@ -233,7 +233,7 @@ def test_drift_scan_on_the_meridian_moves_at_the_sidereal_rate():
     """At az 180 deg the RA seen is the local sidereal time: it grows 15.0411 deg per UTC hour
     (1.00273790935 sidereal per solar day, from memory)."""
     t = Time("2026-12-02T00:00:00", scale="utc") + np.arange(0, 6) * u.hour
-    sky = frames.azel_to_sky(180.0, 40.0, frames.site_location(46.82, 8.37, 640.0), t)
+    sky = coordinates.azel_to_sky(180.0, 40.0, coordinates.site_location(46.82, 8.37, 640.0), t)
     step_deg = np.diff(np.unwrap(np.radians(sky["RA"]))) * 180 / np.pi
     np.testing.assert_allclose(step_deg, 15.0 * 1.00273790935, atol=0.005)
     # A meridian at elevation 40 from latitude 46.82 looks at Dec = 40 + 46.82 - 90 (common
@@ -242,34 +242,34 @@ def test_drift_scan_on_the_meridian_moves_at_the_sidereal_rate():
 
 
 def test_describe_adds_icrs_ra_dec():
-    loc = frames.site_location(46.82, 8.37, 640.0)
+    loc = coordinates.site_location(46.82, 8.37, 640.0)
     t = Time("2026-12-02T20:00:00", scale="utc")
-    pos = frames.describe(SkyCoord(ra=83.6331 * u.deg, dec=22.0145 * u.deg), loc, t)
+    pos = coordinates.describe(SkyCoord(ra=83.6331 * u.deg, dec=22.0145 * u.deg), loc, t)
     assert set(pos) == {"GLON", "GLAT", "RA", "DEC", "AZIMUTH", "ELEVATIO"}
     assert all(isinstance(v, float) for v in pos.values())
     assert pos["RA"] == pytest.approx(83.6331, abs=1e-9)
     assert pos["DEC"] == pytest.approx(22.0145, abs=1e-9)
     # The Galactic centre lies at RA 266.405 deg, Dec -28.936 deg (ESA 1997, from memory).
-    gc = frames.describe(_galactic(0.0, 0.0), loc, t)
+    gc = coordinates.describe(_galactic(0.0, 0.0), loc, t)
     assert gc["RA"] == pytest.approx(266.405, abs=1e-3)
     assert gc["DEC"] == pytest.approx(-28.936, abs=1e-3)
     # describe's az/el agree with sky_to_azel's
-    az, el = frames.sky_to_azel("galactic", 0.0, 0.0, loc, t)
+    az, el = coordinates.sky_to_azel("galactic", 0.0, 0.0, loc, t)
     assert (gc["AZIMUTH"], gc["ELEVATIO"]) == pytest.approx((az, el), abs=1e-9)
 
 
 def test_sky_to_azel_rejects_unknown_frame():
-    loc = frames.site_location(46.82, 8.37, 640.0)
+    loc = coordinates.site_location(46.82, 8.37, 640.0)
     with pytest.raises(ValueError, match="'azel'.*'galactic', 'radec'"):
-        frames.sky_to_azel("azel", 10.0, 10.0, loc, Time("2026-12-02T00:00:00"))
+        coordinates.sky_to_azel("azel", 10.0, 10.0, loc, Time("2026-12-02T00:00:00"))
 
 
 def test_best_plane_longitude_is_above_horizon():
-    loc = frames.site_location(46.82, 8.37, 640.0)
+    loc = coordinates.site_location(46.82, 8.37, 640.0)
     for hours in range(0, 24, 3):
         t = Time("2026-12-02T00:00:00") + hours * u.hour
-        l = frames.best_plane_longitude(loc, t, 10.0)
-        az, el = frames.galactic_to_altaz(l, 0.0, loc, t)
+        l = coordinates.best_plane_longitude(loc, t, 10.0)
+        az, el = coordinates.galactic_to_altaz(l, 0.0, loc, t)
         assert el > 10.0
 
 
@@ -292,8 +292,8 @@ def test_offline_beyond_and_inside_the_bundled_tables(monkeypatch, caplog):
     monkeypatch.setattr(urllib.request, "urlopen", refuse)
     # Make astropy and frames read their tables again, with the network blocked.
     monkeypatch.setattr(iers.IERS_Auto, "iers_table", None)
-    monkeypatch.setattr(frames, "_REPORTED", set())
-    frames._eop_limits.cache_clear()
+    monkeypatch.setattr(coordinates, "_REPORTED", set())
+    coordinates._eop_limits.cache_clear()
     try:
         # Reference ends straight from astropy's bundled tables (astropy-iers-data).
         with warnings.catch_warnings():
@@ -302,18 +302,18 @@ def test_offline_beyond_and_inside_the_bundled_tables(monkeypatch, caplog):
             leap_mjd = float(iers.LeapSeconds.auto_open().expires.mjd)
         beyond = Time(end_mjd + 3 * 365.25, format="mjd", scale="utc")
         inside = Time(min(end_mjd, leap_mjd) - 30.0, format="mjd", scale="utc")
-        loc = frames.site_location(46.82, 8.37, 640.0)
+        loc = coordinates.site_location(46.82, 8.37, 640.0)
         target = _galactic(30.0, 0.0)
         with caplog.at_level(logging.WARNING, logger="spinflip.frames"), \
                 warnings.catch_warnings():
             warnings.simplefilter("error")   # a warning escaping frames would raise here
             results = {}
             for name, t in (("beyond", beyond), ("inside", inside)):
-                results[name] = (frames.vframe_lsrk_m_s(target, loc, t),
-                                 frames.describe(target, loc, t), frames.check_eop(t))
-            frames.vframe_lsrk_m_s(target, loc, beyond)   # a second time: logged only once
+                results[name] = (coordinates.vframe_lsrk_m_s(target, loc, t),
+                                 coordinates.describe(target, loc, t), coordinates.check_eop(t))
+            coordinates.vframe_lsrk_m_s(target, loc, beyond)   # a second time: logged only once
     finally:
-        frames._eop_limits.cache_clear()
+        coordinates._eop_limits.cache_clear()
     assert attempts == []
 
     vf, pos, line = results["beyond"]
@@ -332,7 +332,7 @@ def test_offline_beyond_and_inside_the_bundled_tables(monkeypatch, caplog):
     assert line is None
     assert np.isfinite(vf) and np.isfinite(pos["AZIMUTH"])
 
-    cov = frames.eop_coverage(beyond)
+    cov = coordinates.eop_coverage(beyond)
     assert cov["eop_end_mjd"] == end_mjd and cov["leap_expires_mjd"] == leap_mjd
     assert cov["beyond_eop"] and cov["beyond_leap"]
 
@@ -340,13 +340,13 @@ def test_offline_beyond_and_inside_the_bundled_tables(monkeypatch, caplog):
 def test_check_eop_names_an_expired_leap_second_table(monkeypatch):
     # the bundled tables' dates change with the package: put the leap-second table's expiry
     # 100 days before the end of the Earth-orientation table, whatever the bundle says
-    real = frames._eop_limits()
+    real = coordinates._eop_limits()
     leap = real["eop_end_mjd"] - 100.0
-    fake = dict(real, leap_expires_mjd=leap, leap_expires_date=frames._mjd_date(leap))
-    monkeypatch.setattr(frames, "_eop_limits", lambda: fake)
-    cov = frames.eop_coverage(Time(leap + 1.0, format="mjd", scale="utc"))
+    fake = dict(real, leap_expires_mjd=leap, leap_expires_date=coordinates._mjd_date(leap))
+    monkeypatch.setattr(coordinates, "_eop_limits", lambda: fake)
+    cov = coordinates.eop_coverage(Time(leap + 1.0, format="mjd", scale="utc"))
     assert cov["beyond_leap"] and not cov["beyond_eop"]
     t = Time(cov["leap_expires_mjd"] + 1.0, format="mjd", scale="utc")
-    line = frames.check_eop(t)
+    line = coordinates.check_eop(t)
     assert cov["leap_expires_date"] in line and "leap-second" in line
     assert "Earth-orientation" not in line

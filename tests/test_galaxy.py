@@ -1,4 +1,4 @@
-"""Tests of the model Milky Way (spinflip.daemon.galaxy).
+"""Tests of the model Milky Way (spinflip.daemon.sources.galaxy).
 
 Sources of the checks are named beside each test: Binney & Merrifield 1998 (*Galactic
 Astronomy*, ch. 9: kinematics of the gas disk, terminal velocity), Dickey & Lockman 1990
@@ -14,7 +14,7 @@ import pytest
 from astropy import units as u
 from astropy.coordinates import SkyCoord
 
-from spinflip.daemon.galaxy import (NHI_PER_K_KMS, T_CMB_K, ModelGalaxy, beam_directions,
+from spinflip.daemon.sources.galaxy import (NHI_PER_K_KMS, T_CMB_K, ModelGalaxy, beam_directions,
                                     rotation_speed_kms)
 
 V = np.linspace(-400.0, 400.0, 1601)        # 0.5 km/s channels, wide enough for all the gas

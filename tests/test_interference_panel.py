@@ -14,7 +14,7 @@ import re
 import numpy as np
 from rich.console import Console
 
-from spinflip.daemon import wire
+from spinflip.daemon.live import schema
 from spinflip.tui import panels
 from spinflip.tui.state import ViewState
 
@@ -52,7 +52,7 @@ def spectrum_frames(row=0):
               "data": (data.astype(np.float32), "K"), "flagged": (flagged, ""),
               "exposure_s": (np.where(np.isin(np.arange(NCHAN), UNCOVERED), 0.0, 2.0)
                              .astype(np.float32), "s")}
-    return wire.encode("spectrum", header, arrays)
+    return schema.encode("spectrum", header, arrays)
 
 
 def status_frames(new_fields=True):
@@ -62,7 +62,7 @@ def status_frames(new_fields=True):
         rfi.update({"flagged_rfi_fraction": 2 / NCHAN,          # the carrier, folded: 2 ch
                     "uncovered_fraction": len(UNCOVERED) / NCHAN,
                     "uncovered_hz": [float(f[UNCOVERED[0]]), float(f[UNCOVERED[-1]])]})
-    return wire.encode("status", {
+    return schema.encode("status", {
         "state": "observing", "source": "sim", "lo_hz": REST_HZ, "gain_db": 40.2,
         "sample_rate_hz": 2_400_000.0, "tsys_k": 72.0, "tsys_source": "noise_source",
         "samples_received": 1, "samples_lost": 0, "queue_depth": 0, "disk_free_bytes": 10**10,
@@ -75,8 +75,8 @@ def status_frames(new_fields=True):
 def make_state(new_fields=True, rows=3) -> ViewState:
     state = ViewState(endpoint="tcp://127.0.0.1:1")
     for i in range(rows):
-        state.apply(wire.decode(spectrum_frames(i)), 10.0 + i)
-    state.apply(wire.decode(status_frames(new_fields)), 10.0 + rows)
+        state.apply(schema.decode(spectrum_frames(i)), 10.0 + i)
+    state.apply(schema.decode(status_frames(new_fields)), 10.0 + rows)
     state.now_s = 10.0 + rows
     return state
 

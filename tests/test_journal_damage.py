@@ -25,10 +25,11 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from cli_runner import run_cli
-from spinflip.daemon import archive, config
-from spinflip.daemon.archive import ScanWriter, read_journal, read_scan, recover
-from spinflip.daemon.pipeline import Daemon
-from spinflip.daemon.scan_store import ScanStore
+from spinflip.daemon.storage import archive
+from spinflip.daemon import config
+from spinflip.daemon.storage.archive import ScanWriter, read_journal, read_scan, recover
+from spinflip.daemon.run.observation import Daemon
+from spinflip.daemon.storage.writer import ScanStore
 from test_archive import HEADER, NCHAN, make_row
 
 N_ROWS = 7

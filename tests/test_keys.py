@@ -26,7 +26,7 @@ import pytest
 import zmq
 from zmq.utils.monitor import recv_monitor_message
 
-from spinflip.daemon.keys import (
+from spinflip.daemon.live.keys import (
     ClientSecurity,
     KeysError,
     ServerSecurity,

@@ -1,5 +1,5 @@
 """Line integral, column density, main-beam scale and radiometer noise
-(spinflip.daemon.line_integral).
+(spinflip.daemon.products.line_integral).
 
 Sources: the Gaussian integral T0 sigma sqrt(2 pi) (analytic); Dickey & Lockman 1990, ARA&A 28,
 215 (N_HI = 1.823e18 int T_B dv, optically thin, and tau = N phi / (1.823e18 T_s)); radiative
@@ -14,7 +14,7 @@ import numpy as np
 import pytest
 from scipy.special import erf
 
-from spinflip.daemon.line_integral import (HI_COLUMN_PER_K_KM_S_CM2, K_SWITCHED, K_TOTAL_POWER,
+from spinflip.daemon.products.line_integral import (HI_COLUMN_PER_K_KM_S_CM2, K_SWITCHED, K_TOTAL_POWER,
                                            brightness_from_antenna_k, column_density_cm2,
                                            integrated_intensity_k_km_s, radiometer_noise_k)
 

@@ -23,7 +23,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from cli_runner import run_cli, write_config
-from spinflip.tui.app import free_loopback_port
+from spinflip.daemon.live.ports import free_loopback_port
 
 DTYPES = {"<f4": "<f4", "<f8": "<f8", "<i8": "<i8", "|u1": "u1"}
 
@@ -63,12 +63,12 @@ def daemon(tmp_path_factory):
     d = tmp_path_factory.mktemp("live")
     ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     cfg = write_config(d / "c.toml", CONFIG.format(**ports))
-    proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+    proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--duration", "120", "--out", str(d / "out")],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     data = f"tcp://127.0.0.1:{ports['data']}"
     control = f"tcp://127.0.0.1:{ports['control']}"
-    from spinflip.daemon.control import ControlError, request
+    from spinflip.daemon.live.control import ControlError, request
     deadline = time.monotonic() + 30
     while True:                                   # wait until the control socket answers
         try:
@@ -133,7 +133,7 @@ def test_late_joiner_gets_the_latest_spectrum_and_status_at_once(daemon):
 
 
 def test_control_commands_drive_the_daemon(daemon):
-    from spinflip.daemon.control import request
+    from spinflip.daemon.live.control import request
     c = daemon["control"]
     assert request(c, "pause")["result"]["state"] == "paused"
     assert request(c, "status")["result"]["state"] == "paused"
@@ -194,12 +194,12 @@ def test_fuzzed_control_requests_are_answered_and_publishing_goes_on(daemon, raw
     if not reply["ok"]:
         assert "\n" not in reply["error"]
     if reply["ok"] and reply.get("result", {}).get("state") == "paused":
-        from spinflip.daemon.control import request
+        from spinflip.daemon.live.control import request
         request(daemon["control"], "resume")
 
 
 def test_still_publishing_and_observing_after_the_fuzzing(daemon):
-    from spinflip.daemon.control import request
+    from spinflip.daemon.live.control import request
     state = request(daemon["control"], "status")["result"]["state"]
     if state == "paused":
         request(daemon["control"], "resume")
@@ -211,7 +211,9 @@ def test_still_publishing_and_observing_after_the_fuzzing(daemon):
 
 def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch):
     # in this process, simulated time as fast as the CPU allows: 25 s of sky in a few seconds
-    from spinflip.daemon import config, pipeline, publisher
+    from spinflip.daemon import config
+    from spinflip.daemon.run import observation
+    from spinflip.daemon.live import publisher
     monkeypatch.setattr(publisher, "_SNDHWM", 4)      # small queues, so that a stall shows
     monkeypatch.setattr(publisher, "_SNDBUF", 8192)   # within a 15 s stall
     port = free_loopback_port()
@@ -221,7 +223,7 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
                        "spectrometer": {"integration_s": 0.5},
                        "output": {"dir": str(tmp_path / "o")},
                        "publish": {"data": f"tcp://127.0.0.1:{port}", "control": ""}})
-    d = pipeline.Daemon(cfg, fast=True, duration_s=25.0, log=lambda m: None)
+    d = observation.Daemon(cfg, fast=True, duration_s=25.0, log=lambda m: None)
     ctx = zmq.Context.instance()
     ep = f"tcp://127.0.0.1:{port}"
     reader, stalled = ctx.socket(zmq.SUB), ctx.socket(zmq.SUB)
@@ -283,8 +285,8 @@ def test_binding_beyond_loopback_needs_keys_or_the_opt_in(tmp_path):
 
 
 def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
-    from spinflip.daemon.control import ControlError, request
-    from spinflip.daemon.keys import ClientSecurity
+    from spinflip.daemon.live.control import ControlError, request
+    from spinflip.daemon.live.keys import ClientSecurity
     keys = tmp_path / "keys"
     assert run_cli(["keys", keys]).returncode == 0
     assert run_cli(["keys", keys, "--client", "laptop"]).returncode == 0
@@ -295,7 +297,7 @@ def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
         (keys / who / "server.key").write_bytes((keys / "server.key").read_bytes())
     ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     cfg = write_config(tmp_path / "c.toml", CONFIG.format(**ports) + f'keys = "{keys}"\n')
-    proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+    proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--duration", "60", "--out", str(tmp_path / "out")],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
     data = f"tcp://127.0.0.1:{ports['data']}"
@@ -341,20 +343,20 @@ def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
 
 def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
     # two daemons pointing at different Galactic longitudes; collect relays and archives both
-    from spinflip.daemon.collect import read_spectra
+    from spinflip.daemon.live.collect import read_spectra
     procs, stations = [], []
     for name, lon in (("north", 30.0), ("south", 90.0)):
         ports = {"data": free_loopback_port(), "control": free_loopback_port()}
         cfg = write_config(tmp_path / f"{name}.toml", CONFIG.format(**ports).replace(
             "lon = 30.0", f"lon = {lon}"))
-        procs.append(subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run",
+        procs.append(subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run",
                                        "--config", str(cfg), "--duration", "60", "--out",
                                        str(tmp_path / name)], stdout=subprocess.PIPE,
                                       stderr=subprocess.PIPE, text=True))
         stations.append(f"{name}=tcp://127.0.0.1:{ports['data']}")
     relay = f"tcp://127.0.0.1:{free_loopback_port()}"
     try:
-        coll = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "collect",
+        coll = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "collect",
                                  *stations, "--relay", relay, "--archive",
                                  str(tmp_path / "archive"), "--duration", "9"],
                                 stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
@@ -383,10 +385,11 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
 
 def test_status_counts_samples_the_source_lost_and_the_queue_dropped(tmp_path):
     # lost = reported by the source before its blocks (USB gaps) + dropped on a full queue
-    from spinflip.daemon import config, pipeline
+    from spinflip.daemon import config
+    from spinflip.daemon.run import observation
     cfg = config.load(None)
     config.merge(cfg, {"output": {"dir": str(tmp_path)}, "publish": {"data": "", "control": ""}})
-    d = pipeline.Daemon(cfg, fast=True, log=lambda m: None)
+    d = observation.Daemon(cfg, fast=True, log=lambda m: None)
     d.counters["lost"], d.counters["dropped"] = 5, 7
     s = d.status()
     assert s["samples_lost"] == 12 and s["state"] == "observing" and s["tsys_source"]

@@ -19,8 +19,8 @@ import pytest
 from astropy.io import fits
 
 import spinflip
-from spinflip.daemon import loads
-from spinflip.daemon.loads import (
+from spinflip.daemon.calibration import loads
+from spinflip.daemon.calibration.loads import (
     LoadsError,
     LoadsProcedure,
     check_load_temperatures,

@@ -7,7 +7,7 @@ import pytest
 from astropy.io import fits
 
 from cli_runner import run_cli, write_config
-from spinflip.daemon import loads
+from spinflip.daemon.calibration import loads
 
 # spillover 0 and a cold sky equal to calibration.t_cold_k make the simulator's receiver the
 # Y-factor's Trx exactly (an absorber over the feed also blocks the spillover it would see)
@@ -125,16 +125,17 @@ def test_absurd_y_is_refused_with_one_line_and_no_record(tmp_path):
 
 
 def test_record_expiring_during_a_run_flags_and_says_so(record, tmp_path, monkeypatch):
-    from spinflip.daemon import config, pipeline
+    from spinflip.daemon import config
+    from spinflip.daemon.run import observation
     _, _, path = record
     cfg = config.load(None)
     config.merge(cfg, {"calibration": {"tsys_from": "loads", "records": str(path.parent)},
                        "output": {"dir": str(tmp_path / "o")}})
-    d = pipeline.Daemon(cfg, fast=True, log=lambda msg: None)
+    d = observation.Daemon(cfg, fast=True, log=lambda msg: None)
     tsys, age, ok = d._tsys_for(0.0)
     assert ok and tsys == loads.load_record(path).tsys_cold_k and 0 <= age < 600
     later = time.time() + cfg["calibration"]["max_record_age_s"] + 10
-    monkeypatch.setattr(pipeline._time, "time", lambda: later)
+    monkeypatch.setattr(observation._time, "time", lambda: later)
     tsys, age, ok = d._tsys_for(0.0)
     assert not ok and age > cfg["calibration"]["max_record_age_s"]
     assert any(sev == "error" and "older than calibration.max_record_age_s" in text

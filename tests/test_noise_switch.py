@@ -15,8 +15,8 @@ import struct
 
 import pytest
 
-from spinflip.daemon import gpio_cdev
-from spinflip.daemon.noise_switch import (
+from spinflip.daemon.calibration import gpio_cdev
+from spinflip.daemon.calibration.noise_switch import (
     CommandNoiseSwitch,
     GpioNoiseSwitch,
     NoiseSwitchError,

@@ -1,7 +1,7 @@
 """The terminal UI's state and panels (tui/state.py, tui/panels.py), rendered to plain text.
 
 Messages are made with the wire format's own ``encode`` and read back with ``decode``
-(daemon/wire.py), as a subscriber would see them. Panels and the screen are printed on
+(daemon/schema.py), as a subscriber would see them. Panels and the screen are printed on
 ``rich.console.Console(record=True, width=W, height=H, color_system=None)`` and read back
 with ``export_text``.
 
@@ -24,7 +24,7 @@ from astropy import units as u
 from rich.cells import cell_len
 from rich.console import Console
 
-from spinflip.daemon import wire
+from spinflip.daemon.live import schema
 from spinflip.tui import panels
 from spinflip.tui.state import ViewState
 
@@ -67,11 +67,11 @@ def spectrum_frames(kind="integration", row=3, flag_idx=(100, 101, 700), noise_k
         "data": (data.astype(np.float32), "K"), "flagged": (flagged, ""),
         "exposure_s": (np.where(flagged, 0.0, 10.0).astype(np.float32), "s"),
     }
-    return wire.encode("spectrum", header, arrays)
+    return schema.encode("spectrum", header, arrays)
 
 
 def status_frames(tsys_k=74.2, writing="writing", held=0, failures=None):
-    return wire.encode("status", {
+    return schema.encode("status", {
         "state": "observing", "source": "sim", "lo_hz": 1_420_000_000.0, "gain_db": 40.2,
         "sample_rate_hz": 2_400_000.0, "tsys_k": tsys_k, "tsys_source": "noise_source",
         "samples_received": 123_456_789, "samples_lost": 1_000, "queue_depth": 1,
@@ -85,14 +85,14 @@ def status_frames(tsys_k=74.2, writing="writing", held=0, failures=None):
 
 
 def progress_frames(scan_total_s=300.0, eta_s=137.4):
-    return wire.encode("progress", {
+    return schema.encode("progress", {
         "scan": "scan-0007", "integration": 5, "integration_elapsed_s": 12.6,
         "integration_total_s": 30.0, "scan_elapsed_s": 162.6, "scan_total_s": scan_total_s,
         "eta_s": eta_s})
 
 
 def event_frames(text="carrier at 1420.1 MHz", severity="warning"):
-    return wire.encode("event", {"severity": severity, "text": text})
+    return schema.encode("event", {"severity": severity, "text": text})
 
 
 def full_state(now_s=100.0) -> ViewState:
@@ -100,13 +100,13 @@ def full_state(now_s=100.0) -> ViewState:
     state = ViewState(endpoint=ENDPOINT)
     for i in range(5):
         t = now_s - 5 + i
-        state.apply(wire.decode(spectrum_frames(row=i, noise_k=0.5,
+        state.apply(schema.decode(spectrum_frames(row=i, noise_k=0.5,
                                                 time_utc=f"2025-03-01T21:04:0{i}.0Z")), t)
-        state.apply(wire.decode(spectrum_frames("average", row=i)), t)
-        state.apply(wire.decode(status_frames(74.2 + 0.1 * i)), t)
-    state.apply(wire.decode(status_frames(74.2)), now_s)
-    state.apply(wire.decode(progress_frames()), now_s)
-    state.apply(wire.decode(event_frames()), now_s)
+        state.apply(schema.decode(spectrum_frames("average", row=i)), t)
+        state.apply(schema.decode(status_frames(74.2 + 0.1 * i)), t)
+    state.apply(schema.decode(status_frames(74.2)), now_s)
+    state.apply(schema.decode(progress_frames()), now_s)
+    state.apply(schema.decode(event_frames()), now_s)
     state.now_s = now_s + 0.4
     return state
 
@@ -131,7 +131,7 @@ def assert_fits(text: str, width: int, height: int) -> None:
 def test_apply_routes_each_topic():
     state = ViewState(endpoint=ENDPOINT)
     assert not state.connected and state.last_message_s is None and not state.is_stale()
-    state.apply(wire.decode(spectrum_frames("integration", row=3)), 10.0)
+    state.apply(schema.decode(spectrum_frames("integration", row=3)), 10.0)
     assert state.spectrum["row"] == 3 and state.spectrum["unit"] == "K"
     assert state.spectrum["arrays"]["data"].shape == (NCHAN,)
     assert state.spectrum["units"]["v_lsrk_km_s"] == "km/s"
@@ -140,15 +140,15 @@ def test_apply_routes_each_topic():
     row, flags = state.waterfall[0]
     assert flags.dtype == bool and list(np.flatnonzero(flags)) == [100, 101, 700]
     np.testing.assert_allclose(row, state.spectrum["arrays"]["data"])
-    state.apply(wire.decode(spectrum_frames("average", row=3)), 11.0)
+    state.apply(schema.decode(spectrum_frames("average", row=3)), 11.0)
     assert state.average["kind"] == "average" and len(state.waterfall) == 1
-    state.apply(wire.decode(status_frames(74.2)), 12.0)
+    state.apply(schema.decode(status_frames(74.2)), 12.0)
     assert list(state.tsys_history) == [(12.0, 74.2)]
-    state.apply(wire.decode(status_frames(None)), 12.5)          # null Tsys: no history point
+    state.apply(schema.decode(status_frames(None)), 12.5)          # null Tsys: no history point
     assert len(state.tsys_history) == 1 and state.status["tsys_k"] is None
-    state.apply(wire.decode(progress_frames()), 13.0)
+    state.apply(schema.decode(progress_frames()), 13.0)
     assert state.progress["integration_elapsed_s"] == 12.6
-    state.apply(wire.decode(event_frames("hello", "info")), 14.0)
+    state.apply(schema.decode(event_frames("hello", "info")), 14.0)
     assert state.events[-1][1:] == ("info", "hello")
     assert state.connected and state.last_message_s == 14.0 and state.now_s == 14.0
 
@@ -158,13 +158,13 @@ def test_resent_messages_are_not_doubled():
     # again; the waterfall and the events must not grow from that
     state = ViewState()
     frames = spectrum_frames(row=7)
-    state.apply(wire.decode(frames), 1.0)
-    state.apply(wire.decode(frames), 2.0)
-    state.apply(wire.decode(spectrum_frames(row=8, time_utc="2025-03-01T21:05:00Z")), 3.0)
+    state.apply(schema.decode(frames), 1.0)
+    state.apply(schema.decode(frames), 2.0)
+    state.apply(schema.decode(spectrum_frames(row=8, time_utc="2025-03-01T21:05:00Z")), 3.0)
     assert len(state.waterfall) == 2
     ev = event_frames()
-    state.apply(wire.decode(ev), 4.0)
-    state.apply(wire.decode(ev), 5.0)
+    state.apply(schema.decode(ev), 4.0)
+    state.apply(schema.decode(ev), 5.0)
     assert len(state.events) == 1
 
 
@@ -176,7 +176,7 @@ def test_history_lengths_are_bounded():
 
 def test_stale_after_the_limit_and_toggle_axis():
     state = ViewState(stale_after_s=3.0)
-    state.apply(wire.decode(status_frames()), 50.0)
+    state.apply(schema.decode(status_frames()), 50.0)
     state.now_s = 53.0
     assert not state.is_stale()
     state.now_s = 53.01
@@ -235,7 +235,7 @@ def test_receiver_panel_says_when_writing_is_held():
     state = full_state()
     rx = render(panels.receiver_panel(state, 44), 44, 12)
     assert "HELD" not in rx
-    state.apply(wire.decode(status_frames(writing="holding", held=7)), 101.0)
+    state.apply(schema.decode(status_frames(writing="holding", held=7)), 101.0)
     rx = render(panels.receiver_panel(state, 44), 44, 12)
     assert "WRITING HELD" in rx and "7 in memory" in rx
 
@@ -245,14 +245,14 @@ def test_receiver_panel_says_when_a_thread_failed():
     state = full_state()
     rx = render(panels.receiver_panel(state, 44), 44, 12)
     assert "FAILED" not in rx
-    state.apply(wire.decode(status_frames(writing="failed", failures={"writer": 2})), 101.0)
+    state.apply(schema.decode(status_frames(writing="failed", failures={"writer": 2})), 101.0)
     rx = render(panels.receiver_panel(state, 44), 44, 12)
     assert "THREAD FAILED" in rx and "writer ×2" in rx and "WRITING FAILED" in rx
 
 
 def test_open_ended_scan_shows_time_observed():
     state = ViewState()
-    state.apply(wire.decode(progress_frames(scan_total_s=None, eta_s=None)), 1.0)
+    state.apply(schema.decode(progress_frames(scan_total_s=None, eta_s=None)), 1.0)
     text = render(panels.progress_panel(state, 80), 80, 24)
     assert "no end set" in text and "42 %" in text
 
@@ -263,7 +263,7 @@ def test_flag_strip_and_line_sit_under_their_tick_labels():
     _, v_km_s = axes()
     flag = int(np.argmin(np.abs(v_km_s + 200.0)))
     state = ViewState(endpoint=ENDPOINT)
-    state.apply(wire.decode(spectrum_frames(flag_idx=(flag,))), 1.0)
+    state.apply(schema.decode(spectrum_frames(flag_idx=(flag,))), 1.0)
     lines = render(panels.spectrum_panel(state, 80, 20), 80, 20).splitlines()
     bottom, strip = lines[-1], lines[-2]
     ticks = {m.group(): m.start() + len(m.group()) // 2

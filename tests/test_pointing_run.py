@@ -7,7 +7,7 @@ from astropy.io import fits
 from astropy.time import Time
 
 from cli_runner import run_cli, write_config
-from spinflip.daemon import frames
+from spinflip.daemon.sky import coordinates
 
 START = "2026-03-01T04:00:00"
 
@@ -28,7 +28,7 @@ lon = 180.0\nlat = 60.0\n[spectrometer]\nintegration_s = 3.0\n[calibration]\ntsy
     with fits.open(files[0]) as h:
         head, rows = h[1].header, h[1].data
     assert head["PNTFRAME"] == "azel" and rows["OBJECT"][0] == "AZ180.0EL60.0"
-    loc = frames.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
+    loc = coordinates.site_location(head["SITELAT"], head["SITELONG"], head["SITEELEV"])
     t = Time(list(rows["DATE-OBS"]), scale="utc")
     aa = SkyCoord(az=np.full(len(t), 180.0) * u.deg, alt=np.full(len(t), 60.0) * u.deg,
                   frame=AltAz(obstime=t, location=loc))
@@ -44,7 +44,7 @@ lon = 180.0\nlat = 60.0\n[spectrometer]\nintegration_s = 3.0\n[calibration]\ntsy
 def test_target_setting_during_the_scan_is_flagged_and_said(tmp_path):
     # a target just above the limit in the west sets during the scan: an error event, and
     # the rows from then on are saved fully flagged (never silently)
-    loc = frames.site_location(46.82, 8.37, 640.0)
+    loc = coordinates.site_location(46.82, 8.37, 640.0)
     t0 = Time(START, scale="utc")
     c = SkyCoord(az=270 * u.deg, alt=10.03 * u.deg, frame=AltAz(obstime=t0, location=loc)).icrs
     r, files = _run(tmp_path, f"""[sim]\nstart = "{START}"\n[pointing]\nframe = "radec"

@@ -26,9 +26,9 @@ from astropy import constants as const
 from astropy import units as u
 from rich.console import Console
 
-from spinflip.daemon import receiver_chain as rc
-from spinflip.daemon.chain_table import chain_main, render
-from spinflip.daemon.receiver_chain import (
+from spinflip.daemon.commands import receiver_chain as rc
+from spinflip.daemon.commands.chain_table import chain_main, render
+from spinflip.daemon.commands.receiver_chain import (
     ProfileError,
     beamwidth_deg,
     chain_budget,

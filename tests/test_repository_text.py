@@ -13,7 +13,7 @@ import hashlib
 import re
 from pathlib import Path
 
-from spinflip.daemon import doctor
+from spinflip.daemon.commands import doctor
 
 REPO = Path(__file__).resolve().parents[1]
 TEXT_SUFFIXES = {".py", ".md", ".toml", ".rules", ".conf", ".service", ".sh", ".c", ".txt"}

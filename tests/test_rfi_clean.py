@@ -24,7 +24,9 @@ import pytest
 from astropy.io import fits
 
 from cli_runner import run_cli, write_config
-from spinflip.daemon import config, pipeline, wire
+from spinflip.daemon import config
+from spinflip.daemon.run import observation
+from spinflip.daemon.live import schema
 
 DURATION_S = 120.0
 CONFIG = """
@@ -46,7 +48,7 @@ def clean(tmp_path_factory):
     d = tmp_path_factory.mktemp("clean120")
     path = write_config(d / "clean.toml", CONFIG.format(out=d / "out"))
     cfg = config.load(path)
-    daemon = pipeline.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
+    daemon = observation.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
     result = daemon.run()
     (scan,) = result.files
     with fits.open(scan) as h:
@@ -97,7 +99,7 @@ def test_interference_and_coverage_are_reported_apart_in_the_file(clean):
 def test_status_carries_both_fractions(clean):
     cfg = clean["cfg"]
     # as a subscriber gets it: through the wire format's own encoder and decoder
-    rfi = wire.decode(wire.encode("status", dict(clean["status"]))).header["rfi"]
+    rfi = schema.decode(schema.encode("status", dict(clean["status"]))).header["rfi"]
     rows = clean["rows"]
     assert rfi["flagged_rfi_fraction"] == pytest.approx(float(rows["RFIFRAC"][-1]))
     assert rfi["uncovered_fraction"] == pytest.approx(float(rows["UNCOVFR"][-1]))
@@ -126,7 +128,7 @@ def test_inspect_reports_interference_and_coverage_apart(clean):
 
 def test_fold_geometry_of_coverage_and_spoiling():
     # F[k] = (D_sig[k] - D_ref[k - shift]) / 2 exists where 0 <= k - shift < N
-    from spinflip.daemon.calibrate import fold_covered, fold_spoiled
+    from spinflip.daemon.calibration.kelvin import fold_covered, fold_spoiled
     n, shift = 64, -10
     covered = fold_covered(n, shift)
     assert covered.sum() == n - abs(shift) and not covered[n - abs(shift):].any()
@@ -141,7 +143,7 @@ def test_fold_geometry_of_coverage_and_spoiling():
 
 def test_status_before_the_first_integration_says_not_known(tmp_path):
     path = write_config(tmp_path / "c.toml", CONFIG.format(out=tmp_path / "out"))
-    daemon = pipeline.Daemon(config.load(path), fast=True, duration_s=1.0, log=lambda m: None)
-    rfi = wire.decode(wire.encode("status", dict(daemon.status()))).header["rfi"]
+    daemon = observation.Daemon(config.load(path), fast=True, duration_s=1.0, log=lambda m: None)
+    rfi = schema.decode(schema.encode("status", dict(daemon.status()))).header["rfi"]
     assert rfi["flagged_rfi_fraction"] is None and rfi["uncovered_fraction"] is None
     assert rfi["uncovered_hz"] is None and rfi["carrier_onsets"] == 0

@@ -13,7 +13,7 @@ import pytest
 from astropy.io import fits
 
 from cli_runner import run_cli, write_config
-from spinflip.daemon.samples import complex_to_u8
+from spinflip.daemon.dsp.samples import complex_to_u8
 
 FS = 2.4e6
 SECONDS = 6.0

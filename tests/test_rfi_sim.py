@@ -11,10 +11,11 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from spinflip.daemon import config, pipeline
-from spinflip.daemon.kinematics import expected_velocity_range_km_s
-from spinflip.daemon.lines import radio_velocity_m_s
-from spinflip.daemon.source_sim import RFI_BURSTS, RFI_CARRIERS
+from spinflip.daemon import config
+from spinflip.daemon.run import observation
+from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
+from spinflip.daemon.sky.hi_line import radio_velocity_m_s
+from spinflip.daemon.sources.sim import RFI_BURSTS, RFI_CARRIERS
 
 DURATION_S = 40.0
 
@@ -32,7 +33,7 @@ def _config(tmp, rfi: bool):
 
 def _run(tmp, rfi: bool):
     cfg = _config(tmp, rfi)
-    d = pipeline.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
+    d = observation.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
     seen = []                                   # per row: {phase: carrier mask}, and the LOs
     original = d._interference
 

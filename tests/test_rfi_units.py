@@ -4,9 +4,9 @@ import numpy as np
 import pytest
 
 from spinflip.daemon import config
-from spinflip.daemon.carriers import CarrierFinder, running_median
-from spinflip.daemon.impulses import ImpulseBlanker
-from spinflip.daemon.static_masks import named_channels
+from spinflip.daemon.rfi.carriers import CarrierFinder, running_median
+from spinflip.daemon.rfi.impulses import ImpulseBlanker
+from spinflip.daemon.rfi.masks import named_channels
 
 N, TAPS = 256, 4
 

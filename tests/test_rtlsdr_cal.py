@@ -10,9 +10,10 @@ import time
 
 import numpy as np
 
-from spinflip.daemon import config, source_rtlsdr
-from spinflip.daemon.cal_control import CalControl
-from spinflip.daemon.noise_switch import make_noise_switch
+from spinflip.daemon import config
+from spinflip.daemon.sources import dongle
+from spinflip.daemon.calibration.noise_source import CalControl
+from spinflip.daemon.calibration.noise_switch import make_noise_switch
 
 
 class _FakeRtlSdr:
@@ -51,13 +52,13 @@ class _FakeRtlSdr:
 
 
 def test_dongle_source_switches_the_noise_source_on_schedule(tmp_path, monkeypatch):
-    monkeypatch.setattr(source_rtlsdr, "_import_rtlsdr", lambda: _FakeRtlSdr)
+    monkeypatch.setattr(dongle, "_import_rtlsdr", lambda: _FakeRtlSdr)
     log = tmp_path / "switch.log"
     cfg = config.load(None)
     config.merge(cfg, {"source": {"kind": "rtlsdr"}, "calibration": {
         "noise_source_k": 50.0, "cal_interval_s": 3.3, "cal_on_s": 1.0, "switch": "command",
         "switch_on_cmd": f"echo on >> {log}", "switch_off_cmd": f"echo off >> {log}"}})
-    src = source_rtlsdr.RtlSdrSource(cfg)
+    src = dongle.RtlSdrSource(cfg)
     switch = make_noise_switch(cfg["calibration"])
     switch.open()
     src.cal = CalControl(switch)

@@ -13,9 +13,10 @@ import numpy as np
 import pytest
 
 from rtlsdr_emulator import TONE_HZ, fakertl, fakertl_lib  # noqa: F401  (fixtures)
-from spinflip.daemon import config, source_rtlsdr
-from spinflip.daemon.sample_clock import SampleClock
-from spinflip.daemon.sources import SourceError
+from spinflip.daemon import config
+from spinflip.daemon.sources import dongle
+from spinflip.daemon.sources.sample_clock import SampleClock
+from spinflip.daemon.sources.base import SourceError
 
 FS_HZ = 1.024e6          # a rate the RTL2832U supports exactly (librtlsdr's resampler ratio)
 BLOCK_SAMPLES = 16384    # the smallest block the configuration allows
@@ -35,11 +36,11 @@ def _cfg(**sections):
 def sources(fakertl, monkeypatch):   # noqa: F811
     """Make RtlSdrSource(cfg) objects; all closed at the end, and the emulator must have seen
     no call on a closed handle and no close of a handle still streaming."""
-    monkeypatch.setattr(source_rtlsdr, "_dvb_driver_loaded", lambda: None)   # the host's
+    monkeypatch.setattr(dongle, "_dvb_driver_loaded", lambda: None)   # the host's
     made = []
 
     def make(cfg, **kw):
-        s = source_rtlsdr.RtlSdrSource(cfg, **kw)
+        s = dongle.RtlSdrSource(cfg, **kw)
         made.append(s)
         return s
 
@@ -120,7 +121,7 @@ def test_short_transfers_keep_the_stream_continuous(fakertl, sources):  # noqa: 
     # not a byte lost, repeated or reordered, across short transfers and block edges
     assert np.all(np.diff(stream) % 256 == 1)
     # short transfers are not lost samples: far less than one transfer's worth reported
-    assert sum(b.lost_before for b in blocks) < source_rtlsdr.transfer_bytes_for(FS_HZ) // 2
+    assert sum(b.lost_before for b in blocks) < dongle.transfer_bytes_for(FS_HZ) // 2
     assert np.all(np.diff([b.t0_unix_s for b in blocks]) > 0)
 
 
@@ -170,13 +171,13 @@ def test_unplug_then_replug(fakertl, sources, unplug_rc):  # noqa: F811
     assert after[0].t0_unix_s >= before[-1].t0_unix_s + BLOCK_SAMPLES / FS_HZ
     # a new stream: the outage is not charged as lost samples (the daemon reports it as events
     # and a new scan segment), and it starts with its settle time
-    assert after[0].lost_before < source_rtlsdr.transfer_bytes_for(FS_HZ) // 2
+    assert after[0].lost_before < dongle.transfer_bytes_for(FS_HZ) // 2
     assert after[0].settle_samples == src.schedule.settle_samples
     assert fakertl.stat("opens") == 2 and fakertl.stat("open_fails") == 1
 
 
 def test_a_wedged_dongle_is_given_up_on(fakertl, sources, monkeypatch):  # noqa: F811
-    monkeypatch.setattr(source_rtlsdr, "_STALL_S", 0.3)          # 3 s in the daemon
+    monkeypatch.setattr(dongle, "_STALL_S", 0.3)          # 3 s in the daemon
     src = sources(_cfg(switching={"mode": "none"}))
     src.open()
     src.read()
@@ -211,7 +212,7 @@ def test_opening_without_the_dongle_says_what_to_check(fakertl, sources, monkeyp
     fakertl.set(present=1)
     with pytest.raises(SourceError, match="no RTL-SDR dongle 'SPF99999'"):
         sources(_cfg(source={"device": "SPF99999"})).open()
-    monkeypatch.setattr(source_rtlsdr, "_dvb_driver_loaded", lambda: "dvb_usb_rtl28xxu")
+    monkeypatch.setattr(dongle, "_dvb_driver_loaded", lambda: "dvb_usb_rtl28xxu")
     with pytest.raises(SourceError, match="rmmod dvb_usb_rtl28xxu"):
         sources(_cfg(source={"device": "SPF99999"})).open()
     src = sources(_cfg(source={"device": "SPF00001"}))           # by serial number

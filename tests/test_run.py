@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
-from spinflip.daemon.samples import complex_to_u8
+from spinflip.daemon.dsp.samples import complex_to_u8
 
 SIM_CONFIG = """
 [sim]
@@ -26,7 +26,7 @@ integration_s = 5.0
 
 
 def _run(args, cwd=None, timeout=120):
-    return subprocess.run([sys.executable, "-m", "spinflip.daemon.cli", *args], cwd=cwd,
+    return subprocess.run([sys.executable, "-m", "spinflip.cli", *args], cwd=cwd,
                           capture_output=True, text=True, timeout=timeout)
 
 
@@ -82,7 +82,7 @@ def test_sim_line_where_the_model_galaxy_puts_it(sim_scan):
     # The folded spectrum of in-band switching is T(v) - [T(v + dv) + T(v - dv)] / 2 with dv the
     # switch offset in velocity (negative ghosts, common practice); the model galaxy's own
     # profile, folded the same way, must match the measured shape.
-    from spinflip.daemon.galaxy import ModelGalaxy
+    from spinflip.daemon.sources.galaxy import ModelGalaxy
     vg = np.linspace(-600, 600, 4801)
     tb = ModelGalaxy().brightness_temperature(30.0, 0.0, vg, beam_fwhm_deg=np.degrees(1.2 * 0.2110 / 3.0))
     dv = 299792.458 * 0.8e6 / d["RESTFREQ"][0]
@@ -169,10 +169,10 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text(SIM_CONFIG.replace("integration_s = 5.0", "integration_s = 1.0"))
     out = tmp_path / "out"
-    proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+    proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--out", str(out)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    from spinflip.daemon import archive
+    from spinflip.daemon.storage import archive
     journal = None
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:       # real-time pacing: wait for three finished rows

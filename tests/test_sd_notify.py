@@ -20,7 +20,7 @@ from pathlib import Path
 
 import pytest
 
-from spinflip.daemon.sd_notify import (
+from spinflip.daemon.run.sd_notify import (
     NOTIFY_DATAGRAM_MAX_BYTES,
     STATUS_MAX_CHARS,
     Heartbeat,
@@ -396,12 +396,12 @@ def test_systemd_analyze_verify_accepts_the_unit(tmp_path):
     # ExecStart= binary that is not executable. It exits 0 even for unknown keys and bad values
     # (it only prints them), so the test also requires it to print nothing about the unit.
     # /opt/spinflip is not installed here: the copy checked below has ExecStart pointed at this
-    # running Python with "-m spinflip.daemon.cli" (the same command as the installed script);
+    # running Python with "-m spinflip.cli" (the same command as the installed script);
     # every other line is the repository's unit unchanged. User=spinflip need not exist (verify
     # does not look the user up).
     text = UNIT.read_text()
     copy, count = re.subn(r"(?m)^ExecStart=/opt/spinflip/bin/spinflip ",
-                          f"ExecStart={sys.executable} -m spinflip.daemon.cli ", text)
+                          f"ExecStart={sys.executable} -m spinflip.cli ", text)
     assert count == 1
     unit = tmp_path / "spinflip.service"
     unit.write_text(copy)

@@ -5,9 +5,9 @@ from astropy import units as u
 from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 
 from spinflip.daemon import config
-from spinflip.daemon.lines import C_M_S, HI_REST_FREQ_HZ
-from spinflip.daemon.samples import u8_to_complex
-from spinflip.daemon.source_sim import SimSource
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.dsp.samples import u8_to_complex
+from spinflip.daemon.sources.sim import SimSource
 
 
 def _source(**sim):

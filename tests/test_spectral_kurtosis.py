@@ -9,8 +9,8 @@ import numpy as np
 import pytest
 import scipy.special
 
-from spinflip.daemon.channelizer import make_channelizer, power_sums
-from spinflip.daemon.spectral_kurtosis import (sk_estimator, sk_flags, sk_fourth_moment,
+from spinflip.daemon.dsp.channelizer import make_channelizer, power_sums
+from spinflip.daemon.rfi.spectral_kurtosis import (sk_estimator, sk_flags, sk_fourth_moment,
                                                sk_moments, sk_thresholds)
 
 NCHAN = 256
@@ -391,7 +391,7 @@ def test_user_errors_raise_one_line_value_errors(call, words):
 
 def test_module_does_not_import_scipy_stats():
     # scipy.stats costs the daemon a lot of memory (project rule); scipy.special only.
-    code = ("import sys, spinflip.daemon.spectral_kurtosis as s; s.sk_thresholds(64, 0.01); "
+    code = ("import sys, spinflip.daemon.rfi.spectral_kurtosis as s; s.sk_thresholds(64, 0.01); "
             "print('scipy.stats' in sys.modules)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
     assert out.stdout.strip() == "False"

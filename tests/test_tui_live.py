@@ -41,7 +41,7 @@ import zmq
 from rich.console import Console
 
 from cli_runner import write_config
-from spinflip.daemon import wire
+from spinflip.daemon.live import schema
 from spinflip.tui.app import Keyboard, WatchSession, free_loopback_port
 
 #: How often a pane is read while waiting for something to appear, s.
@@ -209,7 +209,7 @@ control = "tcp://127.0.0.1:{control}"
 
 def start_daemon(cfg, out) -> subprocess.Popen:
     with open(f"{out}.log", "w") as log:      # the child keeps its own copy of the file
-        return subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run",
+        return subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run",
                                  "--config", str(cfg), "--duration", "120", "--out", str(out)],
                                 stdin=subprocess.DEVNULL, stdout=log, stderr=log)
 
@@ -253,7 +253,7 @@ def test_feed_counts_bad_messages_and_keeps_the_good_ones():
     pub.setsockopt(zmq.LINGER, 0)
     port = pub.bind_to_random_port("tcp://127.0.0.1")
     stop = threading.Event()
-    good = wire.encode("event", {"severity": "warning", "text": "dew on the feed"})
+    good = schema.encode("event", {"severity": "warning", "text": "dew on the feed"})
     bad = [[b"spectrum", b"{not json"], [b"nosuchtopic", b"{}"], [b"status"]]
 
     def publish():

@@ -17,8 +17,9 @@ from astropy.io import fits
 
 from cli_runner import live_config
 from rtlsdr_emulator import emulator_env, fakertl_lib, set_control  # noqa: F401  (fixture)
-from spinflip.daemon import archive, wire
-from spinflip.tui.app import free_loopback_port
+from spinflip.daemon.storage import archive
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.ports import free_loopback_port
 
 RTLSDR_SOURCE = """kind = "rtlsdr"
 sample_rate = 1.024e6
@@ -39,7 +40,7 @@ class _Listener(threading.Thread):
         sub.connect(self.endpoint)
         while not self.stop.is_set():
             try:
-                msg = wire.decode(sub.recv_multipart())
+                msg = schema.decode(sub.recv_multipart())
             except zmq.Again:
                 continue
             if msg.topic == "event":
@@ -73,7 +74,7 @@ def test_unplugged_dongle_the_daemon_stays_up_and_resumes_a_new_scan(tmp_path, f
     listener = _Listener(f"tcp://127.0.0.1:{port}")
     listener.start()
     with open(log_path, "w") as log:
-        proc = subprocess.Popen([sys.executable, "-m", "spinflip.daemon.cli", "run", "--config",
+        proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                                  str(cfg), "--out", str(out)], stdout=log, stderr=subprocess.STDOUT,
                                 env={**os.environ, **emulator_env(fakertl_lib, control)})
     try:

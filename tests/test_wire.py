@@ -1,4 +1,4 @@
-"""The ZeroMQ wire schema (daemon/wire.py): round trips, a schema-only subscriber, refusals.
+"""The ZeroMQ wire schema (daemon/schema.py): round trips, a schema-only subscriber, refusals.
 
 Outside references used below:
 - Python's ``struct`` module (format characters "<f", "<d", "<q", "B": IEEE 754 float32 and
@@ -23,8 +23,8 @@ from astropy import units as u
 from hypothesis import given, settings
 from hypothesis.extra import numpy as hnp
 
-from spinflip.daemon import wire
-from spinflip.daemon.wire import WireError, decode, encode, validate_header
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.schema import WireError, decode, encode, validate_header
 
 REST_HZ = 1_420_405_751.768          # HI rest frequency (Hellwig et al. 1970, from memory)
 C_M_S = 299_792_458.0                # speed of light, SI exact
@@ -86,7 +86,7 @@ def all_messages():
 
 
 # ----------------------------------------------------------------------------------------------
-# a subscriber written from the module docstring alone (no wire.decode, no NumPy dtypes)
+# a subscriber written from the module docstring alone (no schema.decode, no NumPy dtypes)
 # ----------------------------------------------------------------------------------------------
 # dtype -> struct format character (the docstring's dtype table; Python struct documentation)
 STRUCT_CODE = {"<f4": "f", "<f8": "d", "<i8": "q", "|u1": "B"}
@@ -138,7 +138,7 @@ def test_every_topic_round_trips_over_real_sockets(pubsub):
         assert msg.topic == topic
         for key, value in header.items():
             assert msg.header[key] == value, key
-        assert msg.header["schema"] == wire.SCHEMA_VERSION and msg.header["station"] == ""
+        assert msg.header["schema"] == schema.SCHEMA_VERSION and msg.header["station"] == ""
         assert list(msg.arrays) == list(arrays)
         for name, (arr, unit) in arrays.items():
             np.testing.assert_array_equal(msg.arrays[name], np.asarray(arr, dtype=float))
@@ -208,24 +208,24 @@ def test_topic_is_the_first_frame_so_prefix_subscriptions_select_it():
 
 def test_no_topic_is_a_prefix_of_another():
     # else a SUB for one would also receive the other (ZeroMQ prefix matching)
-    for a in wire.TOPICS:
-        for b in wire.TOPICS:
+    for a in schema.TOPICS:
+        for b in schema.TOPICS:
             assert a == b or not b.startswith(a)
 
 
 def test_the_docstring_names_every_required_field_and_array():
-    doc = wire.__doc__
+    doc = schema.__doc__
     sections = re.split(r'^Topic "(\w+)"', doc, flags=re.M)
     by_topic = dict(zip(sections[1::2], sections[2::2]))
-    assert set(by_topic) == set(wire.TOPICS)
-    for topic, fields in wire._FIELDS.items():
+    assert set(by_topic) == set(schema.TOPICS)
+    for topic, fields in schema._FIELDS.items():
         for name in fields:
             assert re.search(rf"\b{name}\b", by_topic[topic]), (topic, name)
-    for name, (dtype, unit) in wire.SPECTRUM_ARRAYS.items():
+    for name, (dtype, unit) in schema.SPECTRUM_ARRAYS.items():
         line = next(ln for ln in by_topic["spectrum"].splitlines()
                     if ln.startswith(name + " ") and "``" in ln)      # the arrays table
         assert dtype in line and (unit is None or f'"{unit}"' in line), line
-    for dtype in wire.DTYPES:
+    for dtype in schema.DTYPES:
         assert f"``{dtype}``" in doc
 
 
@@ -265,7 +265,7 @@ def test_unknown_fields_and_arrays_are_allowed_and_kept():
 
 def test_now_utc_iso_is_a_utc_time():
     import datetime as dt
-    text = wire.now_utc_iso()
+    text = schema.now_utc_iso()
     t = dt.datetime.fromisoformat(text)
     assert text.endswith("Z") and t.utcoffset() == dt.timedelta(0)
     validate_header("event", {**event_header(), "schema": 1, "topic": "event",
@@ -407,10 +407,10 @@ def test_status_fractions_of_the_newest_row_are_checked(rfi_extra, fragment):
     header = status_header()
     good = dict(header["rfi"], flagged_rfi_fraction=0.0, uncovered_fraction=1 / 3,
                 uncovered_hz=[1.4196e9, 1.4200e9])
-    assert wire.decode(wire.encode("status", dict(header, rfi=good))).header["rfi"] == good
+    assert schema.decode(schema.encode("status", dict(header, rfi=good))).header["rfi"] == good
     bad = dict(good, **rfi_extra)
     if fragment is None:                          # an unknown extra key is passed over
-        wire.decode(wire.encode("status", dict(header, rfi=bad)))
+        schema.decode(schema.encode("status", dict(header, rfi=bad)))
         return
-    with pytest.raises(wire.WireError, match=re.escape(fragment)):
-        wire.decode(wire.encode("status", dict(header, rfi=bad)))
+    with pytest.raises(schema.WireError, match=re.escape(fragment)):
+        schema.decode(schema.encode("status", dict(header, rfi=bad)))

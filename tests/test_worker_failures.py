@@ -16,13 +16,13 @@ import pytest
 from astropy.io import fits
 
 from spinflip.daemon import config
-from spinflip.daemon.archive import ScanWriter
-from spinflip.daemon.control import ControlServer, request
-from spinflip.daemon.pipeline import Daemon
-from spinflip.daemon.publisher import Publisher
-from spinflip.daemon.scan_store import ScanStore
-from spinflip.daemon.supervisor import Supervisor, WorkerFailed
-from spinflip.tui.app import free_loopback_port
+from spinflip.daemon.storage.archive import ScanWriter
+from spinflip.daemon.live.control import ControlServer, request
+from spinflip.daemon.run.observation import Daemon
+from spinflip.daemon.live.publisher import Publisher
+from spinflip.daemon.storage.writer import ScanStore
+from spinflip.daemon.run.supervisor import Supervisor, WorkerFailed
+from spinflip.daemon.live.ports import free_loopback_port
 
 SECONDS = 12.0
 
@@ -178,7 +178,7 @@ def test_a_reader_that_keeps_failing_stops_the_daemon_with_status_1(tmp_path, mo
                                                                      capsys):
     """Past the restart budget the daemon stops, saves what finished and exits 1; the final
     lines say what was saved and why it stopped, nothing more."""
-    from spinflip.daemon import cli
+    from spinflip import cli
     read = None
     calls = {"n": 0}
 

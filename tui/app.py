@@ -1,7 +1,7 @@
 """``spinflip watch`` and ``spinflip demo``: the terminal UI, a pure subscriber of the daemon.
 
 ``watch`` connects one ZeroMQ SUB socket to a daemon's data socket (every topic) and decodes
-each message with :func:`spinflip.daemon.wire.decode` in a background thread, feeding a
+each message with :func:`spinflip.daemon.live.schema.decode` in a background thread, feeding a
 :class:`~spinflip.tui.state.ViewState`; a message that is not per schema is counted and
 dropped, never raised. The main thread redraws the whole terminal about four times a second
 with :func:`spinflip.tui.panels.screen` sized to the terminal (a rich ``Live`` on the
@@ -19,7 +19,7 @@ a     velocity <-> frequency axis (here only, nothing is sent)
 q     quit
 ====  ==========================================================
 
-Each command is sent by :func:`spinflip.daemon.control.request` in a short-lived thread of
+Each command is sent by :func:`spinflip.daemon.live.control.request` in a short-lived thread of
 its own with a 3 s timeout, so the screen never freezes on a daemon that does not answer;
 its reply (or the error) is shown in ``state.reply``. When standard input is not a terminal
 there are no keys. SIGTERM, SIGINT (Ctrl-C) and SIGHUP quit like ``q``: the terminal is
@@ -53,7 +53,6 @@ import os
 import select
 import shutil
 import signal
-import socket
 import subprocess
 import sys
 import tempfile
@@ -66,8 +65,10 @@ import zmq
 from rich.text import Text
 from zmq.utils.monitor import recv_monitor_message
 
-from spinflip.daemon import wire
-from spinflip.daemon.control import DEFAULT_TIMEOUT_S, ControlError, format_result, request
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.control import DEFAULT_TIMEOUT_S, ControlError, format_result, request
+
+from spinflip.daemon.live.ports import free_loopback_port
 
 from . import panels
 from .state import ViewState
@@ -131,7 +132,7 @@ def _one_line(text: str, limit: int = REPLY_MAX_CHARS) -> str:
 
 
 def _utc_now_iso() -> str:
-    return wire.now_utc_iso()
+    return schema.now_utc_iso()
 
 
 # --------------------------------------------------------------------------------------------
@@ -160,7 +161,7 @@ class Feed(threading.Thread):
     received : int
         Messages applied.
     errors : int
-        Messages refused by :func:`wire.decode` (not per schema) or that the state could not
+        Messages refused by :func:`schema.decode` (not per schema) or that the state could not
         take; each is dropped, never raised. The first one, and then each tenth power, is
         also logged as a warning event on the screen.
     last_error : str
@@ -200,7 +201,7 @@ class Feed(threading.Thread):
         sock = self.context.socket(zmq.SUB)
         try:
             sock.setsockopt(zmq.LINGER, 0)
-            sock.setsockopt(zmq.MAXMSGSIZE, wire.MAX_FRAME_BYTES)   # no frame larger than a spectrum
+            sock.setsockopt(zmq.MAXMSGSIZE, schema.MAX_FRAME_BYTES)   # no frame larger than a spectrum
             sock.setsockopt(zmq.RECONNECT_IVL, int(RECONNECT_IVL_S * 1000))
             sock.setsockopt(zmq.RECONNECT_IVL_MAX, int(RECONNECT_IVL_MAX_S * 1000))
             sock.setsockopt(zmq.HEARTBEAT_IVL, int(HEARTBEAT_IVL_S * 1000))
@@ -258,8 +259,8 @@ class Feed(threading.Thread):
             except zmq.Again:
                 return
             try:
-                message = wire.decode(frames)
-            except wire.WireError as exc:
+                message = schema.decode(frames)
+            except schema.WireError as exc:
                 self._error(f"message not per schema, dropped: {exc}")
                 continue
             try:
@@ -629,7 +630,7 @@ def watch_main(data_endpoint: str = DEFAULT_DATA_ENDPOINT,
     """
     security = None
     if keys_dir:
-        from spinflip.daemon.keys import ClientSecurity
+        from spinflip.daemon.live.keys import ClientSecurity
         security = ClientSecurity.from_dir(keys_dir)
     session = WatchSession(data_endpoint, control_endpoint or "", security)
     return session.run(console=console, duration_s=duration_s)
@@ -641,13 +642,6 @@ def _say(text: str, stream=None) -> None:
         print(text, file=stream if stream is not None else sys.stdout, flush=True)
     except OSError:
         pass
-
-
-def free_loopback_port() -> int:
-    """A TCP port of 127.0.0.1 that was free a moment ago (the kernel's choice)."""
-    with socket.socket(socket.AF_INET, socket.SOCK_STREAM) as s:
-        s.bind(("127.0.0.1", 0))
-        return s.getsockname()[1]
 
 
 def demo_config(data_port: int, control_port: int,
@@ -698,7 +692,7 @@ def demo_main(seconds: float = 60, out_dir="spinflip-data", fast: bool = False,
             control_port = free_loopback_port()
         cfg = work / "demo.toml"
         cfg.write_text(demo_config(data_port, control_port))
-        cmd = [sys.executable, "-m", "spinflip.daemon.cli", "run", "--config", str(cfg),
+        cmd = [sys.executable, "-m", "spinflip.cli", "run", "--config", str(cfg),
                "--duration", f"{seconds:g}", "--out", str(out)]
         if fast:
             cmd.append("--fast")

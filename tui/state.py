@@ -1,8 +1,8 @@
 """What the terminal UI knows: the latest of each live message, folded into one plain object.
 
 :class:`ViewState` is the only thing the panels look at. It does no I/O: the application
-receives :class:`spinflip.daemon.wire.Message` objects (see the docstring of
-:mod:`spinflip.daemon.wire` for every field) and hands each one to :meth:`ViewState.apply`
+receives :class:`spinflip.daemon.live.schema.Message` objects (see the docstring of
+:mod:`spinflip.daemon.live.schema` for every field) and hands each one to :meth:`ViewState.apply`
 with the time it arrived, on a monotonic clock in seconds; it sets :attr:`ViewState.now_s`
 before every redraw so that the panels can tell how old the data are.
 
@@ -50,7 +50,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
-from spinflip.daemon import wire
+from spinflip.daemon.live import schema
 
 #: The axes the spectrum can be drawn against (toggled by :meth:`ViewState.toggle_axis`).
 AXES = ("velocity", "frequency")
@@ -61,7 +61,7 @@ TSYS_KEPT = 300
 WATERFALL_ROWS_KEPT = 60
 
 
-def _spectrum_dict(message: wire.Message) -> dict:
+def _spectrum_dict(message: schema.Message) -> dict:
     """The header of a spectrum message with its arrays by name (``flagged`` as bool)."""
     out = {k: v for k, v in message.header.items() if k != "arrays"}
     out["units"] = {d["name"]: d["unit"] for d in message.header["arrays"]}
@@ -133,20 +133,20 @@ class ViewState:
     replays_ignored: int = 0
     _latest_ids: dict = field(default_factory=dict, repr=False)
 
-    def apply(self, message: wire.Message, now_s: float) -> None:
+    def apply(self, message: schema.Message, now_s: float) -> None:
         """Fold one decoded message into the state.
 
         Parameters
         ----------
-        message : spinflip.daemon.wire.Message
-            A message as :func:`spinflip.daemon.wire.decode` returns it (already checked
+        message : spinflip.daemon.live.schema.Message
+            A message as :func:`spinflip.daemon.live.schema.decode` returns it (already checked
             against the schema). Unknown topics are ignored.
         now_s : float
             Its arrival time on the app's monotonic clock, s; also becomes :attr:`now_s`.
         """
         header = message.header
         topic = message.topic
-        if topic not in wire.TOPICS:
+        if topic not in schema.TOPICS:
             return
         key = (header.get("station"), topic)
         ident = (header.get("seq"), header.get("time_utc"))

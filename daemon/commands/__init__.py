@@ -1,0 +1,1 @@
+"""Station commands beside the daemon: doctor, chain, soak, bench, inspect, loads."""

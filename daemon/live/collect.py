@@ -1,0 +1,688 @@
+"""``spinflip collect``: gather the live data of several stations, relay it, archive it.
+
+``spinflip collect NAME=ENDPOINT ... [--relay ENDPOINT] [--archive DIR] [--keys DIR]
+[--duration S]`` connects one SUB socket to each station's data PUB socket (every topic),
+checks each message against the wire schema (:mod:`spinflip.daemon.live.schema`), and
+
+* re-publishes it on one PUB socket bound at ``--relay``, with ``header["station"]`` set to
+  the station's NAME and nothing else changed (the payload is re-encoded bit for bit);
+* with ``--archive DIR``, appends every spectrum of kind ``"integration"`` to that station's
+  archive (format below).
+
+Which station a message belongs to is decided by the socket it arrived on, one socket per
+station, never by its content: a message from station A is relayed and archived as A.
+A message that fails the schema is counted as a decode error of its station, dropped and
+logged in one line of at most about 200 characters (the 1st, 2nd, 4th, 8th ... of a station),
+and collecting goes on for it and the others. Each SUB socket takes frames of at most
+:data:`spinflip.daemon.live.schema.MAX_FRAME_BYTES` (``zmq.MAXMSGSIZE``): ZeroMQ drops the connection
+of a station that announces a larger frame before buffering it, and reconnects. A message
+marked ``"replay": true`` that is the latest one already taken from its station and topic
+(same ``seq`` and ``time_utc``; a station re-sends its latest messages to every subscriber
+when one joins) is counted as ``replayed`` and neither relayed nor archived again.
+
+Security: with ``--keys DIR`` each SUB socket is a CURVE client with the keys of
+:class:`spinflip.daemon.live.keys.ClientSecurity` (``DIR/client.key``, ``DIR/client.key_secret``,
+``DIR/server.key``). Stations with their own server key: put that station's three files in
+``DIR/NAME/``; a station without such a folder uses ``DIR`` itself. The relay socket has no
+keys, so it binds only to this computer (127.0.0.0/8, ``::1``, ``localhost``, ``ipc://``).
+
+Archive format
+--------------
+Per station and UTC day (the day of the spectrum's ``time_utc``) two files in
+``DIR/NAME/``::
+
+    spectra-YYYYMMDD.bin     the payload frames of each spectrum, back to back, exactly as on
+                             the wire (little-endian arrays, C order)
+    spectra-YYYYMMDD.jsonl   one line per spectrum, a UTF-8 JSON object:
+        {"bin_offset": int,    where its payload starts in the .bin file, bytes
+         "bin_bytes": int,     payload length, bytes (sum over header.arrays)
+         "crc32": int,         CRC-32 (zlib) of those payload bytes
+         "received_utc": str,  when the collector received it (ISO 8601, Z)
+         "header": {...}}      the relayed wire header (station filled in)
+
+A spectrum that repeats the last one archived for its station (same ``scan``, ``kind``,
+``row`` and ``time_utc``; a daemon re-sends its latest message to a subscriber that joins or
+reconnects) is not archived again, also across a restart of the collector.
+
+The wire schema therefore describes the archive too: the arrays of a line are its
+``header["arrays"]``, in order, starting at ``bin_offset``. :func:`read_spectra` reads a
+day file back into :class:`~spinflip.daemon.live.schema.Message` objects.
+
+Crash safety: each spectrum is made durable before the next is read. Its payload is
+appended to the ``.bin`` file and fsync'ed, then its line is appended to the ``.jsonl``
+file and fsync'ed; so a line exists only for payload already on disk. A crash can leave
+(a) payload bytes at the end of the ``.bin`` that no line refers to, harmless since offsets
+are absolute, and (b) a last ``.jsonl`` line without its newline, which a reader ignores and
+the next writer cuts off before appending. A writer holds an exclusive ``flock`` on the
+``.jsonl`` file, so two collectors cannot write one archive. (Append + fsync per record and
+write-ahead ordering of data before index: common practice for crash-safe logs on POSIX.)
+
+References
+----------
+ZeroMQ RFC 29/PUBSUB (subscriptions, one socket per peer here), from memory.
+"""
+
+from __future__ import annotations
+
+import datetime as _dt
+import ipaddress
+import json
+import logging
+import math
+import os
+import re
+import signal
+import sys
+import threading
+import time
+import zlib
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import zmq
+from zmq.utils.monitor import recv_monitor_message
+
+from spinflip.daemon.live import schema
+from spinflip.daemon.live.publisher import MAX_SUBSCRIPTION_FRAME
+from spinflip.daemon.storage.archive import _fsync_dir, _write_all
+
+try:  # POSIX advisory locks
+    import fcntl
+except ImportError:  # pragma: no cover - non-POSIX
+    fcntl = None
+
+log = logging.getLogger("spinflip.collect")
+
+_NAME_RE = re.compile(r"[A-Za-z0-9][A-Za-z0-9_.-]{0,31}\Z")
+_TCP_RE = re.compile(r"tcp://(\[[0-9A-Fa-f:.]+\]|[A-Za-z0-9][A-Za-z0-9.-]*):([0-9]{1,5})\Z")
+
+#: Longest the receive loop waits before it looks at the stop event and the clock, s.
+POLL_S = 0.1
+
+#: Messages read from one station before the loop turns to the next (fairness).
+BURST = 64
+
+
+# ----------------------------------------------------------------------------------------------
+# station specs and endpoints
+# ----------------------------------------------------------------------------------------------
+def _check_endpoint(what: str, endpoint: str) -> None:
+    """One-line ValueError unless ``endpoint`` is tcp://HOST:PORT or ipc://PATH."""
+    m = _TCP_RE.match(endpoint)
+    if m:
+        if not 1 <= int(m.group(2)) <= 65535:
+            raise ValueError(f"{what} {endpoint!r}: port {m.group(2)} is outside 1..65535")
+        return
+    if endpoint.startswith("ipc://") and len(endpoint) > len("ipc://"):
+        return
+    raise ValueError(f"{what} {endpoint!r}: expected tcp://HOST:PORT (e.g. "
+                     "tcp://192.168.1.20:5621) or ipc://PATH")
+
+
+def parse_station(text: str) -> tuple[str, str]:
+    """Split a ``NAME=ENDPOINT`` station spec.
+
+    Parameters
+    ----------
+    text : str
+        E.g. ``"dish1=tcp://192.168.1.20:5621"``. NAME: 1 to 32 letters, digits, ``_ . -``,
+        starting with a letter or digit (it names the archive folder). ENDPOINT:
+        ``tcp://HOST:PORT`` or ``ipc://PATH``, the station's data PUB socket.
+
+    Returns
+    -------
+    (name, endpoint) : tuple[str, str]
+
+    Raises
+    ------
+    ValueError
+        One line naming the spec and what is allowed.
+    """
+    name, sep, endpoint = text.partition("=")
+    if not sep:
+        raise ValueError(f"station {text!r}: expected NAME=ENDPOINT, e.g. "
+                         "dish1=tcp://192.168.1.20:5621")
+    if not _NAME_RE.match(name):
+        raise ValueError(f"station {text!r}: name {name!r} must be 1 to 32 letters, digits, "
+                         "_ . - starting with a letter or digit")
+    _check_endpoint(f"station {name}", endpoint)
+    return name, endpoint
+
+
+def _is_local(endpoint: str) -> bool:
+    """True for endpoints only this computer can reach: loopback tcp, ipc://, inproc://."""
+    if endpoint.startswith(("ipc://", "inproc://")):
+        return True
+    m = _TCP_RE.match(endpoint)
+    if not m:
+        return False
+    host = m.group(1).strip("[]")
+    if host == "localhost":
+        return True
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False
+
+
+# ----------------------------------------------------------------------------------------------
+# archive
+# ----------------------------------------------------------------------------------------------
+def _spectrum_key(header: dict) -> tuple:
+    """What makes a spectrum the same spectrum again (a daemon re-sends its latest message to
+    a new or reconnected subscriber)."""
+    return (header["scan"], header["kind"], header["row"], header["time_utc"])
+
+
+def _utc_day(time_utc: str) -> str:
+    t = _dt.datetime.fromisoformat(time_utc).astimezone(_dt.timezone.utc)
+    return t.strftime("%Y%m%d")
+
+
+class _DayFiles:
+    """The open ``.bin`` / ``.jsonl`` pair of one station and day (locked, torn tail cut)."""
+
+    def __init__(self, folder: Path, day: str):
+        self.last_key = None
+        self.index_path = folder / f"spectra-{day}.jsonl"
+        self.bin_path = folder / f"spectra-{day}.bin"
+        created = not self.index_path.exists() or not self.bin_path.exists()
+        self.index_fd = os.open(self.index_path, os.O_RDWR | os.O_CREAT, 0o644)
+        try:
+            if fcntl is not None:
+                try:
+                    fcntl.flock(self.index_fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
+                except BlockingIOError:
+                    raise ValueError(f"archive {self.index_path} is being written by another "
+                                     "spinflip collect: give another --archive") from None
+            self._cut_torn_tail()
+            self.bin_fd = os.open(self.bin_path, os.O_WRONLY | os.O_CREAT | os.O_APPEND, 0o644)
+        except BaseException:
+            os.close(self.index_fd)
+            raise
+        if created:
+            _fsync_dir(folder)
+
+    def _cut_torn_tail(self) -> None:
+        """Drop a last line that a crash left without its newline."""
+        size = os.lseek(self.index_fd, 0, os.SEEK_END)
+        if size == 0:
+            return
+        keep, pos = 0, size
+        while pos > 0:                       # find the last newline, reading backwards
+            step = min(65536, pos)
+            pos -= step
+            chunk = os.pread(self.index_fd, step, pos)
+            i = chunk.rfind(b"\n")
+            if i >= 0:
+                keep = pos + i + 1
+                break
+        if keep != size:
+            os.ftruncate(self.index_fd, keep)
+            os.fsync(self.index_fd)
+        os.lseek(self.index_fd, keep, os.SEEK_SET)
+        if keep:                             # the last whole line: what was archived last
+            start = keep - 1
+            while start > 0:
+                step = min(65536, start)
+                chunk = os.pread(self.index_fd, step, start - step)
+                i = chunk.rfind(b"\n")
+                if i >= 0:
+                    start = start - step + i + 1
+                    break
+                start -= step
+            try:
+                self.last_key = _spectrum_key(
+                    json.loads(os.pread(self.index_fd, keep - start, start))["header"])
+            except (ValueError, KeyError, TypeError):
+                pass
+
+    def append(self, header_json: bytes, payload: list[bytes], received_utc: str) -> None:
+        blob = b"".join(payload)
+        offset = os.lseek(self.bin_fd, 0, os.SEEK_END)
+        _write_all(self.bin_fd, blob)
+        os.fsync(self.bin_fd)
+        line = (b'{"bin_offset":%d,"bin_bytes":%d,"crc32":%d,"received_utc":%s,"header":'
+                % (offset, len(blob), zlib.crc32(blob), json.dumps(received_utc).encode())
+                + header_json + b"}\n")
+        _write_all(self.index_fd, line)
+        os.fsync(self.index_fd)
+
+    def close(self) -> None:
+        os.close(self.bin_fd)
+        os.close(self.index_fd)         # releases the flock
+
+
+class SpectrumArchive:
+    """Append-only, fsync'ed archive of relayed spectra, one folder per station.
+
+    Parameters
+    ----------
+    folder : Path
+        The archive's root; station NAME writes ``folder/NAME/spectra-YYYYMMDD.{bin,jsonl}``
+        (see the module docstring for the format).
+
+    Notes
+    -----
+    :meth:`append` returns once the spectrum is on stable storage. OSError (disk full, I/O
+    error) propagates: a collector that cannot archive stops rather than drop data quietly.
+    """
+
+    def __init__(self, folder: Path):
+        self.folder = Path(folder)
+        self.folder.mkdir(parents=True, exist_ok=True)
+        self._open: dict[str, tuple[str, _DayFiles]] = {}
+        self._last: dict[str, tuple] = {}
+
+    def append(self, station: str, frames: list[bytes]) -> Path | None:
+        """Append one encoded spectrum (``schema.encode`` frames).
+
+        Returns the ``.jsonl`` path, or None when the spectrum repeats the last one archived
+        for ``station`` (same scan, kind, row and time_utc): a station re-sends its latest
+        message when the collector (re)subscribes, and the archive keeps each spectrum once.
+        """
+        header = json.loads(frames[1])
+        day = _utc_day(header["time_utc"])
+        current = self._open.get(station)
+        if current is None or current[0] != day:
+            if current is not None:
+                current[1].close()
+                del self._open[station]
+            folder = self.folder / station
+            if not folder.exists():
+                folder.mkdir()
+                _fsync_dir(self.folder)
+            current = (day, _DayFiles(folder, day))
+            self._open[station] = current
+            if current[1].last_key is not None:
+                self._last[station] = current[1].last_key
+        key = _spectrum_key(header)
+        if self._last.get(station) == key:
+            return None
+        self._last[station] = key
+        current[1].append(bytes(frames[1]), [bytes(f) for f in frames[2:]],
+                          schema.now_utc_iso())
+        return current[1].index_path
+
+    def close(self) -> None:
+        for _day, files in self._open.values():
+            files.close()
+        self._open.clear()
+
+
+def read_spectra(index_path: Path) -> list[schema.Message]:
+    """Read one archive day file back (``spectra-YYYYMMDD.jsonl`` and its ``.bin``).
+
+    Parameters
+    ----------
+    index_path : Path
+        The ``.jsonl`` file; the ``.bin`` file beside it holds the payloads.
+
+    Returns
+    -------
+    list[schema.Message]
+        The spectra in the order they were archived, each checked against the wire schema.
+        A last line without its newline (a crash while writing it) is skipped.
+
+    Raises
+    ------
+    ValueError
+        A whole line that is not JSON, or whose payload is missing or fails its CRC.
+    """
+    index_path = Path(index_path)
+    bin_path = index_path.with_suffix(".bin")
+    raw = index_path.read_bytes()
+    lines = raw.split(b"\n")[:-1]            # the part after the last newline is torn or empty
+    out = []
+    with open(bin_path, "rb") as fh:
+        for n, line in enumerate(lines, start=1):
+            try:
+                rec = json.loads(line)
+                offset, nbytes, crc = rec["bin_offset"], rec["bin_bytes"], rec["crc32"]
+                header = rec["header"]
+            except (ValueError, KeyError, TypeError):
+                raise ValueError(f"{index_path} line {n} is not an archive record") from None
+            fh.seek(offset)
+            blob = fh.read(nbytes)
+            if len(blob) != nbytes or zlib.crc32(blob) != crc:
+                raise ValueError(f"{index_path} line {n}: payload at byte {offset} of "
+                                 f"{bin_path.name} is missing or fails its CRC")
+            frames = [header["topic"].encode("ascii"), json.dumps(header).encode("utf-8")]
+            pos = 0
+            for d in header["arrays"]:
+                itemsize = np.dtype(d["dtype"]).itemsize if d["dtype"] in schema.DTYPES else 0
+                size = math.prod(d["shape"]) * itemsize
+                frames.append(blob[pos:pos + size])
+                pos += size
+            out.append(schema.decode(frames))
+    return out
+
+
+# ----------------------------------------------------------------------------------------------
+# the collector
+# ----------------------------------------------------------------------------------------------
+@dataclass
+class StationCount:
+    """What one station sent: messages received, per topic, relayed, archived, refused."""
+
+    name: str
+    endpoint: str
+    received: int = 0
+    relayed: int = 0
+    archived: int = 0
+    decode_errors: int = 0
+    repeated: int = 0
+    replayed: int = 0
+    disconnects: int = 0
+    latest_ids: dict = field(default_factory=dict, repr=False)
+    by_topic: dict = field(default_factory=dict)
+    last_error: str | None = None
+
+    def line(self) -> str:
+        topics = ", ".join(f"{t} {n}" for t, n in sorted(self.by_topic.items())) or "none"
+        text = (f"{self.name} ({self.endpoint}): {self.received} messages ({topics}), "
+                f"{self.relayed} relayed, {self.archived} spectra archived, "
+                f"{self.decode_errors} decode errors")
+        if self.repeated:
+            text += f", {self.repeated} repeated spectra not archived again"
+        if self.replayed:
+            text += f", {self.replayed} replayed messages already had"
+        if self.disconnects:
+            text += f", {self.disconnects} connections ended"
+        if self.last_error:
+            text += f"; last: {self.last_error}"
+        return text
+
+
+@dataclass
+class CollectReport:
+    """The counts of one :func:`run_collect`, per station (in the order given)."""
+
+    stations: dict = field(default_factory=dict)
+    elapsed_s: float = 0.0
+
+    def lines(self) -> list[str]:
+        return [s.line() for s in self.stations.values()]
+
+
+def _check_args(stations, relay_endpoint, duration_s) -> None:
+    if not stations:
+        raise ValueError("collect needs at least one station NAME=ENDPOINT")
+    names, endpoints = {}, {}
+    for name, endpoint in stations:
+        parse_station(f"{name}={endpoint}")
+        if name in names:
+            raise ValueError(f"station name {name!r} is given twice: names must differ")
+        if endpoint in endpoints:
+            raise ValueError(f"endpoint {endpoint} is given for both {endpoints[endpoint]} and "
+                             f"{name}: one name per station")
+        names[name] = endpoint
+        endpoints[endpoint] = name
+    if relay_endpoint is not None:
+        _check_endpoint("--relay", relay_endpoint)
+        if not _is_local(relay_endpoint):
+            raise ValueError(f"--relay {relay_endpoint} binds beyond this computer: the relay "
+                             "has no keys, use 127.0.0.1, localhost, [::1] or ipc://")
+    if duration_s is not None and not (isinstance(duration_s, (int, float))
+                                       and 0 < duration_s < math.inf):
+        raise ValueError(f"--duration {duration_s!r}: expected a positive number of seconds")
+
+
+def _station_security(keys_dir: Path, name: str):
+    from spinflip.daemon.live.keys import ClientSecurity     # lazily: collecting without keys never needs it
+    own = keys_dir / name
+    return ClientSecurity.from_dir(own if own.is_dir() else keys_dir)
+
+
+def _warn_decode_error(count: StationCount, log_line) -> None:
+    n = count.decode_errors
+    if n & (n - 1) == 0:                 # the 1st, 2nd, 4th, 8th ... error: no flood
+        log_line(f"station {count.name}: message refused ({n} so far): {count.last_error}")
+
+
+def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
+                archive_dir: Path | None, keys_dir: Path | None, duration_s: float | None,
+                stop_event: threading.Event, log_line=None) -> CollectReport:
+    """Receive from every station, relay under the station's name, archive integrations.
+
+    Parameters
+    ----------
+    stations : list of (name, endpoint)
+        As from :func:`parse_station`; names and endpoints must be unique.
+    relay_endpoint : str or None
+        Where to bind the relay PUB socket (loopback or ipc:// only); None: no relay.
+    archive_dir : Path or None
+        Root of the :class:`SpectrumArchive`; None: nothing is written.
+    keys_dir : Path or None
+        CURVE client keys (see the module docstring); None: plain connections.
+    duration_s : float or None
+        Stop after this many seconds (wall clock); None: until ``stop_event`` is set.
+    stop_event : threading.Event
+        Set it (from a signal handler or another thread) to stop within about
+        :data:`POLL_S` s.
+    log_line : callable(str), optional
+        Receives the warnings (refused messages); default: the ``spinflip.collect`` logger.
+
+    Returns
+    -------
+    CollectReport
+        Messages per station: received, per topic, relayed, archived, decode errors.
+
+    Raises
+    ------
+    ValueError
+        Bad station list, relay endpoint, duration or keys (one line), or an endpoint
+        ZeroMQ refuses.
+    OSError
+        The archive could not be written.
+
+    Notes
+    -----
+    One SUB socket per station and a poller over them; the station of a message is the
+    socket it came from. Relaying never blocks: a PUB socket drops for slow subscribers.
+    """
+    _check_args(stations, relay_endpoint, duration_s)
+    log_line = log_line or log.warning
+    if keys_dir is not None:
+        keys_dir = Path(keys_dir)
+        if not keys_dir.is_dir():
+            raise ValueError(f"--keys {keys_dir}: no such folder (make one with spinflip keys)")
+    report = CollectReport({n: StationCount(n, e) for n, e in stations})
+    ctx = zmq.Context()
+    sockets: dict = {}
+    monitors: dict = {}
+    archive = SpectrumArchive(archive_dir) if archive_dir is not None else None
+    relay = None
+    t0 = time.monotonic()
+    try:
+        if relay_endpoint is not None:
+            relay = ctx.socket(zmq.PUB)
+            relay.linger = 0
+            relay.setsockopt(zmq.MAXMSGSIZE, MAX_SUBSCRIPTION_FRAME)   # it reads subscriptions
+            try:
+                relay.bind(relay_endpoint)
+            except zmq.ZMQError as exc:
+                raise ValueError(f"--relay {relay_endpoint}: cannot bind ({exc})") from None
+        poller = zmq.Poller()
+        for name, endpoint in stations:
+            sock = ctx.socket(zmq.SUB)
+            sock.linger = 0
+            sock.setsockopt(zmq.MAXMSGSIZE, schema.MAX_FRAME_BYTES)
+            sockets[sock] = report.stations[name]
+            if keys_dir is not None:
+                _station_security(keys_dir, name).apply(sock)
+            sock.setsockopt(zmq.SUBSCRIBE, b"")
+            try:
+                sock.connect(endpoint)
+            except zmq.ZMQError as exc:
+                raise ValueError(f"station {name} {endpoint}: cannot connect ({exc})") from None
+            poller.register(sock, zmq.POLLIN)
+            monitor = sock.get_monitor_socket(zmq.EVENT_DISCONNECTED)
+            monitors[monitor] = (sock, endpoint)
+            poller.register(monitor, zmq.POLLIN)
+        deadline = None if duration_s is None else t0 + duration_s
+        while not stop_event.is_set():
+            wait_s = POLL_S if deadline is None else min(POLL_S, deadline - time.monotonic())
+            if wait_s <= 0:
+                break
+            for sock, _ev in poller.poll(int(math.ceil(wait_s * 1000))):
+                if sock in monitors:
+                    try:
+                        recv_monitor_message(sock, zmq.NOBLOCK)
+                    except zmq.Again:
+                        continue
+                    _reconnect(monitors[sock], sockets[monitors[sock][0]], log_line)
+                    continue
+                count = sockets[sock]
+                for _ in range(BURST):
+                    try:
+                        frames = sock.recv_multipart(zmq.NOBLOCK)
+                    except zmq.Again:
+                        break
+                    _handle(count, frames, relay, archive, log_line)
+    finally:
+        for monitor, (sock, _endpoint) in monitors.items():
+            sock.disable_monitor()
+            monitor.close()
+        for sock in sockets:
+            sock.close()
+        if relay is not None:
+            relay.close()
+        ctx.term()
+        if archive is not None:
+            archive.close()
+        report.elapsed_s = time.monotonic() - t0
+    return report
+
+
+def _reconnect(entry, count: StationCount, log_line) -> None:
+    """A station's connection ended: count it, say so (1st, 2nd, 4th ...), connect anew.
+
+    ZeroMQ reconnects by itself after a lost connection, but not after a protocol error such
+    as a frame over ``MAXMSGSIZE``; disconnect + connect covers both without a second
+    connection to the station."""
+    sock, endpoint = entry
+    count.disconnects += 1
+    n = count.disconnects
+    if n & (n - 1) == 0:
+        log_line(f"station {count.name}: connection ended ({n} so far; the station stopped, "
+                 f"or sent a frame over {schema.MAX_FRAME_BYTES} bytes): connecting again")
+    try:
+        sock.disconnect(endpoint)
+    except zmq.ZMQError:
+        pass                             # the session is gone already (protocol error)
+    sock.connect(endpoint)
+
+
+def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) -> None:
+    """Check, restamp, relay and archive one message of station ``count.name``."""
+    count.received += 1
+    try:
+        msg = schema.decode(frames)
+        header = dict(msg.header)
+        header["station"] = count.name
+        out = schema.encode(msg.topic, header,
+                          {d["name"]: (msg.arrays[d["name"]], d["unit"])
+                           for d in msg.header["arrays"]})
+    except (schema.WireError, ValueError, TypeError, RecursionError) as exc:
+        count.decode_errors += 1
+        count.last_error = schema.one_line(str(exc) or type(exc).__name__)
+        _warn_decode_error(count, log_line)
+        return
+    count.by_topic[msg.topic] = count.by_topic.get(msg.topic, 0) + 1
+    ident = (header.get("seq"), header["time_utc"])
+    if header.get("replay") is True and count.latest_ids.get(msg.topic) == ident:
+        count.replayed += 1               # the latest message of this topic, already taken
+        return
+    count.latest_ids[msg.topic] = ident
+    if relay is not None:
+        try:
+            relay.send_multipart(out, zmq.NOBLOCK)
+            count.relayed += 1
+        except zmq.Again:                # PUB drops rather than blocks; kept for safety
+            pass
+    if archive is not None and msg.topic == "spectrum" and msg.header["kind"] == "integration":
+        if archive.append(count.name, out) is None:
+            count.repeated += 1
+        else:
+            count.archived += 1
+
+
+# ----------------------------------------------------------------------------------------------
+# command line
+# ----------------------------------------------------------------------------------------------
+def add_collect_arguments(parser) -> None:
+    """The options of ``spinflip collect`` on an argparse (sub)parser; see :func:`main_collect`."""
+    parser.add_argument("stations", nargs="+", metavar="NAME=ENDPOINT",
+                        help="a station's data socket, e.g. dish1=tcp://192.168.1.20:5621")
+    parser.add_argument("--relay", metavar="ENDPOINT",
+                        help="re-publish everything here with the station's name "
+                        "(loopback or ipc:// only), e.g. tcp://127.0.0.1:5631")
+    parser.add_argument("--archive", metavar="DIR",
+                        help="append every integration to DIR/NAME/spectra-YYYYMMDD.jsonl/.bin")
+    parser.add_argument("--keys", metavar="DIR",
+                        help="CURVE client keys (DIR/client.key, client.key_secret, "
+                        "server.key; DIR/NAME/ for a station's own)")
+    parser.add_argument("--duration", type=float, metavar="S",
+                        help="stop after S seconds; default: until Ctrl-C or SIGTERM")
+
+
+def main_collect(args) -> int:
+    """Run ``spinflip collect`` from parsed options; returns the exit code.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        ``stations`` (list of "NAME=ENDPOINT" strings), ``relay`` (str or None),
+        ``archive`` (str or None), ``keys`` (str or None), ``duration`` (float or None), as
+        :func:`add_collect_arguments` defines them.
+
+    Returns
+    -------
+    int
+        0 when stopped (duration over, SIGINT or SIGTERM); 2 for bad input (one line on
+        standard error); 1 when the archive could not be written or ZeroMQ failed.
+
+    Notes
+    -----
+    Prints one line per station at the end (messages, per topic, relayed, archived, decode
+    errors) and warns about stations nothing was received from. SIGINT and SIGTERM stop the
+    collector cleanly when called from the main thread.
+    """
+    stop_event = threading.Event()
+    old_handlers = {}
+    try:
+        stations = [parse_station(t) for t in args.stations]
+        archive = Path(args.archive) if getattr(args, "archive", None) else None
+        keys = Path(args.keys) if getattr(args, "keys", None) else None
+        relay = getattr(args, "relay", None)
+        duration = getattr(args, "duration", None)
+        _check_args(stations, relay, duration)
+        if threading.current_thread() is threading.main_thread():
+            for sig in (signal.SIGINT, signal.SIGTERM):
+                old_handlers[sig] = signal.signal(sig, lambda *_: stop_event.set())
+        where = "; ".join(f"{n} {e}" for n, e in stations)
+        print(f"spinflip collect: from {where}"
+              + (f"; relaying on {relay}" if relay else "")
+              + (f"; archiving to {archive}" if archive else ""), flush=True)
+        report = run_collect(stations, relay, archive, keys, duration, stop_event,
+                             log_line=lambda s: print(f"spinflip collect: {s}",
+                                                      file=sys.stderr, flush=True))
+    except ValueError as exc:
+        print(f"spinflip collect: {exc}", file=sys.stderr)
+        return 2
+    except (OSError, zmq.ZMQError) as exc:
+        print(f"spinflip collect: {exc}", file=sys.stderr)
+        return 1
+    finally:
+        for sig, handler in old_handlers.items():
+            signal.signal(sig, handler)
+    for line in report.lines():
+        print(line)
+    for count in report.stations.values():
+        if count.received == 0:
+            print(f"spinflip collect: nothing received from {count.name} ({count.endpoint}) "
+                  f"in {report.elapsed_s:.1f} s: is spinflip run going there, and are the "
+                  "keys right?", file=sys.stderr)
+    return 0

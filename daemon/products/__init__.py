@@ -1,0 +1,1 @@
+"""What a scan yields beyond its rows: baseline, line integral, the scan average."""

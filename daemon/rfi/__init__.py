@@ -1,0 +1,1 @@
+"""Interference: impulse blanking, spectral kurtosis, persistent carriers, channels flagged by name."""

@@ -1,0 +1,276 @@
+"""The ``spinflip`` command line: one entry point with subcommands.
+
+Exit codes: 0 success, 1 a fault while running (device gone, disk error), 2 bad input
+(configuration, options, files), each with one line on standard error naming what was wrong.
+"""
+
+from __future__ import annotations
+
+import argparse
+import faulthandler
+import json
+import sys
+from pathlib import Path
+
+from spinflip.daemon.config import ConfigError
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message):  # one line, exit 2
+        self.exit(2, f"{self.prog}: error: {message}\n")
+
+
+def _positive_seconds(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number of seconds") from None
+    if not v > 0 or v == float("inf"):
+        raise argparse.ArgumentTypeError(f"{text!r}: expected a positive number of seconds")
+    return v
+
+
+def build_parser() -> argparse.ArgumentParser:
+    p = _Parser(prog="spinflip", description="21 cm hydrogen-line spectrometer daemon and tools.")
+    sub = p.add_subparsers(dest="command", required=True, parser_class=_Parser)
+    r = sub.add_parser("run", help="run the acquisition daemon in the foreground")
+    r.add_argument("--config", metavar="FILE", help="TOML configuration (every key has a default)")
+    r.add_argument("--source", metavar="SRC", help="sim, rtlsdr or replay:PATH (overrides [source] kind)")
+    r.add_argument("--duration", type=_positive_seconds, metavar="S",
+                   help="observing time in seconds (simulated time with --fast); default: until stopped")
+    r.add_argument("--out", metavar="DIR", help="output folder (overrides [output] dir)")
+    r.add_argument("--fast", action="store_true",
+                   help="simulator and replay run as fast as the CPU allows")
+    r.add_argument("--sample-rate", type=float, metavar="HZ", help="overrides [source] sample_rate")
+    r.add_argument("--center-freq", type=float, metavar="HZ", help="overrides [source] center_freq")
+    lo = sub.add_parser("loads", help="hot/cold-load (Y-factor) calibration, guided step by step")
+    lo.add_argument("--config", metavar="FILE", help="TOML configuration (every key has a default)")
+    lo.add_argument("--source", metavar="SRC", help="sim or rtlsdr (overrides [source] kind)")
+    lo.add_argument("--out", metavar="DIR", help="output folder (overrides [output] dir); the "
+                    "record goes to calibration.records or DIR/calibration")
+    lo.add_argument("--fast", action="store_true", help="simulator as fast as the CPU allows")
+    lo.add_argument("--yes", action="store_true",
+                    help="do not wait for Enter at each step (the loads are already in place, "
+                    "or the simulator places them)")
+    w = sub.add_parser("watch", help="the terminal UI against a running daemon")
+    w.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5621",
+                   help="the daemon's data socket (default tcp://127.0.0.1:5621)")
+    w.add_argument("--control", metavar="ENDPOINT",
+                   help="its control socket (default: the data socket's host, port + 1)")
+    w.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
+    d = sub.add_parser("demo", help="the simulator and the terminal UI together, a short observation")
+    d.add_argument("--seconds", type=_positive_seconds, default=60.0, metavar="S",
+                   help="observing time (default 60)")
+    d.add_argument("--out", metavar="DIR", default="spinflip-data", help="where the scan goes")
+    c = sub.add_parser("ctl", help="send a command to a running daemon (its control socket)")
+    c.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5622",
+                   help="the daemon's control socket (default tcp://127.0.0.1:5622)")
+    c.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
+    c.add_argument("--timeout", type=_positive_seconds, default=5.0, metavar="S",
+                   help="seconds to wait for the reply (default 5)")
+    c.add_argument("words", nargs="+", metavar="COMMAND [KEY=VALUE ...]",
+                   help="status, start, stop, pause, resume, new_scan, calibrate, point, "
+                   "set_integration, annotate")
+    k = sub.add_parser("keys", help="create CURVE key pairs for the daemon or a client")
+    k.add_argument("dir", metavar="DIR", help="the daemon's keys folder (publish.keys)")
+    k.add_argument("--client", metavar="NAME", help="create a client key pair in DIR/NAME")
+    co = sub.add_parser("collect", help="gather several daemons' live data in one place")
+    co.add_argument("stations", nargs="+", metavar="NAME=ENDPOINT",
+                    help="a station name and its daemon's data socket")
+    co.add_argument("--relay", metavar="ENDPOINT", help="re-publish everything here, by station")
+    co.add_argument("--archive", metavar="DIR", help="store every received integration here")
+    co.add_argument("--keys", metavar="DIR", help="client CURVE keys for secured daemons")
+    co.add_argument("--duration", type=_positive_seconds, metavar="S",
+                    help="seconds to collect (default: until stopped)")
+    i = sub.add_parser("inspect", help="summary of a saved FITS scan")
+    i.add_argument("file", metavar="FILE")
+    i.add_argument("--json", action="store_true", help="machine-readable output")
+    b = sub.add_parser("bench", help="DSP throughput and radiometer efficiency against a baseline")
+    b.add_argument("--json", action="store_true", help="machine-readable output")
+    b.add_argument("--seconds", type=_positive_seconds, default=2.0,
+                   help="seconds of 2.4 MS/s data per measurement (default 2)")
+    ch = sub.add_parser("chain", help="receiver-chain budget: Friis cascade, Tsys, beam, "
+                        "sensitivity, expected HI (hardware/profiles/*.toml)")
+    ch.add_argument("file", metavar="FILE", help="a receiver-chain profile (TOML)")
+    dr = sub.add_parser("doctor", help="check the station: librtlsdr, dongle, DVB driver, "
+                        "permissions, clock, disk, config, ports")
+    dr.add_argument("--config", metavar="FILE", help="TOML configuration (as for run)")
+    dr.add_argument("--out", metavar="DIR", help="output folder (as for run; overrides [output] dir)")
+    so = sub.add_parser("soak", help="the daemon in real time on the simulator with two "
+                        "subscribers: samples lost, RSS growth, CPU share")
+    so.add_argument("--seconds", type=_positive_seconds, default=600.0, metavar="S",
+                    help="how long (default 600)")
+    so.add_argument("--json", action="store_true", help="machine-readable output")
+    so.add_argument("--check", action="store_true",
+                    help="exit 1 when a target is missed (samples or messages lost, RSS growth "
+                    "above 5 %%, integrations not saved)")
+    return p
+
+
+def _cmd_chain(args) -> int:
+    from spinflip.daemon.commands.chain_table import chain_main
+    return chain_main(args.file)
+
+
+def _cmd_doctor(args) -> int:
+    from spinflip.daemon.commands.doctor import doctor_main
+    return doctor_main(args.config, out_dir=args.out)
+
+
+def _cmd_soak(args) -> int:
+    from spinflip.daemon.commands.soak import soak_main
+    return soak_main(args.seconds, args.json, args.check)
+
+
+def _cmd_run(args) -> int:
+    from spinflip.daemon import config as config_mod
+    from spinflip.daemon.run.observation import Daemon
+    from spinflip.daemon.sources.base import parse_source_option
+    cfg = config_mod.load(args.config)
+    over: dict = {}
+    if args.source:
+        over.setdefault("source", {}).update(parse_source_option(args.source))
+    if args.sample_rate is not None:
+        over.setdefault("source", {})["sample_rate"] = args.sample_rate
+    if args.center_freq is not None:
+        over.setdefault("source", {})["center_freq"] = args.center_freq
+    if args.out:
+        over["output"] = {"dir": args.out}
+    config_mod.merge(cfg, over, origin="command line")
+    try:                      # a watchdog kill (SIGABRT) leaves every thread's stack in the log
+        faulthandler.enable()
+    except (OSError, ValueError):  # stderr is no file (run in-process under a capture)
+        pass
+    daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration)
+    daemon.install_signal_handlers()
+    src = cfg["source"]["kind"]
+    daemon.log(f"spinflip: observing {daemon.pointing.object} with the {src} source"
+               f"{' (fast)' if args.fast else ''}; integrations of "
+               f"{daemon.blocks_per_integration * daemon.block_s:.1f} s")
+    try:
+        result = daemon.run()
+    finally:                  # after a failure too: say what was saved, nothing more
+        _report_saved(daemon.result, daemon.out_dir)
+    if result.lost_samples:
+        print(f"warning: {result.lost_samples} samples lost", file=sys.stderr)
+    return 0
+
+
+def _report_saved(result, out_dir) -> None:
+    """One line per scan file written (integrations in it), or that none was."""
+    for f in result.files:
+        n = result.file_rows.get(str(f), result.rows)
+        what = f"{n} integration{'s' if n != 1 else ''}"
+        print(f"saved {what} to {f} ({result.observed_s:.1f} s observed in all)"
+              if len(result.files) > 1 else
+              f"saved {what} ({result.observed_s:.1f} s observed) to {f}")
+    if not result.files:
+        print(f"no integration saved in {out_dir}" + (
+            f" ({result.rows} finished)" if result.rows else " (none finished)"))
+
+
+def _cmd_loads(args) -> int:
+    from spinflip.daemon import config as config_mod
+    from spinflip.daemon.calibration import loads as loads_mod
+    from spinflip.daemon.commands.loads_session import LoadsSession
+    from spinflip.daemon.run.observation import records_dir
+    from spinflip.daemon.sources.base import parse_source_option
+    cfg = config_mod.load(args.config)
+    over: dict = {}
+    if args.source:
+        over.setdefault("source", {}).update(parse_source_option(args.source))
+    if args.out:
+        over["output"] = {"dir": args.out}
+    config_mod.merge(cfg, over, origin="command line")
+
+    def prompt(step):
+        print(step.instruction if not args.yes else f"Step {step.number} of {step.total}: "
+              f"{step.title.lower()} ...", flush=True)
+        if not args.yes:
+            try:
+                input()
+            except EOFError:
+                raise KeyboardInterrupt from None
+
+    session = LoadsSession(cfg, prompt, fast=args.fast)
+    try:
+        record = session.run()
+    except KeyboardInterrupt:
+        print("cancelled: no calibration record written", file=sys.stderr)
+        return 130
+    path = loads_mod.save_record(record, records_dir(cfg))
+    tcal = (f", noise source {record.noise_source_k:.2f} K" if record.noise_source_k else "")
+    print(f"Y = {record.y:.4f}: Trx = {record.trx_k:.2f} K, Tsys on the cold sky = "
+          f"{record.tsys_cold_k:.2f} K, gain {record.gain_counts_per_k:.4g} counts/K{tcal}")
+    print(f"saved calibration record {record.name} to {path}")
+    return 0
+
+
+def _control_for(data_endpoint: str) -> str:
+    """The control endpoint beside a data endpoint: same host, port + 1 (the defaults' rule)."""
+    head, _, port = data_endpoint.rpartition(":")
+    if not port.isdigit():
+        raise ValueError(f"--connect {data_endpoint!r}: give --control too (no port to add 1 to)")
+    return f"{head}:{int(port) + 1}"
+
+
+def _cmd_watch(args) -> int:
+    from spinflip.tui.app import watch_main
+    control = args.control or _control_for(args.connect)
+    return watch_main(args.connect, control, args.keys)
+
+
+def _cmd_demo(args) -> int:
+    from spinflip.tui.app import demo_main
+    return demo_main(seconds=args.seconds, out_dir=args.out)
+
+
+def _cmd_ctl(args) -> int:
+    from spinflip.daemon.live.control import ctl_main
+    return ctl_main(args.connect, args.words, args.keys, args.timeout)
+
+
+def _cmd_keys(args) -> int:
+    from spinflip.daemon.live.keys import keys_main
+    return keys_main(Path(args.dir), args.client)
+
+
+def _cmd_collect(args) -> int:
+    from spinflip.daemon.live.collect import main_collect
+    return main_collect(args)
+
+
+def _cmd_inspect(args) -> int:
+    from spinflip.daemon.commands.inspect import format_summary, summarize
+    summary = summarize(Path(args.file))
+    print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
+    return 0
+
+
+def _cmd_bench(args) -> int:
+    from spinflip.daemon.commands.bench import format_bench, run_bench
+    result = run_bench(seconds=args.seconds)
+    print(json.dumps(result, indent=2) if args.json else format_bench(result))
+    return 0
+
+
+def main(argv=None) -> int:
+    args = build_parser().parse_args(argv)
+    handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
+               "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
+               "watch": _cmd_watch, "demo": _cmd_demo,
+               "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,
+               "soak": _cmd_soak}[args.command]
+    from spinflip.daemon.sources.base import SourceError
+    from spinflip.daemon.run.supervisor import WorkerFailed
+    try:
+        return handler(args)
+    except (ConfigError, ValueError) as exc:     # bad input: configuration, options, files
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 2
+    except (SourceError, OSError, WorkerFailed) as exc:   # a fault while running
+        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
+        return 1
+
+if __name__ == "__main__":
+    sys.exit(main())
