@@ -54,7 +54,7 @@ def test_doctor_describes_usb_ids_generically():
     for ids, text in doctor.RTL2832U_USB_IDS.items():
         assert re.fullmatch(r"[0-9a-f]{4}", ids[0]) and re.fullmatch(r"[0-9a-f]{4}", ids[1])
         assert text.startswith("RTL2832U "), (ids, text)
-    source = (REPO / "daemon" / "doctor.py").read_text()
+    source = (REPO / "daemon" / "commands" / "doctor.py").read_text()
     assert "librtlsdr.c" not in source     # no pointer into a driver's own device list
 
 
@@ -84,6 +84,6 @@ def test_developers_guide_names_only_files_that_exist():
     text = (REPO / "DEVELOPERS.md").read_text()
     named = set(re.findall(r"\b((?:daemon|tests|tui|pkg|hardware|systemd|scripts)/[\w./-]+"
                            r"\.\w+)", text))
-    assert len(named) > 20
+    assert len(named) > 8
     missing = sorted(n for n in named if not (REPO / n).exists())
     assert not missing, missing

@@ -596,7 +596,7 @@ def port_holder(proc_root: Path, port: int) -> tuple[int, list[str]] | None:
 def _is_spinflip_daemon(argv: list[str]) -> bool:
     """argv of ``spinflip run|demo`` (the script, or ``python -m spinflip.cli``)."""
     for i, arg in enumerate(argv):
-        if os.path.basename(arg) == "spinflip" or arg.startswith("spinflip.daemon"):
+        if os.path.basename(arg) == "spinflip" or arg in ("spinflip.cli", "spinflip.daemon.cli"):
             return any(a in ("run", "demo") for a in argv[i + 1:])
     return False
 

@@ -158,7 +158,7 @@ DEFAULT_CHANNELS = 1024
 DEFAULT_INTEGRATION_S = 10.0
 
 #: The profiles that come with spinflip (present in a source checkout or editable install).
-SHIPPED_PROFILES_DIR = Path(__file__).resolve().parent.parent / "hardware" / "profiles"
+SHIPPED_PROFILES_DIR = Path(__file__).resolve().parents[2] / "hardware" / "profiles"
 
 
 class ProfileError(ValueError):
