@@ -1,4 +1,4 @@
-"""``spinflip collect`` (daemon/collect.py): two stations relayed and archived, never mixed up.
+"""``spinflip collect`` (daemon/live/collect.py): two stations relayed and archived, never mixed up.
 
 Outside references used below:
 - ZeroMQ PUB/SUB and XPUB behaviour (RFC 29/PUBSUB, from memory: an XPUB socket receives
@@ -295,7 +295,7 @@ def test_archive_survives_a_torn_tail_and_checks_crc(tmp_path):
 
 
 def test_archive_keeps_a_repeated_spectrum_once_also_after_a_restart(tmp_path):
-    # a daemon re-sends its latest message when a subscriber (re)joins (daemon/publisher.py)
+    # a daemon re-sends its latest message when a subscriber (re)joins (daemon/live/publisher.py)
     first, second = (relabel(spectrum_frames("A", r), "A") for r in (0, 1))
     arch = SpectrumArchive(tmp_path)
     assert arch.append("A", first) is not None

@@ -1,4 +1,4 @@
-"""Receiver-chain budget (daemon/receiver_chain.py) and its tables (daemon/chain_table.py).
+"""Receiver-chain budget (daemon/commands/receiver_chain.py) and its tables (daemon/commands/chain_table.py).
 
 Outside references used below (each also named beside its check):
 - Friis cascade T = T1 + T2/G1 + T3/(G1 G2) + ... (Friis 1944, Proc. IRE 32, 419; from memory),
