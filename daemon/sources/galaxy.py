@@ -74,6 +74,7 @@ from dataclasses import dataclass
 from typing import NamedTuple
 
 import numpy as np
+import numpy.typing as npt
 
 #: Column density per unit brightness-temperature integral, cm^-2 per (K km/s)
 #: (Dickey & Lockman 1990).
@@ -91,7 +92,8 @@ _KEEP_FRACTION = 1e-9   # elements with less column than this x the largest are 
 _PROFILE_SIGMAS = 7.0   # Gaussian velocity profiles are evaluated within this many sigma
 
 
-def rotation_speed_kms(r_kpc, theta0_kms=220.0, r0_kpc=8.5, r_rise_kpc=1.0):
+def rotation_speed_kms(r_kpc: npt.ArrayLike, theta0_kms: float = 220.0, r0_kpc: float = 8.5,
+                       r_rise_kpc: float = 1.0) -> np.ndarray:
     """Circular speed of the model: a rise, then a flat curve.
 
     Parameters
@@ -218,11 +220,11 @@ class ModelGalaxy:
     max_distance_kpc: float = 25.0
 
     # -- structure ---------------------------------------------------------------------------
-    def rotation_speed_kms(self, r_kpc):
+    def rotation_speed_kms(self, r_kpc: npt.ArrayLike) -> np.ndarray:
         """Circular speed Theta(R) in km/s; see :func:`rotation_speed_kms`."""
         return rotation_speed_kms(r_kpc, self.theta0_kms, self.r0_kpc, self.r_rise_kpc)
 
-    def scale_height_at_kpc(self, r_kpc):
+    def scale_height_at_kpc(self, r_kpc: npt.ArrayLike) -> np.ndarray:
         """Gaussian scale height h(R) of the layer, kpc: h0 inside R0, flaring outside.
 
         ``h(R) = h0 exp(max(R - R0, 0) / R_flare)``. The value 0.12 kpc for h0 follows the
@@ -232,7 +234,8 @@ class ModelGalaxy:
         return self.scale_height_kpc * np.exp(np.maximum(r - self.r0_kpc, 0.0)
                                               / self.flare_length_kpc)
 
-    def density_cm3(self, r_kpc, phi_rad, z_kpc):
+    def density_cm3(self, r_kpc: npt.ArrayLike, phi_rad: npt.ArrayLike,
+                    z_kpc: npt.ArrayLike) -> np.ndarray:
         """HI volume density n(R, phi, z) in cm^-3.
 
         Parameters
@@ -267,7 +270,7 @@ class ModelGalaxy:
         return self.midplane_density_cm3 * surface * arms * vertical
 
     # -- lines of sight ----------------------------------------------------------------------
-    def sightline(self, glon_deg, glat_deg) -> Sightline:
+    def sightline(self, glon_deg: float, glat_deg: float) -> Sightline:
         """Path elements toward (l, b): positions, density, velocity and column.
 
         Parameters
@@ -289,7 +292,7 @@ class ModelGalaxy:
         """
         return _sightline(self, round(float(glon_deg) % 360.0, 6), round(float(glat_deg), 6))
 
-    def column_density_cm2(self, glon_deg, glat_deg) -> float:
+    def column_density_cm2(self, glon_deg: float, glat_deg: float) -> float:
         """The model's true HI column density toward (l, b), cm^-2.
 
         ``N_HI = sum_i n_i ds`` over the same path elements that the radiative transfer uses,
@@ -297,7 +300,8 @@ class ModelGalaxy:
         """
         return float(self.sightline(glon_deg, glat_deg).column_cm2.sum())
 
-    def optical_depth(self, glon_deg, glat_deg, v_lsr_kms):
+    def optical_depth(self, glon_deg: float, glat_deg: float,
+                      v_lsr_kms: npt.ArrayLike) -> np.ndarray:
         """Total HI optical depth tau(v) toward (l, b), same shape as ``v_lsr_kms``.
 
         ``tau(v) = sum_i N_i phi_i(v) / (1.823e18 T_s)`` (Dickey & Lockman 1990).
@@ -306,7 +310,8 @@ class ModelGalaxy:
         tau, _ = self._element_tau(glon_deg, glat_deg, v.ravel())
         return tau.sum(axis=0).reshape(v.shape)
 
-    def brightness_temperature(self, glon_deg, glat_deg, v_lsr_kms, beam_fwhm_deg=0.0):
+    def brightness_temperature(self, glon_deg: float, glat_deg: float, v_lsr_kms: npt.ArrayLike,
+                               beam_fwhm_deg: float = 0.0) -> np.ndarray:
         """HI line brightness temperature T_B(v) toward (l, b), kelvin.
 
         Parameters
@@ -346,7 +351,8 @@ class ModelGalaxy:
             weights += w
         return (total / weights).reshape(v.shape)
 
-    def continuum_temperature(self, glon_deg, glat_deg, beam_fwhm_deg=0.0) -> float:
+    def continuum_temperature(self, glon_deg: float, glat_deg: float,
+                              beam_fwhm_deg: float = 0.0) -> float:
         """Continuum brightness temperature at 1420 MHz toward (l, b), kelvin (rough model).
 
         Parameters
@@ -387,7 +393,7 @@ class ModelGalaxy:
         cos_theta = math.cos(math.radians(glon_deg)) * math.cos(math.radians(lat))
         theta = math.degrees(math.acos(max(-1.0, min(1.0, cos_theta))))
 
-        def g(width):
+        def g(width: float) -> float:
             return math.exp(-0.5 * (theta / width) ** 2)
 
         t_gal = (0.6
@@ -396,7 +402,8 @@ class ModelGalaxy:
         return T_CMB_K + t_gal
 
     # -- internals ---------------------------------------------------------------------------
-    def _element_tau(self, glon_deg, glat_deg, v_kms):
+    def _element_tau(self, glon_deg: float, glat_deg: float,
+                     v_kms: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Optical depth of each kept element at each channel: (tau[n_el, n_chan], T_s)."""
         sl = self.sightline(glon_deg, glat_deg)
         col = sl.column_cm2
@@ -410,7 +417,7 @@ class ModelGalaxy:
         tau = norm[:, None] * np.exp(-0.5 * x * x)
         return tau, np.full(col.shape, self.spin_temperature_k)
 
-    def _pencil_tb(self, glon_deg, glat_deg, v_kms):
+    def _pencil_tb(self, glon_deg: float, glat_deg: float, v_kms: np.ndarray) -> np.ndarray:
         """T_B for a pencil beam on a flat velocity array (only channels near the gas)."""
         out = np.zeros(v_kms.shape)
         sl = self.sightline(glon_deg, glat_deg)
@@ -429,7 +436,8 @@ class ModelGalaxy:
         return out
 
 
-def beam_directions(glon_deg, glat_deg, beam_fwhm_deg):
+def beam_directions(glon_deg: float, glat_deg: float,
+                    beam_fwhm_deg: float) -> list[tuple[float, float, float]]:
     """Seven sample directions within a Gaussian beam and their weights.
 
     Parameters
@@ -494,4 +502,4 @@ def _sightline(galaxy: ModelGalaxy, glon_deg: float, glat_deg: float) -> Sightli
     arrays = [d, r, z, n, v, col]
     for a in arrays:
         a.setflags(write=False)
-    return Sightline(*arrays, step_kpc=step)
+    return Sightline(d, r, z, n, v, col, step_kpc=step)
