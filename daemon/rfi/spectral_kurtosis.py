@@ -128,6 +128,7 @@ from __future__ import annotations
 from functools import lru_cache
 
 import numpy as np
+import numpy.typing as npt
 import scipy.special as sc
 
 __all__ = ["sk_estimator", "sk_moments", "sk_fourth_moment", "sk_thresholds", "sk_flags",
@@ -154,23 +155,28 @@ _IV_HALF_WIDTH = 40.0
 
 
 # ---------------------------------------------------------------------------- checks
-def _check_shape(n, d) -> float:
+def _is_scalar(x: object) -> bool:
+    """:func:`numpy.isscalar` as a plain bool (its TypeGuard would narrow a float to str etc.)."""
+    return bool(np.isscalar(x))
+
+
+def _check_shape(n: float, d: float) -> float:
     """a = N d after checking N (integer >= 1) and d (> 0)."""
-    if not (np.isscalar(n) and np.isfinite(n) and float(n) == int(n) and n >= 1):
+    if not (_is_scalar(n) and np.isfinite(n) and float(n) == int(n) and n >= 1):
         raise ValueError(f"n (powers summed per accumulation) must be an integer >= 1, got {n}")
-    if not (np.isscalar(d) and np.isfinite(d) and d > 0):
+    if not (_is_scalar(d) and np.isfinite(d) and d > 0):
         raise ValueError(f"d (gamma shape of one power, 1 for complex channels) must be > 0, "
                          f"got {d}")
     return float(n) * float(d)
 
 
-def _check_pfa(pfa) -> float:
-    if not (np.isscalar(pfa) and 0.0 < float(pfa) < 0.5):
+def _check_pfa(pfa: float) -> float:
+    if not (_is_scalar(pfa) and 0.0 < float(pfa) < 0.5):
         raise ValueError(f"false-alarm probability pfa must lie in (0, 0.5), got {pfa}")
     return float(pfa)
 
 
-def _check_m(m) -> np.ndarray:
+def _check_m(m: npt.ArrayLike) -> np.ndarray:
     m = np.asarray(m, dtype=np.float64)
     if m.size and not np.all((m >= 2) & np.isfinite(m)):
         bad = float(m[~((m >= 2) & np.isfinite(m))].flat[0])
@@ -178,7 +184,7 @@ def _check_m(m) -> np.ndarray:
     return m
 
 
-def _check_method(method) -> str:
+def _check_method(method: str) -> str:
     if method not in METHODS:
         raise ValueError(f"unknown SK threshold method {method!r}: expected one of "
                          f"{', '.join(METHODS)}")
@@ -186,7 +192,8 @@ def _check_method(method) -> str:
 
 
 # ------------------------------------------------------------------------- estimator
-def sk_estimator(s1, s2, m, n: int = 1, d: float = 1.0) -> np.ndarray:
+def sk_estimator(s1: npt.ArrayLike, s2: npt.ArrayLike, m: npt.ArrayLike, n: int = 1,
+                 d: float = 1.0) -> np.ndarray:
     """Generalised spectral-kurtosis estimator per channel.
 
     Parameters
@@ -222,7 +229,7 @@ def sk_estimator(s1, s2, m, n: int = 1, d: float = 1.0) -> np.ndarray:
 
 
 # --------------------------------------------------------------------------- moments
-def _central_moments(m: np.ndarray, a: float):
+def _central_moments(m: np.ndarray, a: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """(mu2, mu3, mu4) of SK for Gaussian noise; m checked (>= 2), float64 arrays."""
     ma = m * a
     g2 = sc.gammaln(ma + 2.0)
@@ -239,7 +246,8 @@ def _central_moments(m: np.ndarray, a: float):
     return mu2, mu3, mu4
 
 
-def sk_moments(m, n: int = 1, d: float = 1.0):
+def sk_moments(m: npt.ArrayLike, n: int = 1, d: float = 1.0
+               ) -> tuple[float, float, float] | tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Mean, variance and third central moment of SK for Gaussian noise.
 
     Parameters
@@ -269,7 +277,7 @@ def sk_moments(m, n: int = 1, d: float = 1.0):
     return np.ones_like(m), mu2, mu3
 
 
-def sk_fourth_moment(m, n: int = 1, d: float = 1.0):
+def sk_fourth_moment(m: npt.ArrayLike, n: int = 1, d: float = 1.0) -> float | np.ndarray:
     """Fourth central moment of SK for Gaussian noise (derived here; module docstring).
 
     mu4 = 12 a (a + 1) M^4 Gamma(Ma + 2) Q(M, a) / ((M - 1)^3 Gamma(Ma + 8)), a = N d.
@@ -283,7 +291,8 @@ def sk_fourth_moment(m, n: int = 1, d: float = 1.0):
 
 
 # ------------------------------------------------------------------ Pearson type III
-def _pearson3(mu2, mu3, pfa):
+def _pearson3(mu2: np.ndarray | np.float64, mu3: np.ndarray | np.float64,
+              pfa: float) -> tuple[np.ndarray, np.ndarray]:
     """Lower and upper quantiles of the Pearson III curve with mean 1, variance mu2, mu3."""
     sd = np.sqrt(mu2)
     g = mu3 / (mu2 * sd)                                    # skewness
@@ -307,7 +316,7 @@ def _pearson3(mu2, mu3, pfa):
 
 
 # ------------------------------------------------------- Pearson system, four moments
-def _pearson4_one(mu2: float, mu3: float, mu4: float, pfa: float):
+def _pearson4_one(mu2: float, mu3: float, mu4: float, pfa: float) -> tuple[float, float]:
     """Lower and upper pfa-quantiles of SK = 1 + x from the Pearson curve of 4 moments."""
     sd = np.sqrt(mu2)
     g = mu3 / (mu2 * sd)
@@ -320,8 +329,8 @@ def _pearson4_one(mu2: float, mu3: float, mu4: float, pfa: float):
     c1 = sd * g * (b2 + 3.0) / den
     c2 = (2.0 * b2 - 3.0 * b1 - 6.0) / den
     if abs(c2) < 1e-9 * max(1.0, abs(c1) / sd):         # type III boundary: gamma curve
-        lo, hi = _pearson3(np.float64(mu2), np.float64(mu3), pfa)
-        return float(lo), float(hi)
+        lo3, hi3 = _pearson3(np.float64(mu2), np.float64(mu3), pfa)
+        return float(lo3), float(hi3)
     disc = c1 * c1 - 4.0 * c0 * c2
     if disc <= 0.0:
         return _pearson_type4(c0, c1, c2, pfa)
@@ -354,7 +363,7 @@ def _pearson4_one(mu2: float, mu3: float, mu4: float, pfa: float):
     return 1.0 + float(lo), 1.0 + float(hi)
 
 
-def _pearson_type4(c0: float, c1: float, c2: float, pfa: float):
+def _pearson_type4(c0: float, c1: float, c2: float, pfa: float) -> tuple[float, float]:
     """Quantiles of the type IV curve d ln f/dx = -(x + c1) / (c0 + c1 x + c2 x^2), c2 > 0.
 
     c0 + c1 x + c2 x^2 = c2 ((x - lam)^2 + alpha^2); with x = lam + alpha tan(t) the density
@@ -382,7 +391,8 @@ def _pearson_type4(c0: float, c1: float, c2: float, pfa: float):
     return 1.0 + lam + alpha * np.tan(t_lo), 1.0 + lam + alpha * np.tan(t_hi)
 
 
-def _pearson4(mu2, mu3, mu4, pfa):
+def _pearson4(mu2: np.ndarray, mu3: np.ndarray, mu4: np.ndarray,
+              pfa: float) -> tuple[np.ndarray, np.ndarray]:
     """Vectorised :func:`_pearson4_one` over arrays of moments."""
     out = [_pearson4_one(float(x), float(y), float(z), pfa)
            for x, y, z in zip(np.ravel(mu2), np.ravel(mu3), np.ravel(mu4))]
@@ -392,7 +402,7 @@ def _pearson4(mu2, mu3, mu4, pfa):
 
 
 # ------------------------------------------------------ conditional saddlepoint (lower)
-def _tilted(beta: np.ndarray, a: float):
+def _tilted(beta: np.ndarray, a: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Per-sample saddlepoint quantities along the tilt beta (see the module docstring).
 
     Returns q (mean square of the powers over their squared mean), h (the per-spectrum
@@ -408,7 +418,8 @@ def _tilted(beta: np.ndarray, a: float):
     return q, np.maximum(h, 0.0), c_u
 
 
-def _spa_cdf(beta: np.ndarray, m: np.ndarray, a: float):
+def _spa_cdf(beta: np.ndarray, m: np.ndarray,
+             a: float) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
     """Saddlepoint P(SK <= s(beta)) for M = m, with w; Skovgaard's formula."""
     q, h, c_u = _tilted(beta, a)
     w = -np.sqrt(2.0 * m * h)
@@ -418,7 +429,7 @@ def _spa_cdf(beta: np.ndarray, m: np.ndarray, a: float):
     return cdf, q, w
 
 
-def _spa_lower(m: np.ndarray, pfa: float, a: float):
+def _spa_lower(m: np.ndarray, pfa: float, a: float) -> tuple[np.ndarray, np.ndarray]:
     """Lower thresholds by bisection on beta, and the saddlepoint's w there.
 
     NaN (both) where the bracket beta in [-30, 35] does not hold the answer.
@@ -438,7 +449,8 @@ def _spa_lower(m: np.ndarray, pfa: float, a: float):
 
 
 # ----------------------------------------------------------------------- thresholds
-def _thresholds(m: np.ndarray, pfa: float, a: float, method: str):
+def _thresholds(m: np.ndarray, pfa: float, a: float,
+                method: str) -> tuple[np.ndarray, np.ndarray]:
     """Thresholds for checked float64 arrays m (>= 2)."""
     mu2, mu3, mu4 = _central_moments(m, a)
     if method == "pearson3":
@@ -451,12 +463,14 @@ def _thresholds(m: np.ndarray, pfa: float, a: float, method: str):
 
 
 @lru_cache(maxsize=256)
-def _thresholds_scalar(m: float, pfa: float, a: float, method: str):
+def _thresholds_scalar(m: float, pfa: float, a: float, method: str) -> tuple[float, float]:
     lo, hi = _thresholds(np.array([m]), pfa, a, method)
     return float(lo[0]), float(hi[0])
 
 
-def sk_thresholds(m, pfa: float, n: int = 1, d: float = 1.0, method: str = "spa-pearson"):
+def sk_thresholds(m: npt.ArrayLike, pfa: float, n: int = 1, d: float = 1.0,
+                  method: str = "spa-pearson"
+                  ) -> tuple[float, float] | tuple[np.ndarray, np.ndarray]:
     """Lower and upper SK thresholds for a one-sided false-alarm probability on each side.
 
     Parameters
@@ -500,7 +514,7 @@ def sk_thresholds(m, pfa: float, n: int = 1, d: float = 1.0, method: str = "spa-
     return lo[inverse].reshape(m.shape), hi[inverse].reshape(m.shape)
 
 
-def sk_flags(s1, s2, m, pfa: float, n: int = 1, d: float = 1.0,
+def sk_flags(s1: npt.ArrayLike, s2: npt.ArrayLike, m: npt.ArrayLike, pfa: float, n: int = 1, d: float = 1.0,
              method: str = "spa-pearson") -> np.ndarray:
     """Channels whose SK lies outside the thresholds for false-alarm probability ``pfa``.
 
