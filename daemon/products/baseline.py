@@ -46,9 +46,11 @@ single-dish spectra over line-free channels; common practice).
 from __future__ import annotations
 
 import operator
+from collections.abc import Iterable, Sequence
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 from numpy.polynomial import Polynomial
 
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
@@ -96,7 +98,7 @@ class BaselineFit:
     iterations: int
     converged: bool
 
-    def model(self, x) -> np.ndarray:
+    def model(self, x: npt.ArrayLike) -> np.ndarray:
         """Baseline B(x) in K at abscissa values ``x`` (any shape, same unit as the fit's x).
 
         B(x) = sum_k c_k u^k with u = (2 x - (x_lo + x_hi)) / (x_hi - x_lo).
@@ -104,7 +106,7 @@ class BaselineFit:
         poly = Polynomial(self.coef, domain=self.domain, window=_SCALED_WINDOW)
         return poly(np.asarray(x, dtype=np.float64))
 
-    def subtract(self, data) -> np.ndarray:
+    def subtract(self, data: npt.ArrayLike) -> np.ndarray:
         """Return a new array ``data - B(x)`` over the fitted axis; ``data`` is not modified.
 
         Parameters
@@ -124,7 +126,8 @@ class BaselineFit:
         return d - self.model(self.x)
 
 
-def fit_baseline(data_k, flagged, x, order: int, windows=None, clip_sigma: float = 3.0,
+def fit_baseline(data_k: npt.ArrayLike, flagged: npt.ArrayLike, x: npt.ArrayLike, order: int,
+                 windows: Iterable[Sequence[float]] | None = None, clip_sigma: float = 3.0,
                  dilate: int = 3, max_iter: int = 10) -> BaselineFit:
     """Fit a polynomial baseline to the line-free channels of a spectrum.
 
@@ -216,7 +219,7 @@ def fit_baseline(data_k, flagged, x, order: int, windows=None, clip_sigma: float
 
 
 # -- helpers ------------------------------------------------------------------------------------
-def _check_order(order) -> int:
+def _check_order(order: int) -> int:
     if isinstance(order, bool):
         raise ValueError(f"order must be an integer 0..{MAX_ORDER}; got {order!r}")
     try:
@@ -228,7 +231,7 @@ def _check_order(order) -> int:
     return p
 
 
-def _check_int(value, name: str, lowest: int) -> int:
+def _check_int(value: int, name: str, lowest: int) -> int:
     try:
         v = operator.index(value)
     except TypeError:
@@ -245,7 +248,8 @@ def _check_count(keep: np.ndarray, need: int, order: int, where: str) -> None:
                          f"need at least {need} = 2 (order + 1)")
 
 
-def _window_mask(xs: np.ndarray, windows, x_lo: float, x_hi: float) -> np.ndarray:
+def _window_mask(xs: np.ndarray, windows: Iterable[Sequence[float]], x_lo: float,
+                 x_hi: float) -> np.ndarray:
     """Channels inside any window (lo <= x <= hi); each window checked against the axis."""
     pairs = list(windows)
     if not pairs:
@@ -274,12 +278,14 @@ def _dilate(mask: np.ndarray, d: int) -> np.ndarray:
     return grown > 0
 
 
-def _fit(xs, data, keep, order, domain) -> Polynomial:
+def _fit(xs: np.ndarray, data: np.ndarray, keep: np.ndarray, order: int,
+         domain: tuple[float, float]) -> Polynomial:
     # least squares for c_k in u = scaled x (module notes)
     return Polynomial.fit(xs[keep], data[keep], deg=order, domain=domain, window=_SCALED_WINDOW)
 
 
-def _result(poly, domain, order, keep, xs, data, iterations, converged) -> BaselineFit:
+def _result(poly: Polynomial, domain: tuple[float, float], order: int, keep: np.ndarray,
+            xs: np.ndarray, data: np.ndarray, iterations: int, converged: bool) -> BaselineFit:
     resid_k = data[keep] - poly(xs[keep])
     rms_k = float(np.sqrt(np.mean(resid_k ** 2)))           # rms over the line-free channels
     coef = np.zeros(order + 1)

@@ -16,9 +16,11 @@ main-beam brightness temperature).
 from __future__ import annotations
 
 import math
+from collections.abc import Sequence
 from typing import NamedTuple
 
 import numpy as np
+import numpy.typing as npt
 
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
 
@@ -52,7 +54,9 @@ class LineIntegral(NamedTuple):
     span_km_s: float
 
 
-def integrated_intensity_k_km_s(tb_k, v_km_s, good=None, v_range_km_s=None) -> LineIntegral:
+def integrated_intensity_k_km_s(tb_k: npt.ArrayLike, v_km_s: npt.ArrayLike,
+                                good: npt.ArrayLike | None = None,
+                                v_range_km_s: Sequence[float] | None = None) -> LineIntegral:
     """Integrated intensity W = integral T_B dv of a channelised spectrum, K km/s.
 
     Parameters
@@ -134,7 +138,7 @@ def integrated_intensity_k_km_s(tb_k, v_km_s, good=None, v_range_km_s=None) -> L
     return LineIntegral(integral, covered_km_s, span_km_s)
 
 
-def column_density_cm2(integral_k_km_s):
+def column_density_cm2(integral_k_km_s: npt.ArrayLike) -> float | np.ndarray:
     """HI column density from the line integral, optically thin, cm^-2.
 
     Parameters
@@ -159,7 +163,8 @@ def column_density_cm2(integral_k_km_s):
     return float(n_cm2) if n_cm2.ndim == 0 else n_cm2
 
 
-def brightness_from_antenna_k(ta_k, main_beam_efficiency: float):
+def brightness_from_antenna_k(ta_k: npt.ArrayLike,
+                              main_beam_efficiency: float) -> float | np.ndarray:
     """Main-beam brightness temperature T_mb = T_A / eta_mb, K.
 
     Parameters

@@ -40,7 +40,8 @@ EXTNAME = "SCAN AVERAGE"
 _LONGEST_GAP = 8          # channels: longer flagged runs inside the line are not filled
 
 
-def expected_emission(v_km_s: np.ndarray, glon_deg, glat_deg, ghost_shift_km_s: float = 0.0):
+def expected_emission(v_km_s: np.ndarray, glon_deg: np.ndarray, glat_deg: np.ndarray,
+                      ghost_shift_km_s: float = 0.0) -> tuple[np.ndarray, np.ndarray]:
     """(line, ghosts): bool masks of where HI (and, if shifted, its fold ghosts) can be."""
     line = np.zeros(v_km_s.size, dtype=bool)
     ghosts = np.zeros(v_km_s.size, dtype=bool)
@@ -54,8 +55,10 @@ def expected_emission(v_km_s: np.ndarray, glon_deg, glat_deg, ghost_shift_km_s: 
     return line, ghosts
 
 
-def analyse(data, flagged, crval1, cdelt1, crpix1, restfreq, vframe_m_s, glon_deg, glat_deg,
-            baseline_cfg: dict, ghost_shift_km_s: float = 0.0):
+def analyse(data: np.ndarray, flagged: np.ndarray, crval1: np.ndarray, cdelt1: np.ndarray,
+            crpix1: np.ndarray, restfreq: np.ndarray, vframe_m_s: np.ndarray,
+            glon_deg: np.ndarray, glat_deg: np.ndarray, baseline_cfg: dict,
+            ghost_shift_km_s: float = 0.0) -> dict:
     """Scan average, baseline and line figures of a scan's rows (arrays as in the FITS table).
 
     Returns
@@ -89,7 +92,8 @@ def analyse(data, flagged, crval1, cdelt1, crpix1, restfreq, vframe_m_s, glon_de
             "nhi_cm2": float(column_density_cm2(integral.integral_k_km_s))}
 
 
-def fill_short_gaps(y: np.ndarray, where: np.ndarray, longest: int = _LONGEST_GAP):
+def fill_short_gaps(y: np.ndarray, where: np.ndarray,
+                    longest: int = _LONGEST_GAP) -> tuple[np.ndarray, int]:
     """Linear interpolation across runs of at most ``longest`` NaN channels inside ``where``.
 
     A carrier flagged in every row leaves a gap of a few channels in the line; left out, it

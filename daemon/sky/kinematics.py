@@ -25,6 +25,7 @@ IAU 1985 Galactic constants, MNRAS 221, 1023 (1986).
 from __future__ import annotations
 
 import numpy as np
+import numpy.typing as npt
 
 #: IAU 1985 Galactic constants (MNRAS 221, 1023, 1986).
 R0_KPC = 8.5
@@ -35,8 +36,9 @@ _LAYER_KPC = 1.5          # half-thickness of the (flaring) HI layer followed of
 _MARGIN_KM_S = 40.0       # dispersion (about 8-10 km/s, several sigma) plus streaming motions
 
 
-def circular_velocity_lsr_km_s(glon_deg, glat_deg, distance_kpc, r0_kpc=R0_KPC,
-                               theta0_km_s=THETA0_KM_S):
+def circular_velocity_lsr_km_s(glon_deg: npt.ArrayLike, glat_deg: npt.ArrayLike,
+                               distance_kpc: npt.ArrayLike, r0_kpc: float = R0_KPC,
+                               theta0_km_s: float = THETA0_KM_S) -> np.ndarray:
     """LSR radial velocity of gas in flat circular rotation at ``distance_kpc`` toward (l, b).
 
     ``v = (Theta0 R0 / R - Theta0) sin l cos b`` with

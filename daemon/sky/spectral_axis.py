@@ -32,6 +32,7 @@ Greisen, E. W., Calabretta, M. R., Valdes, F. G. & Allen, S. L. 2006, A&A 446, 7
 from __future__ import annotations
 
 import numpy as np
+import numpy.typing as npt
 
 from spinflip.daemon.sky.hi_line import C_M_S, radio_velocity_m_s
 
@@ -59,8 +60,9 @@ def velocity_axis_lsrk_m_s(crval1: float, cdelt1: float, crpix1: float, restfreq
     return radio_velocity_m_s(f, restfreq) + vframe_m_s
 
 
-def scan_average_lsrk(data: np.ndarray, flagged: np.ndarray, crval1, cdelt1, crpix1, restfreq,
-                      vframe_m_s):
+def scan_average_lsrk(data: np.ndarray, flagged: np.ndarray, crval1: np.ndarray,
+                      cdelt1: np.ndarray, crpix1: np.ndarray, restfreq: np.ndarray,
+                      vframe_m_s: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     """Average the rows of a scan on the LSRK velocity grid of its first row.
 
     Parameters
@@ -102,7 +104,7 @@ def velocity_wcs_m_s(crval1: float, cdelt1: float, restfreq: float, vframe_m_s: 
     return (C_M_S * (restfreq - crval1) / restfreq + vframe_m_s, -C_M_S * cdelt1 / restfreq)
 
 
-def monotonic_axis(values, name: str, size: int | None = None) -> np.ndarray:
+def monotonic_axis(values: npt.ArrayLike, name: str, size: int | None = None) -> np.ndarray:
     """``values`` as a float64 copy, checked to be a 1-D, finite, strictly monotonic axis.
 
     Raises ValueError naming ``name`` (one line): not 1-D or not of length ``size``, fewer than
