@@ -43,9 +43,11 @@ memory).
 from __future__ import annotations
 
 import math
+from collections.abc import Iterable
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 from rich.cells import cell_len, set_cell_size
 from rich.text import Span, Text
 
@@ -105,7 +107,7 @@ class BrailleCanvas:
         self.dots[:] = False
         self.owners[:] = -1
 
-    def set(self, x_dot, y_dot, owner: int = 0) -> None:
+    def set(self, x_dot: npt.ArrayLike, y_dot: npt.ArrayLike, owner: int = 0) -> None:
         """Set the dot(s) at integer dot coordinates (scalars or equal-length arrays).
 
         Parameters
@@ -126,7 +128,8 @@ class BrailleCanvas:
         """Draw the Bresenham line from dot (x0, y0) to dot (x1, y1), both ends included."""
         self.segments(np.array([x0]), np.array([y0]), np.array([x1]), np.array([y1]), owner)
 
-    def segments(self, x0, y0, x1, y1, owner: int = 0) -> None:
+    def segments(self, x0: npt.ArrayLike, y0: npt.ArrayLike, x1: npt.ArrayLike,
+                 y1: npt.ArrayLike, owner: int = 0) -> None:
         """Draw many line segments at once, from (x0[i], y0[i]) to (x1[i], y1[i]).
 
         Parameters
@@ -189,7 +192,7 @@ class BrailleCanvas:
         ys = ay[seg] + np.sign(ddy)[seg] * np.where(xm, m, k)
         self.set(xs, ys, owner)
 
-    def polyline(self, x_dot, y_dot, owner: int = 0) -> None:
+    def polyline(self, x_dot: npt.ArrayLike, y_dot: npt.ArrayLike, owner: int = 0) -> None:
         """Join consecutive finite points with lines; a non-finite coordinate leaves a gap.
 
         Parameters
@@ -225,7 +228,7 @@ class BrailleCanvas:
         return _decode_rows(self.codes(ascii))
 
 
-def segment_pairs(x, y) -> tuple[np.ndarray, np.ndarray]:
+def segment_pairs(x: npt.ArrayLike, y: npt.ArrayLike) -> tuple[np.ndarray, np.ndarray]:
     """Index pairs (i, j) of the segments joining consecutive finite points.
 
     Parameters
@@ -310,7 +313,7 @@ def nice_ticks(lo: float, hi: float, n: int) -> list[float]:
     return [_decimal(k * mantissa, exponent) + 0.0 for k in range(k_lo, k_hi + 1)]
 
 
-def tick_labels(ticks, step: float | None = None) -> list[str]:
+def tick_labels(ticks: Iterable[float], step: float | None = None) -> list[str]:
     """Short labels for tick values: as few decimals as show every tick exactly.
 
     Parameters
@@ -379,7 +382,7 @@ class Series:
     flagged_style: str = FLAGGED_STYLE
 
 
-def _checked_range(name: str, value) -> tuple[float, float]:
+def _checked_range(name: str, value: Iterable[float]) -> tuple[float, float]:
     try:
         lo, hi = (float(v) for v in value)
     except (TypeError, ValueError):
@@ -416,11 +419,13 @@ def _ticks_inside(lo: float, hi: float, n: int) -> tuple[list[float], list[str]]
     return inside, tick_labels(inside, step)
 
 
-def _one_line(label) -> str:
+def _one_line(label: object) -> str:
     return str(label).replace("\r", " ").replace("\n", " ")
 
 
-def plot(series, width: int, height: int, x_range=None, y_range=None, x_label: str = "",
+def plot(series: Iterable[Series], width: int, height: int,
+         x_range: Iterable[float] | None = None, y_range: Iterable[float] | None = None,
+         x_label: str = "",
          y_label: str = "", x_ticks: int = 4, y_ticks: int = 3, ascii: bool = False) -> Text:
     """Draw curves on one canvas with axes: exactly ``height`` lines of ``width`` cells.
 
@@ -515,9 +520,9 @@ def plot(series, width: int, height: int, x_range=None, y_range=None, x_label: s
     rule, tick_mark = ("|", "+") if ascii else ("\u2502", "\u2524")
     gutter_text = [" " * label_cells] * rows_n
     gutter_mark = [rule] * rows_n
-    for value, text in zip(y_tick_values, y_tick_text):
-        y_dot = (y_hi - value) / (y_hi - y_lo) * (canvas.height_dots - 1)
-        row = min(max(int(math.floor(y_dot + 0.5)) // 4, 0), rows_n - 1)
+    for tick, text in zip(y_tick_values, y_tick_text):
+        tick_dot = (y_hi - tick) / (y_hi - y_lo) * (canvas.height_dots - 1)
+        row = min(max(int(math.floor(tick_dot + 0.5)) // 4, 0), rows_n - 1)
         if gutter_mark[row] == tick_mark:
             continue
         gutter_mark[row] = tick_mark
@@ -532,9 +537,9 @@ def plot(series, width: int, height: int, x_range=None, y_range=None, x_label: s
     bottom = [" "] * plot_cells
     free_from = 0
     x_tick_values, x_tick_text = _ticks_inside(x_lo, x_hi, x_ticks)
-    for value, text in zip(x_tick_values, x_tick_text):
-        x_dot = (value - x_lo) / (x_hi - x_lo) * (canvas.width_dots - 1)
-        column = int(math.floor(x_dot + 0.5)) // 2
+    for tick, text in zip(x_tick_values, x_tick_text):
+        tick_dot = (tick - x_lo) / (x_hi - x_lo) * (canvas.width_dots - 1)
+        column = int(math.floor(tick_dot + 0.5)) // 2
         size = len(text)
         start = min(max(column - size // 2, 0), plot_cells - size)
         if start < free_from or start + size > limit:

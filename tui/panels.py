@@ -40,6 +40,7 @@ from __future__ import annotations
 
 import datetime as _dt
 import math
+from collections.abc import Iterable
 
 import numpy as np
 from rich.text import Text
@@ -178,7 +179,7 @@ def _hms(time_utc: str) -> str:
         return str(time_utc)[:8]
 
 
-def _num(value, fmt: str, unit: str) -> str:
+def _num(value: float | None, fmt: str, unit: str) -> str:
     """A number with its unit, or "— unit" when it is not known."""
     if value is None or (isinstance(value, float) and not math.isfinite(value)):
         return f"—{unit}" if unit == "°" else f"— {unit}".rstrip()
@@ -237,13 +238,14 @@ def top_bar(state: ViewState, width: int) -> Text:
         left.append(str(scan))
         if state.progress and state.progress.get("scan"):
             left.append(f" #{state.progress.get('integration', 0)}")
-    if not state.has_data():
+    age = state.age_s()
+    if not state.has_data() or age is None:     # the same test: age is None before a message
         right = Text("WAITING", style=S_WAIT)
     elif state.is_stale():
-        right = Text(f"STALE {format_age(state.age_s())}", style=S_STALE)
+        right = Text(f"STALE {format_age(age)}", style=S_STALE)
     else:
         right = Text("live ", style=S_LABEL)
-        right.append(format_age(state.age_s()), style=S_VALUE)
+        right.append(format_age(age), style=S_VALUE)
     gap = width - right.cell_len - 1
     line = _fit(left, max(0, gap))
     line.append(" ")
@@ -280,6 +282,7 @@ def link_panel(state: ViewState, width: int) -> Text:
         t.append(endpoint, style="bold")
         return _block([t], width, 1)
     age = state.age_s()
+    assert age is not None          # has_data(): a message has arrived
     if state.is_stale():
         msg = f" STALE: no data for {age:.0f} s: daemon gone? reconnecting "
         full = msg + f"to {endpoint} "
@@ -502,7 +505,7 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
 # ----------------------------------------------------------------------------------------------
 # Tsys
 # ----------------------------------------------------------------------------------------------
-def sparkline(values, width: int, height: int = 1, lo: float | None = None,
+def sparkline(values: Iterable[float], width: int, height: int = 1, lo: float | None = None,
               hi: float | None = None) -> list[Text]:
     """The last ``width`` values as columns of eighth-blocks, ``height`` rows tall.
 
@@ -662,8 +665,8 @@ def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
 # ----------------------------------------------------------------------------------------------
 # interference
 # ----------------------------------------------------------------------------------------------
-def waterfall_rows(rows, width: int, height: int, ascii: bool = False,
-                   keep: np.ndarray | None = None) -> list[Text]:
+def waterfall_rows(rows: Iterable[tuple[np.ndarray, np.ndarray]], width: int, height: int,
+                   ascii: bool = False, keep: np.ndarray | None = None) -> list[Text]:
     """Recent integrations, newest on top: one line per integration, one cell per channel group.
 
     Parameters
@@ -709,9 +712,9 @@ def waterfall_rows(rows, width: int, height: int, ascii: bool = False,
     lo, hi = (np.percentile(allv, [2, 98]) if allv.size else (0.0, 1.0))
     styles = ("blue", "cyan", "green", "yellow", "bold white")
     out = []
-    for means, marks in zip(cells, flags):
+    for row_means, row_marks in zip(cells, flags):
         t = Text()
-        for m, f in zip(means, marks):
+        for m, f in zip(row_means, row_marks):
             if f or not math.isfinite(m):
                 t.append(FLAG_MARK, style=S_FLAGGED)
                 continue

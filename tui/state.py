@@ -190,7 +190,7 @@ class ViewState:
         integration, from the status; None for each the daemon did not send."""
         rfi = (self.status or {}).get("rfi") or {}
 
-        def frac(key):
+        def frac(key: str) -> float | None:
             v = rfi.get(key)
             return float(v) if isinstance(v, (int, float)) and math.isfinite(v) else None
         return frac("flagged_rfi_fraction"), frac("uncovered_fraction")
