@@ -77,7 +77,7 @@ class KeysError(ValueError):
 # key files
 
 
-def create_keypair(folder, name: str) -> tuple[Path, Path]:
+def create_keypair(folder: str | os.PathLike[str], name: str) -> tuple[Path, Path]:
     """Write a new CURVE key pair ``folder/name.key`` and ``folder/name.key_secret``.
 
     Parameters
@@ -335,7 +335,7 @@ class ClientSecurity:
         return f"ClientSecurity(folder={str(self.folder)!r})"
 
     @classmethod
-    def from_dir(cls, keys_dir) -> ClientSecurity:
+    def from_dir(cls, keys_dir: str | os.PathLike[str]) -> ClientSecurity:
         """Load ``client.key_secret`` and the daemon's ``server.key`` from ``keys_dir``.
 
         Raises
@@ -407,7 +407,7 @@ def _is_local(endpoint: str, key: str) -> bool:
     return ip.is_loopback
 
 
-def check_bind(endpoint: str, security, allow_insecure: bool, *,
+def check_bind(endpoint: str, security: ServerSecurity | None, allow_insecure: bool, *,
                key: str = "publish.data") -> str | None:
     """Decide whether the daemon may bind ``endpoint`` with or without keys.
 
@@ -491,7 +491,7 @@ def _client_keys(folder: Path, name: str) -> list[str]:
     ]
 
 
-def keys_main(folder, role: str | None = None) -> int:
+def keys_main(folder: str | os.PathLike[str], role: str | None = None) -> int:
     """``spinflip keys DIR [--client NAME]``: make the daemon's or a client's key pair.
 
     Parameters

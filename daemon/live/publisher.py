@@ -38,10 +38,15 @@ import logging
 import math
 import threading
 import time
+from collections.abc import Callable
+from typing import TYPE_CHECKING
 
 import zmq
 
 from spinflip.daemon.live import schema
+
+if TYPE_CHECKING:
+    from spinflip.daemon.live.keys import ServerSecurity
 
 log = logging.getLogger("spinflip.publisher")
 
@@ -70,7 +75,7 @@ MAX_IGNORED_SUBSCRIPTIONS = 64
 REPLAY_MIN_INTERVAL_S = 0.1
 
 
-def _as_replay(frames):
+def _as_replay(frames: list[bytes]) -> list[bytes]:
     """The frames of a message marked ``"replay": true`` (header re-written, payload shared)."""
     header = json.loads(bytes(frames[1]))
     header["replay"] = True
@@ -94,7 +99,9 @@ class Publisher:
         Wraps the sending thread's body (the daemon's supervisor); None: run it bare.
     """
 
-    def __init__(self, endpoint: str, security=None, context=None, guard=None):
+    def __init__(self, endpoint: str, security: ServerSecurity | None = None,
+                 context: zmq.Context | None = None,
+                 guard: Callable[[str, Callable[[], None]], Callable[[], None]] | None = None):
         self.endpoint = endpoint
         self.guard = guard
         self.security = security
@@ -102,7 +109,8 @@ class Publisher:
         self.drops = {t: 0 for t in schema.TOPICS}
         self.sent = {t: 0 for t in schema.TOPICS}
         self._seq = {t: 0 for t in schema.TOPICS}
-        self._queues = {t: collections.deque() for t in schema.TOPICS}
+        self._queues: dict[str, collections.deque[list[bytes]]] = {
+            t: collections.deque() for t in schema.TOPICS}
         self._latest: dict = {}
         self._replay: dict = {}
         self.refused_subscriptions = 0
@@ -114,9 +122,9 @@ class Publisher:
         self._lock = threading.Lock()
         self._wake = threading.Event()
         self._stop = threading.Event()
-        self._thread = None
-        self.socket = None
-        self.bound = None
+        self._thread: threading.Thread | None = None
+        self.socket: zmq.Socket | None = None
+        self.bound: str | None = None
 
     def _open(self, endpoint: str) -> zmq.Socket:
         sock = self.context.socket(zmq.XPUB)
@@ -162,7 +170,7 @@ class Publisher:
             q.append(frames)
         self._wake.set()
 
-    def _send(self, topic: str, frames) -> None:
+    def _send(self, topic: str, frames: list[bytes]) -> None:
         if self.socket is None:
             self.drops[topic] += 1
             return
@@ -177,6 +185,7 @@ class Publisher:
             try:
                 if self.socket is None:         # a reopen failed: try again, keep dropping
                     self._stop.wait(_POLL_MS / 1000)
+                    assert self.bound is not None   # start() set it before the thread ran
                     self.socket = self._open(self.bound)
                 if self.socket.poll(_POLL_MS, zmq.POLLIN):
                     self._read_subscriptions()
@@ -202,6 +211,7 @@ class Publisher:
     def _read_subscriptions(self) -> None:
         """Pass the (un)subscriptions that name a topic prefix to the socket (XPUB_MANUAL) and
         bring each new subscriber up to date; ignore and count any other."""
+        assert self.socket is not None      # called by _run with the socket open
         for _ in range(_SUBSCRIPTION_BURST):
             try:
                 msg = self.socket.recv(zmq.NOBLOCK)
@@ -247,6 +257,7 @@ class Publisher:
         """Close the socket and bind it again at the same endpoint (module docstring)."""
         log.warning("data socket: %d subscriptions to no topic; closing and binding %s again "
                     "(subscribers reconnect)", self._ignored_since_open, self.bound)
+        assert self.socket is not None and self.bound is not None   # open since start()
         self.socket.close(0)
         self.socket = None
         self._ignored_since_open = 0
