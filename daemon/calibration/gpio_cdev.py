@@ -115,7 +115,7 @@ import fcntl
 import grp
 import os
 import stat
-from typing import Callable
+from collections.abc import Callable
 
 #: Maximum size of name and label arrays, bytes (gpio.h GPIO_MAX_NAME_SIZE).
 GPIO_MAX_NAME_SIZE = 32
@@ -444,9 +444,9 @@ class GpioOutputLine:
             except OSError:
                 pass
 
-    def __enter__(self) -> "GpioOutputLine":
+    def __enter__(self) -> GpioOutputLine:
         self.open()
         return self
 
-    def __exit__(self, *exc_info) -> None:
+    def __exit__(self, *exc_info: object) -> None:
         self.close()

@@ -14,6 +14,12 @@ A failing switch is therefore always seen and never gives a silent wrong T_sys.
 
 from __future__ import annotations
 
+from collections.abc import Callable
+from typing import TYPE_CHECKING
+
+if TYPE_CHECKING:
+    from spinflip.daemon.calibration.noise_switch import NoiseSwitch
+
 
 class CalControl:
     """Follows the wanted noise-source state, drives ``switch``, reports failures.
@@ -25,7 +31,8 @@ class CalControl:
     event : callable(severity, text) for errors the observer must see
     """
 
-    def __init__(self, switch=None, event=None):
+    def __init__(self, switch: NoiseSwitch | None = None,
+                 event: Callable[[str, str], None] | None = None):
         self.switch = switch
         self.event = event or (lambda severity, text: None)
         self.state: bool | None = False

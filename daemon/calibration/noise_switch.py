@@ -39,6 +39,7 @@ import os
 import signal
 import subprocess
 import threading
+from typing import Any
 
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.calibration.gpio_cdev import GpioError, GpioOutputLine, IoctlFunc, OpenFunc
@@ -50,7 +51,7 @@ SWITCH_KINDS = ("none", "command", "gpio")
 #: Longest allowed ``calibration.switch_timeout_s``, s.
 MAX_SWITCH_TIMEOUT_S = 60.0
 #: Values used for keys missing from the ``[calibration]`` section.
-DEFAULTS = {
+DEFAULTS: dict[str, Any] = {
     "switch": "none",
     "switch_on_cmd": "",
     "switch_off_cmd": "",
@@ -121,11 +122,11 @@ class NoiseSwitch:
     def _error(self, what: str) -> NoiseSwitchError:
         return NoiseSwitchError(f"noise switch {self.describe()}: {what}")
 
-    def __enter__(self) -> "NoiseSwitch":
+    def __enter__(self) -> NoiseSwitch:
         self.open()
         return self
 
-    def __exit__(self, *exc_info) -> None:
+    def __exit__(self, *exc_info: object) -> None:
         self.close()
 
 

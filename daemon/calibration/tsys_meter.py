@@ -41,6 +41,7 @@ noise source; the chopper and noise-injection methods).
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -104,7 +105,8 @@ def usable_channels(nchan: int) -> np.ndarray:
 
 
 def tsys_from_on_off(p_on: np.ndarray, p_off: np.ndarray, tcal_k: float,
-                     usable: np.ndarray | None = None):
+                     usable: np.ndarray | None = None
+                     ) -> tuple[float, np.ndarray, np.ndarray, float]:
     """System temperature from noise-source on/off mean power spectra of one phase.
 
     Parameters
@@ -185,7 +187,8 @@ class TsysMeter:
     refused, with ``ok = False`` and a message).
     """
 
-    def __init__(self, blocks_per_cycle: int, nchan: int, tcal_k: float, emission=None):
+    def __init__(self, blocks_per_cycle: int, nchan: int, tcal_k: float,
+                 emission: Callable[[str, float], np.ndarray] | None = None):
         self.emission = emission   # callable(phase, t_unix_s) -> bool[nchan] where HI may be
         self.bpc = blocks_per_cycle
         self.nchan = nchan
@@ -223,6 +226,7 @@ class TsysMeter:
 
     def _close(self) -> TsysMeasurement | None:
         c, self._cycle = self._cycle, None
+        assert c is not None                    # add() closes only an open cycle
         if c.cal is None:                       # the switch failed: drop the firing
             fault = bool(self._on) or not self._fault
             self._fault = True

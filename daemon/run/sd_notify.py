@@ -167,7 +167,7 @@ class Notifier:
 
     @classmethod
     def from_env(cls, environ: Mapping[str, str] = os.environ,
-                 log: LogFunc | None = None) -> "Notifier":
+                 log: LogFunc | None = None) -> Notifier:
         """The notifier that the process environment describes.
 
         Parameters
@@ -471,7 +471,7 @@ class WatchdogPinger:
             if self._stop.wait(self.interval_s):
                 break
 
-    def __enter__(self) -> "WatchdogPinger":
+    def __enter__(self) -> WatchdogPinger:
         self.start()
         return self
 
