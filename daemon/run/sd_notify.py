@@ -123,7 +123,7 @@ def _positive_int(text: str | None) -> int | None:
     return value if value > 0 else None
 
 
-def _field_value(value) -> str:
+def _field_value(value: object) -> str:
     """A value for one ``KEY=VALUE`` line: booleans as 1/0, line breaks made spaces."""
     if isinstance(value, bool):
         return "1" if value else "0"
@@ -228,7 +228,7 @@ class Notifier:
             return None
         return self.watchdog_usec / 2 / _USEC_PER_S
 
-    def send(self, **fields) -> bool:
+    def send(self, **fields: object) -> bool:
         """Send ``KEY=VALUE`` assignments to the service manager in one datagram.
 
         Parameters
@@ -251,6 +251,7 @@ class Notifier:
         """
         if not self.enabled or not fields:
             return False
+        assert self.address is not None         # enabled
         bad = [k for k in fields if not _KEY_RE.match(k)]
         if bad:
             self._log(f"service notification not sent: key {bad[0]!r} is not an upper-case "
@@ -475,5 +476,5 @@ class WatchdogPinger:
         self.start()
         return self
 
-    def __exit__(self, *exc_info) -> None:
+    def __exit__(self, *exc_info: object) -> None:
         self.stop()

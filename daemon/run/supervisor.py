@@ -84,7 +84,7 @@ class Supervisor:
         self.fatal: Failure | None = None
         self._lock = threading.Lock()
         self._recent: dict[str, collections.deque] = collections.defaultdict(collections.deque)
-        self._previous_hook = None
+        self._previous_hook: Callable[[threading.ExceptHookArgs], object] | None = None
 
     # -- guarding ------------------------------------------------------------------------------
     def guard(self, worker: str, body: Callable[[], None], restart: bool = True
