@@ -62,7 +62,7 @@ import scipy.signal
 
 from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.rfi.carriers import CarrierFinder
-from spinflip.daemon.dsp.channelizer import make_channelizer
+from spinflip.daemon.dsp.channelizer import Channelizer, make_channelizer
 from spinflip.daemon.dsp.samples import complex_to_u8, u8_to_complex
 from spinflip.daemon.dsp.spectrometer import FlagSettings, Spectrometer
 
@@ -85,12 +85,12 @@ def _noise_u8(n: int, seed: int) -> np.ndarray:
     return complex_to_u8(x)
 
 
-def _blocks(raw: np.ndarray):
+def _blocks(raw: np.ndarray) -> list[np.ndarray]:
     step = 2 * BLOCK_SAMPLES
     return [raw[i:i + step] for i in range(0, raw.size, step)]
 
 
-def _run_ours(blocks, ch) -> int:
+def _run_ours(blocks: list[np.ndarray], ch: Channelizer) -> int:
     """The daemon's per-block DSP: convert, channelize, sums of P and P^2."""
     ch.reset()
     nchan = ch.nchan
@@ -103,7 +103,8 @@ def _run_ours(blocks, ch) -> int:
     return m
 
 
-def _run_spectrometer(blocks, nchan: int, taps: int, flagging, sample_rate: float) -> int:
+def _run_spectrometer(blocks: list[np.ndarray], nchan: int, taps: int,
+                      flagging: FlagSettings | None, sample_rate: float) -> int:
     """The daemon's spectrometer over the blocks, with or without flagging (and carriers)."""
     sp = Spectrometer(nchan, "pfb", taps, flagging)
     finder = CarrierFinder(nchan) if flagging is not None else None
@@ -116,7 +117,7 @@ def _run_spectrometer(blocks, nchan: int, taps: int, flagging, sample_rate: floa
     return sp.take().sums["sig"].spectra
 
 
-def _run_welch(blocks, nchan: int) -> int:
+def _run_welch(blocks: list[np.ndarray], nchan: int) -> int:
     """Baseline: convert, scipy.signal.welch per block, sum of the mean spectra."""
     acc = np.zeros(nchan)
     for b in blocks:

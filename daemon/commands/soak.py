@@ -33,6 +33,7 @@ import sys
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 from spinflip.daemon.live.ports import free_loopback_port
@@ -79,13 +80,13 @@ class _Subscriber(threading.Thread):
         self.counts: dict = {}
         self.missed = 0
         self.last_status: dict | None = None
-        self.integrations = set()
+        self.integrations: set[tuple] = set()
         self._seq: dict = {}
 
     def run(self) -> None:
         import zmq
         from spinflip.daemon.live import schema
-        sub = zmq.Context.instance().socket(zmq.SUB)
+        sub: zmq.Socket = zmq.Context.instance().socket(zmq.SUB)
         sub.setsockopt(zmq.MAXMSGSIZE, schema.MAX_FRAME_BYTES)
         sub.setsockopt(zmq.SUBSCRIBE, b"")
         sub.setsockopt(zmq.RCVTIMEO, 200)
@@ -115,7 +116,8 @@ class _Subscriber(threading.Thread):
             sub.close(linger=0)
 
 
-def run_soak(seconds: float = 600.0, integration_s: float = 5.0, log=None) -> dict:
+def run_soak(seconds: float = 600.0, integration_s: float = 5.0,
+             log: Callable[[str], None] | None = None) -> dict:
     """Run the daemon for ``seconds`` and measure it; see the module docstring."""
     log = log or (lambda msg: print(msg, file=sys.stderr, flush=True))
     ports = {"data": free_loopback_port(), "control": free_loopback_port()}

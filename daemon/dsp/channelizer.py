@@ -150,7 +150,7 @@ class Channelizer:
         return max(0, (int(nsamples) - self.history_samples) // self.nchan)
 
     # --------------------------------------------------------------- frames
-    def _prepare(self, x: np.ndarray):
+    def _prepare(self, x: np.ndarray) -> tuple[np.ndarray, int]:
         """Samples to work on and the number m of spectra they give (stateless: x itself)."""
         x = np.asarray(x, dtype=np.complex64).reshape(-1)
         return x, self.n_spectra(x.size)
@@ -194,7 +194,8 @@ class Channelizer:
                 out[j:k] = self._chunk_power(rows, j, k)
         return np.fft.fftshift(out, axes=1)
 
-    def sums(self, x: np.ndarray, exclude: np.ndarray | None = None):
+    def sums(self, x: np.ndarray, exclude: np.ndarray | None = None
+             ) -> tuple[np.ndarray, np.ndarray, int]:
         """Sums of power and of power squared over the spectra of ``x``, never all held at once.
 
         Equivalent to ``power_sums(self.power(x))`` with less memory traffic: each run of
@@ -312,7 +313,7 @@ class StreamingChannelizer(Channelizer):
         """Samples held for the next call."""
         return int(self._history.size)
 
-    def _prepare(self, x: np.ndarray):
+    def _prepare(self, x: np.ndarray) -> tuple[np.ndarray, int]:
         x = np.asarray(x, dtype=np.complex64).reshape(-1)
         if self._history.size:
             x = np.concatenate([self._history, x])
@@ -367,7 +368,7 @@ def make_channelizer(method: str, nchan: int, taps: int = 4, window: str = "hann
     raise ValueError(f"unknown channelizer method {method!r}: expected 'pfb' or 'fft'")
 
 
-def power_sums(power: np.ndarray):
+def power_sums(power: np.ndarray) -> tuple[np.ndarray, np.ndarray, int]:
     """Sums over spectra of power and power squared, for averages and spectral kurtosis.
 
     Parameters

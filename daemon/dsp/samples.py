@@ -30,7 +30,7 @@ def u8_to_complex(raw: np.ndarray) -> np.ndarray:
     return IQ_LUT[raw.view("<u2")]
 
 
-def complex_to_u8(x: np.ndarray, rng=None) -> np.ndarray:
+def complex_to_u8(x: np.ndarray, rng: np.random.Generator | None = None) -> np.ndarray:
     """Quantise complex samples (full scale +-1) to interleaved uint8, clipping at the rails.
 
     Rounding to the nearest code after mapping x -> 127.5 + 127.5 x, as the dongle's ADC does;

@@ -27,6 +27,8 @@ Common practice in radio astronomy for time-domain blanking of impulsive interfe
 
 from __future__ import annotations
 
+from collections.abc import Hashable
+
 import numpy as np
 
 _MAD_TO_SIGMA = 1.4826
@@ -71,7 +73,8 @@ class ImpulseBlanker:
         """A retune or noise-source change: the channelizer's history, and our carry, go."""
         self._tail_hits = []
 
-    def mask(self, x: np.ndarray, history: int, n_spectra: int, state=None):
+    def mask(self, x: np.ndarray, history: int, n_spectra: int,
+             state: Hashable | None = None) -> tuple[np.ndarray, int]:
         """Spectra to blank among the ``n_spectra`` the channelizer makes of history + ``x``.
 
         Parameters
