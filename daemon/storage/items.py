@@ -39,11 +39,11 @@ class TsysRecord:
     on_off: float
     channels_used: float
     status: str                      # "ok" or why not (at most 60 characters)
-    tsys_chan_k: np.ndarray          # float[nchan]
+    tsys_chan_k: np.ndarray | None   # float[nchan], or None (the measurement failed)
 
     @property
     def nbytes(self) -> int:
-        return int(np.asarray(self.tsys_chan_k).nbytes)
+        return int(getattr(self.tsys_chan_k, "nbytes", 0))
 
 
 @dataclass(frozen=True)

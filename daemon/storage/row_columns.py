@@ -3,8 +3,6 @@
 
 from __future__ import annotations
 
-import numpy as np
-
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.storage.items import Note, RfiRecord, TsysRecord
 
@@ -51,7 +49,7 @@ def tsys_columns(rec: TsysRecord) -> dict:
     return {"DATE-OBS": rec.date_obs, "TSYS": rec.tsys_k, "TSYSSIG": rec.tsys_sig_k,
             "TSYSREF": rec.tsys_ref_k, "TCAL": rec.tcal_k, "ONOFF": rec.on_off,
             "NCHANUSE": rec.channels_used, "STATUS": rec.status,
-            "TSYSCHAN": np.asarray(rec.tsys_chan_k)}
+            "TSYSCHAN": rec.tsys_chan_k}
 
 
 def rfi_columns(rec: RfiRecord) -> dict:
