@@ -11,7 +11,6 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
 from spinflip.daemon.sky.coordinates import SkyPosition
 from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
 

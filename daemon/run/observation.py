@@ -57,7 +57,6 @@ from pathlib import Path
 
 import numpy as np
 from astropy.time import Time
-
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.calibration.noise_switch import NoiseSwitchError, make_noise_switch
 from spinflip.daemon.calibration.tsys_meter import TsysMeter
@@ -73,7 +72,7 @@ from spinflip.daemon.products.scan_average import scan_products
 from spinflip.daemon.rfi.interference import Interference
 from spinflip.daemon.run import sd_notify
 from spinflip.daemon.run.live_status import LiveStatus
-from spinflip.daemon.run.reader import END, BlockReader, SourceLost
+from spinflip.daemon.run.reader import END, BlockReader, SourceBack, SourceLost
 from spinflip.daemon.run.rows import RowMaker, emission_mask, scan_header
 from spinflip.daemon.run.scan_control import ScanControl
 from spinflip.daemon.run.supervisor import Supervisor, WorkerFailed
@@ -219,11 +218,6 @@ class Daemon:
             self._warned.add(key)
             self.event(severity, text)
 
-    def tsys_for(self, t_end_s: float) -> tuple[float, float, bool]:
-        """(T_sys for the kelvin scale, its age in s, trustworthy) of a row ending at
-        ``t_end_s`` (:meth:`spinflip.daemon.calibration.tsys_plan.TsysTracker.tsys_for`)."""
-        return self.tsys.tsys_for(t_end_s)
-
     # -- what the control commands and the live status see --------------------------------------
     def submit(self, cmd: str, args: dict, timeout_s: float = 5.0) -> dict:
         """Run a control command in the main loop and wait for its result (or CommandError)."""
@@ -284,11 +278,7 @@ class Daemon:
         self.pending.clear()
 
     def _on_measurement(self, meas) -> None:
-        self.store.put(TsysRecord(
-            Time(meas.t_unix_s, format="unix", scale="utc").isot, meas.tsys_k,
-            meas.tsys_phase_k.get("sig", float("nan")), meas.tsys_phase_k.get("ref", float("nan")),
-            meas.tcal_k, meas.on_off, meas.channels_used, "ok" if meas.ok else meas.message[:60],
-            meas.tsys_chan_k))
+        self.store.put(TsysRecord.of(meas, Time(meas.t_unix_s, format="unix", scale="utc").isot))
         if meas.ok:
             self.tsys.newest = meas
             self._flush_pending()
@@ -404,7 +394,7 @@ class Daemon:
                 if counters["error"] is None and not self.stop_event.is_set():
                     self.end_integration("the source ended")   # replay
                 return
-            if not hasattr(block, "n_samples"):        # SourceLost / SourceBack
+            if isinstance(block, (SourceLost, SourceBack)):
                 self._source_fault(block)
                 continue
             counters["received"] += block.n_samples
@@ -454,7 +444,7 @@ class Daemon:
         result = self.result
         result.files, result.file_rows = self.store.files, self.store.file_rows
         result.lost_samples += self.counters["dropped"]
-        unsaved = self._unsaved_text()
+        unsaved = self.store.unsaved_text()
         if self.supervisor.fatal is not None:
             raise WorkerFailed(f"the {self.supervisor.fatal.worker} thread failed "
                                f"({self.supervisor.fatal.text})" + (f"; {unsaved}" if unsaved
@@ -464,20 +454,6 @@ class Daemon:
         if self.counters["error"] is not None:
             raise SourceError(str(self.counters["error"]))
         return result
-
-    def _unsaved_text(self) -> str:
-        """What the store could not save, by cause; '' when everything finished is saved."""
-        st = self.store
-        parts = []
-        if st.unsaved_rows:
-            parts.append(f"{st.unsaved_rows} still held when the disk kept refusing "
-                         f"({st.error or 'write error'})")
-        if st.dropped_rows:
-            parts.append(f"{st.dropped_rows} dropped at the memory bound output.hold_mb")
-        if st.failed_rows:
-            parts.append(f"{st.failed_rows} failed to write (see the log)")
-        n = st.unsaved_rows + st.dropped_rows + st.failed_rows
-        return f"{n} integration(s) could not be saved: " + ", ".join(parts) if n else ""
 
     # -- faults ----------------------------------------------------------------------------------
     def _source_fault(self, marker) -> None:

@@ -6,9 +6,8 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
-
 from spinflip.daemon.products.row import Row
-from spinflip.daemon.rfi.interference import RfiRecord   # made where it is decided
+from spinflip.daemon.rfi.interference import RfiRecord  # made where it is decided
 
 __all__ = ["CloseScan", "Item", "Note", "OpenScan", "RfiRecord", "Row", "TsysRecord",
            "item_bytes"]
@@ -41,6 +40,14 @@ class TsysRecord:
     status: str                      # "ok" or why not (at most 60 characters)
     tsys_chan_k: np.ndarray | None   # float[nchan], or None (the measurement failed)
 
+    @classmethod
+    def of(cls, meas, date_obs: str) -> TsysRecord:
+        """The record of a :class:`spinflip.daemon.calibration.tsys_meter.TsysMeasurement`."""
+        nan = float("nan")
+        return cls(date_obs, meas.tsys_k, meas.tsys_phase_k.get("sig", nan),
+                   meas.tsys_phase_k.get("ref", nan), meas.tcal_k, meas.on_off,
+                   meas.channels_used, "ok" if meas.ok else meas.message[:60], meas.tsys_chan_k)
+
     @property
     def nbytes(self) -> int:
         return int(getattr(self.tsys_chan_k, "nbytes", 0))
@@ -60,4 +67,4 @@ Item = Row | OpenScan | CloseScan | TsysRecord | RfiRecord | Note
 
 def item_bytes(item) -> int:
     """Memory an item holds (its arrays), bytes; records of scalars count as 0."""
-    return int(getattr(item, "nbytes", 0))
+    return item.nbytes if isinstance(item, (Row, TsysRecord)) else 0

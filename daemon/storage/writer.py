@@ -154,6 +154,19 @@ class ScanStore:
             return "failed"
         return "holding" if self.error is not None else "writing"
 
+    def unsaved_text(self) -> str:
+        """What could not be saved, by cause; '' when everything finished is saved."""
+        parts = []
+        if self.unsaved_rows:
+            parts.append(f"{self.unsaved_rows} still held when the disk kept refusing "
+                         f"({self.error or 'write error'})")
+        if self.dropped_rows:
+            parts.append(f"{self.dropped_rows} dropped at the memory bound output.hold_mb")
+        if self.failed_rows:
+            parts.append(f"{self.failed_rows} failed to write (see the log)")
+        n = self.unsaved_rows + self.dropped_rows + self.failed_rows
+        return f"{n} integration(s) could not be saved: " + ", ".join(parts) if n else ""
+
     @property
     def held_rows(self) -> int:
         return sum(1 for it in self.held if isinstance(it, Row))
