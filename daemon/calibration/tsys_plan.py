@@ -16,6 +16,7 @@ import time as _time
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 from spinflip.daemon.calibration import loads as loads_mod
 from spinflip.daemon.config import ConfigError
@@ -30,7 +31,7 @@ class TsysPlan:
     tcal_k: float = float("nan")       # noise_source: the source's excess temperature
     text: str = ""                     # TSYSSRC
     cards: dict = field(default_factory=dict)
-    record: object = None
+    record: Any = None                 # loads.LoadsRecord, when a record is cited
 
 
 def records_dir(cfg: dict) -> Path:

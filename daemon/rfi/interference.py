@@ -123,7 +123,7 @@ class Interference:
             sky = dict(zip(np.round(self.grid.sky_hz(lo, chans), 0), chans, strict=True))
             freqs = set(sky)
             z = None
-            if found is not None:                    # excess of those the shape search found
+            if found is not None and self.carriers is not None:   # excess of those it found
                 z = np.where(found, self.carriers.last_z.get(phase), np.nan)
             before = self._carrier_freqs.get(phase, set())
             for f in sorted(freqs - before):

@@ -7,7 +7,7 @@ from __future__ import annotations
 import shutil
 import threading
 import time as _time
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import zmq
@@ -28,8 +28,8 @@ class LiveStatus:
         self.loop = loop
         self.cfg = pub_cfg
         self.publisher: Publisher | None = None
-        self.control = None                 # ControlServer, once started
-        self.security = None                # ServerSecurity, when keys are configured
+        self.control: Any = None            # ControlServer, once started
+        self.security: Any = None           # ServerSecurity, when keys are configured
         self.insecure: str | None = None    # the warning of an endpoint left open
         self._stop = threading.Event()
         self._thread: threading.Thread | None = None
@@ -127,12 +127,11 @@ class LiveStatus:
             "tsys_source": loop.tsys_plan.text,
             "samples_received": int(loop.counters["received"]),
             "samples_lost": int(loop.counters["lost"] + loop.counters["dropped"]),
-            "queue_depth": loop.reader.depth() if loop.reader is not None else 0,
+            "queue_depth": loop.reader.depth(),
             "disk_free_bytes": int(free),
-            "writing": store.state if store is not None else "writing",
-            "held_integrations": store.held_rows if store is not None else 0,
-            "dropped_integrations": (store.dropped_rows + store.failed_rows
-                                     if store is not None else 0),
+            "writing": store.state,
+            "held_integrations": store.held_rows,
+            "dropped_integrations": store.dropped_rows + store.failed_rows,
             "uptime_s": _time.monotonic() - loop.started_mono, "version": __version__,
             "scan": loop.scan_name,
             "pointing": loop.pointing.as_status(),

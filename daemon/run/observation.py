@@ -54,6 +54,7 @@ import threading
 import time as _time
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 from astropy.time import Time
@@ -129,7 +130,7 @@ class Daemon:
         self.source = make_source(cfg, fast=fast)
         site = cfg["site"]
         self.location = coordinates.site_location(site["lat"], site["lon"], site["height_m"])
-        self.t_start = self.source.t_start or Time.now()
+        self.t_start = self.source.t_start if self.source.t_start is not None else Time.now()
         self.tsys_plan = plan_tsys(cfg, self.source.kind, float(Time.now().unix))
         self._warned: set = set()
         self.tsys = TsysTracker(self.tsys_plan, cfg["calibration"], self.warn_once)
@@ -175,12 +176,17 @@ class Daemon:
         self.integ_blocks = 0           # blocks in the integration being made
         self.total_blocks = 0           # blocks observed (paused and idle ones not counted)
         self.started_mono = _time.monotonic()
-        self.counters = {"received": 0, "lost": 0, "dropped": 0, "error": None}
+        self.counters: dict[str, Any] = {"received": 0, "lost": 0, "dropped": 0, "error": None}
         self.heartbeat = sd_notify.Heartbeat(_WATCHDOG_STALL_S)   # the main loop's pulse
         self.systemd = SystemdStatus(self, sd_notify.Notifier.from_env(log=self.log),
                                      self.heartbeat)
-        self.reader: BlockReader | None = None
-        self.store: ScanStore | None = None
+        self._products = functools.partial(scan_products, baseline_cfg=cfg["baseline"])
+        self.store = ScanStore(self.out_dir, self.nchan, self._products, self.event,
+                               hold_bytes=int(cfg["output"]["hold_mb"] * 1e6),
+                               on_open=self._scan_opened, guard=self.supervisor.guard)
+        self.reader = BlockReader(self.source, fast, self.stop_event, self.supervisor.guard,
+                                  self.counters, cfg["source"]["reconnect_max_s"], self.log,
+                                  _QUEUE_BLOCKS)
         self.row_index = 0
         self.average = RunningAverage()
         self.last_row: Row | None = None
@@ -357,14 +363,8 @@ class Daemon:
             self.source.close()
             self.switch.close()
             raise
-        products = functools.partial(scan_products, baseline_cfg=self.cfg["baseline"])
-        result.recovered = archive.recover(self.out_dir, products=products, report=self.event)
-        self.store = ScanStore(self.out_dir, self.nchan, products, self.event,
-                               hold_bytes=int(self.cfg["output"]["hold_mb"] * 1e6),
-                               on_open=self._scan_opened, guard=self.supervisor.guard)
-        self.reader = BlockReader(self.source, self.fast, self.stop_event, self.supervisor.guard,
-                                  self.counters, self.cfg["source"]["reconnect_max_s"],
-                                  self.log, _QUEUE_BLOCKS)
+        result.recovered = archive.recover(self.out_dir, products=self._products,
+                                           report=self.event)
         self.supervisor.install_excepthook()
         self.reader.start()
         self.store.start()

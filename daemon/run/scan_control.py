@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import queue
 import threading
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.live.schema import State
@@ -38,7 +38,7 @@ class ScanControl:
         from spinflip.daemon.live.control import CommandError
         if cmd == "status":
             return self.loop.status()
-        box = {"done": threading.Event()}
+        box: dict[str, Any] = {"done": threading.Event()}
         self.commands.put((cmd, args, box))
         if not box["done"].wait(timeout_s):
             raise CommandError(f"{cmd}: the daemon did not get to it within {timeout_s:g} s")
