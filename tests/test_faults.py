@@ -28,6 +28,9 @@ from spinflip.daemon import config
 from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.sources.sample_clock import SampleClock
 from spinflip.daemon.storage.writer import ScanStore
+from spinflip.daemon.storage.items import OpenScan
+from spinflip.daemon.products.row import Row
+from spinflip.daemon.sky.coordinates import SkyPosition
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -161,13 +164,13 @@ def test_clock_steps_keep_timestamps_monotonic_and_are_recorded(tmp_path):
 
 
 # -- the disk refusing writes -----------------------------------------------------------------
-def _row(i: int, nchan: int = 8) -> dict:
+def _row(i: int, nchan: int = 8) -> Row:
     t_unix_s = Time("2026-03-01T00:00:00", scale="utc").unix + i
-    return {"DATA": np.full(nchan, float(i), np.float32), "FLAGGED": np.zeros(nchan, bool),
-            "TSYS": 80.0, "EXPOSURE": 1.0, "DATE-OBS": Time(t_unix_s, format="unix").isot,
-            "CRVAL1": 1.42e9, "CDELT1": 1e3, "CRPIX1": 5.0, "CTYPE1": "FREQ",
-            "RESTFREQ": 1.420405751768e9, "VFRAME": 0.0, "OBJECT": "TEST",
-            "GLON": 30.0, "GLAT": 0.0, "AZIMUTH": 0.0, "ELEVATIO": 80.0}
+    return Row(data=np.full(nchan, float(i), np.float32), flagged=np.zeros(nchan, bool),
+               tsys_k=80.0, exposure_s=1.0, date_obs=Time(t_unix_s, format="unix").isot,
+               lo_hz=1.42e9, channel_hz=1e3, crpix=5.0, restfreq_hz=1.420405751768e9,
+               vframe_m_s=0.0, object="TEST",
+               position=SkyPosition(30.0, 0.0, 0.0, 0.0, 0.0, 80.0))
 
 
 _HEADER = {"TELESCOP": "HRFS-3", "SITELAT": 54.0, "SITELONG": -2.0, "SITEELEV": 300.0,
@@ -190,7 +193,7 @@ def test_store_holds_rows_while_the_disk_refuses_then_writes_them_in_order(tmp_p
     store = ScanStore(tmp_path, 8, None, lambda sev, text: events.append((sev, text)),
                       hold_bytes=10_000_000, retry_s=0.05)
     store.start()
-    store.put(("open", "scan-a", _HEADER))
+    store.put(OpenScan("scan-a", _HEADER))
     for i in range(3):
         store.put(_row(i))
     _wait(lambda: store.q.empty() and not store.held)
@@ -216,7 +219,7 @@ def test_store_bounds_its_memory_and_says_what_it_dropped(tmp_path, monkeypatch)
     store = ScanStore(tmp_path, 8, None, lambda sev, text: events.append((sev, text)),
                       hold_bytes=5 * (8 * 4 + 8), retry_s=0.05)   # 5 rows: DATA f4 + FLAGGED
     store.start()
-    store.put(("open", "scan-b", _HEADER))
+    store.put(OpenScan("scan-b", _HEADER))
     _wait(lambda: store.scan_name is not None)
     monkeypatch.setattr(archive, "_write_all", write_all)
     for i in range(8):

@@ -132,11 +132,11 @@ def test_record_expiring_during_a_run_flags_and_says_so(record, tmp_path, monkey
     config.merge(cfg, {"calibration": {"tsys_from": "loads", "records": str(path.parent)},
                        "output": {"dir": str(tmp_path / "o")}})
     d = observation.Daemon(cfg, fast=True, log=lambda msg: None)
-    tsys, age, ok = d._tsys_for(0.0)
+    tsys, age, ok = d.tsys.tsys_for(0.0)
     assert ok and tsys == loads.load_record(path).tsys_cold_k and 0 <= age < 600
     later = time.time() + cfg["calibration"]["max_record_age_s"] + 10
     monkeypatch.setattr(observation._time, "time", lambda: later)
-    tsys, age, ok = d._tsys_for(0.0)
+    tsys, age, ok = d.tsys.tsys_for(0.0)
     assert not ok and age > cfg["calibration"]["max_record_age_s"]
     assert any(sev == "error" and "older than calibration.max_record_age_s" in text
                for sev, text in d.events)

@@ -35,16 +35,18 @@ def _run(tmp, rfi: bool):
     cfg = _config(tmp, rfi)
     d = observation.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
     seen = []                                   # per row: {phase: carrier mask}, and the LOs
-    original = d._interference
+    original = d.interference.assess
 
-    def spy(integ, t_mid):
-        bad, n, log = original(integ, t_mid)
-        found = {ph: d.carriers.last_found.get(ph) if d.carriers else None for ph in bad}
+    def spy(integ, t_mid_unix_s, date_obs):
+        verdict = original(integ, t_mid_unix_s, date_obs)
+        bad = verdict.bad
+        finder = d.interference.carriers
+        found = {ph: finder.last_found.get(ph) if finder else None for ph in bad}
         seen.append({"found": found, "lo": {ph: integ.sums[ph].lo_hz for ph in bad},
-                     "m": {ph: integ.sums[ph].m.copy() for ph in bad}, "t": t_mid.unix})
-        return bad, n, log
+                     "m": {ph: integ.sums[ph].m.copy() for ph in bad}, "t": t_mid_unix_s})
+        return verdict
 
-    d._interference = spy
+    d.interference.assess = spy
     result = d.run()
     (path,) = result.files
     with fits.open(path) as h:
@@ -111,7 +113,7 @@ def test_carriers_stronger_than_5_sigma_are_found(with_rfi):
                     continue
                 lo = row["lo"][ph]
                 c = int(round((f_sky - lo) / sch.channel_hz)) + nchan // 2
-                if not (0 < c < nchan - 1 and d.carriers.usable[c]):
+                if not (0 < c < nchan - 1 and d.interference.carriers.usable[c]):
                     continue                  # band edge: not looked at by shape
                 # where HI can be, carriers are left to spectral kurtosis (tested below)
                 v = (radio_velocity_m_s(f_sky) + with_rfi["rows"]["VFRAME"][k]) / 1e3

@@ -61,7 +61,7 @@ def test_dongle_source_switches_the_noise_source_on_schedule(tmp_path, monkeypat
     src = dongle.RtlSdrSource(cfg)
     switch = make_noise_switch(cfg["calibration"])
     switch.open()
-    src.cal = CalControl(switch)
+    src.attach_noise_source(CalControl(switch))
     src.open()
     try:
         blocks = [src.read() for _ in range(4 * src.schedule.blocks_per_cycle)]

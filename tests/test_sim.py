@@ -14,7 +14,7 @@ def _source(**sim):
     cfg = config.load(None)
     cfg["sim"].update({"start": "2026-03-01T04:00:00", **sim})
     src = SimSource(cfg, fast=True)
-    src.pointing = lambda t: SkyCoord(l=30 * u.deg, b=0 * u.deg, frame=Galactic())
+    src.set_pointing(lambda t: SkyCoord(l=30 * u.deg, b=0 * u.deg, frame=Galactic()))
     return cfg, src
 
 

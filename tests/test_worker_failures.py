@@ -104,8 +104,8 @@ def test_a_worker_killed_once_is_restarted_and_nothing_finished_is_lost(tmp_path
         fn, calls = _once(Publisher._send)
         monkeypatch.setattr(Publisher, "_send", fn)
     else:
-        fn, calls = _once(d._progress_message)
-        monkeypatch.setattr(d, "_progress_message", fn)
+        fn, calls = _once(d.live.progress_message)
+        monkeypatch.setattr(d.live, "progress_message", fn)
         # the status loop publishes once a second: observe until it has run twice more
         d.duration_s = None
 

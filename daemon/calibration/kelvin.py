@@ -46,6 +46,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from spinflip.daemon.dsp.block import REF, SIG
+from spinflip.daemon.dsp.channel_grid import lo_mask
 from spinflip.daemon.dsp.spectrometer import Integration
 
 
@@ -110,9 +111,7 @@ def calibrate(integ: Integration, nchan: int, shift_channels: int, switched: boo
     if not 0 < beam_efficiency <= 1:
         raise ValueError(f"main-beam efficiency {beam_efficiency!r}: expected 0 < eta <= 1")
     sig, ref = integ.sums[SIG], integ.sums[REF]
-    flagged = np.zeros(nchan, dtype=bool)
-    if flag_dc:
-        flagged[nchan // 2] = True
+    flagged = lo_mask(nchan) if flag_dc else np.zeros(nchan, dtype=bool)
     for mask in (bad or {}).values():
         flagged |= mask
     everywhere = np.ones(nchan, dtype=bool)

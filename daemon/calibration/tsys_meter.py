@@ -46,6 +46,7 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from spinflip.daemon.dsp.channel_grid import lo_mask
 from spinflip.daemon.dsp.block import Block
 
 _EDGE_FRACTION = 0.10     # band edge not used for the band average, each side
@@ -99,8 +100,7 @@ def usable_channels(nchan: int) -> np.ndarray:
     usable = np.zeros(nchan, dtype=bool)
     edge = int(np.ceil(_EDGE_FRACTION * nchan))
     usable[edge:nchan - edge] = True
-    dc = nchan // 2
-    usable[max(dc - 1, 0):dc + 2] = False
+    usable[lo_mask(nchan, 1)] = False
     return usable
 
 

@@ -51,8 +51,9 @@ class LoadsSession:
             raise ConfigError(str(exc)) from None
         self.is_sim = self.source.kind == "sim"
         has_noise_source = self.is_sim or self.switch.can_switch
-        if hasattr(self.source, "cal"):
-            self.source.cal = CalControl(self.switch if self.switch.can_switch else None)
+        if self.source.can_fire_noise_source():
+            self.source.attach_noise_source(
+                CalControl(self.switch if self.switch.can_switch else None))
         sp = cfg["spectrometer"]
         self.spectrometer = Spectrometer(sp["channels"], sp["method"], sp["taps"])
         self.usable = usable_channels(sp["channels"])

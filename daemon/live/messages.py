@@ -12,16 +12,23 @@ from __future__ import annotations
 import datetime as _dt
 
 import numpy as np
-
+from spinflip.daemon.products.row import Row
 from spinflip.daemon.sky.spectral_axis import frequency_axis_hz, velocity_axis_lsrk_m_s
 
 
-def row_axes(row: dict, nchan: int) -> tuple[np.ndarray, np.ndarray]:
+def row_axes(row: Row, nchan: int) -> tuple[np.ndarray, np.ndarray]:
     """(topocentric sky frequency in Hz, LSRK radio velocity in km/s) of a row's channels."""
-    f = frequency_axis_hz(row["CRVAL1"], row["CDELT1"], row["CRPIX1"], nchan)
-    v = velocity_axis_lsrk_m_s(row["CRVAL1"], row["CDELT1"], row["CRPIX1"], row["RESTFREQ"],
-                               row["VFRAME"], nchan) / 1e3
+    f = frequency_axis_hz(row.lo_hz, row.channel_hz, row.crpix, nchan)
+    v = velocity_axis_lsrk_m_s(row.lo_hz, row.channel_hz, row.crpix, row.restfreq_hz,
+                               row.vframe_m_s, nchan) / 1e3
     return f, v
+
+
+def _exposure(row: Row, nchan: int) -> np.ndarray:
+    """Per-channel exposure of a row (its EXPOSURE everywhere when it has none per channel)."""
+    if row.chan_exposure_s is not None:
+        return np.asarray(row.chan_exposure_s)
+    return np.full(nchan, row.exposure_s)
 
 
 class RunningAverage:
@@ -35,13 +42,13 @@ class RunningAverage:
         self.first = None
         self._num = self._den = self._exp = None
 
-    def add(self, row: dict, nchan: int) -> None:
+    def add(self, row: Row, nchan: int) -> None:
         f, v = row_axes(row, nchan)
-        data = np.asarray(row["DATA"], dtype=np.float64)
-        good = ~np.asarray(row["FLAGGED"], dtype=bool) & np.isfinite(data)
-        exposure = np.asarray(row.get("CHANEXP", np.full(nchan, row["EXPOSURE"])), np.float64)
+        data = np.asarray(row.data, dtype=np.float64)
+        good = ~np.asarray(row.flagged, dtype=bool) & np.isfinite(data)
+        exposure = np.asarray(_exposure(row, nchan), np.float64)
         if self.first is None:
-            self.first = dict(row)
+            self.first = row
             self.v_km_s, self.f_hz = v, f
             self._num, self._den, self._exp = np.zeros(nchan), np.zeros(nchan), np.zeros(nchan)
         order = np.argsort(v)
@@ -58,7 +65,7 @@ class RunningAverage:
         return mean, ~np.isfinite(mean), self._exp
 
 
-def spectrum_message(row: dict, nchan: int, kind: str, scan: str, index: int, unit: str,
+def spectrum_message(row: Row, nchan: int, kind: str, scan: str, index: int, unit: str,
                      average: RunningAverage | None = None):
     """(topic, header, arrays) of a row (``kind = "integration"``) or of the running average."""
     if kind == "average":
@@ -67,22 +74,23 @@ def spectrum_message(row: dict, nchan: int, kind: str, scan: str, index: int, un
         exposure_s = float(np.nanmax(exposure)) if exposure.size else 0.0
     else:
         f, v = row_axes(row, nchan)
-        data, flagged, ref = np.asarray(row["DATA"]), np.asarray(row["FLAGGED"]), row
-        exposure = np.asarray(row.get("CHANEXP", np.full(nchan, row["EXPOSURE"])))
-        exposure_s = float(row["EXPOSURE"])
-    tsys = float(row["TSYS"])
+        data, flagged, ref = np.asarray(row.data), np.asarray(row.flagged), row
+        exposure = _exposure(row, nchan)
+        exposure_s = float(row.exposure_s)
+    tsys = float(row.tsys_k)
+    pos = row.position
     header = {
         "kind": kind, "scan": scan, "row": int(index), "exposure_s": exposure_s,
         "tsys_k": tsys if np.isfinite(tsys) else None, "unit": unit,
-        "restfreq_hz": float(ref["RESTFREQ"]), "vframe_m_s": float(ref["VFRAME"]),
-        "glon_deg": float(row["GLON"]), "glat_deg": float(row["GLAT"]),
-        "azimuth_deg": float(row["AZIMUTH"]), "elevation_deg": float(row["ELEVATIO"]),
-        "ra_deg": float(row["RA"]), "dec_deg": float(row["DEC"]), "object": str(row["OBJECT"]),
-        "folded": bool(row.get("FOLDED", 0)),
+        "restfreq_hz": float(ref.restfreq_hz), "vframe_m_s": float(ref.vframe_m_s),
+        "glon_deg": float(pos.glon_deg), "glat_deg": float(pos.glat_deg),
+        "azimuth_deg": float(pos.az_deg), "elevation_deg": float(pos.el_deg),
+        "ra_deg": float(pos.ra_deg), "dec_deg": float(pos.dec_deg), "object": str(row.object),
+        "folded": bool(row.folded),
         "flagged_fraction": float(np.mean(flagged)),
-        "blanked_fraction": float(row.get("FLAGTIME", 0.0)),
-        "nimpulse": int(row.get("NIMPULSE", 0)), "ncarrier": int(row.get("NCARRIER", 0)),
-        "time_utc": _iso_z(str(row["DATE-OBS"])),
+        "blanked_fraction": float(row.flag_time_fraction),
+        "nimpulse": int(row.n_impulse), "ncarrier": int(row.n_carrier),
+        "time_utc": _iso_z(str(row.date_obs)),
         "station": "",
     }
     arrays = {

@@ -221,6 +221,7 @@ import datetime as _dt
 import json
 import math
 from dataclasses import dataclass, field
+from enum import Enum
 
 import numpy as np
 
@@ -324,10 +325,23 @@ _FIELDS = {
     "event": {"severity": _STR, "text": _STR},
 }
 
+class State(str, Enum):
+    """The daemon's state, as the status message's ``state`` carries it."""
+
+    OBSERVING = "observing"
+    PAUSED = "paused"
+    IDLE = "idle"
+    RECONNECTING = "reconnecting"
+    STOPPING = "stopping"
+
+    def __str__(self) -> str:          # in messages and f-strings: the value ("observing")
+        return self.value
+
+
 _CHOICES = {
     ("spectrum", "kind"): ("integration", "average"),
     ("spectrum", "unit"): ("K", "count"),
-    ("status", "state"): ("observing", "paused", "idle", "reconnecting", "stopping"),
+    ("status", "state"): tuple(s.value for s in State),
     ("status", "writing"): ("writing", "holding", "failed"),
     ("event", "severity"): ("info", "warning", "error"),
 }

@@ -44,6 +44,8 @@ from collections import deque
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
 
+from spinflip.daemon.dsp.channel_grid import lo_mask
+
 _HALF_WIDTH = 7
 _GROW_SIGMA = 3.0
 _EDGE_FRACTION = 0.04
@@ -51,9 +53,7 @@ _EDGE_FRACTION = 0.04
 
 def lo_channels(nchan: int) -> np.ndarray:
     """bool[nchan]: the channel at the LO (N // 2) and its two neighbours, never a carrier."""
-    out = np.zeros(nchan, dtype=bool)
-    out[max(nchan // 2 - 1, 0):nchan // 2 + 2] = True
-    return out
+    return lo_mask(nchan, 1)
 
 
 def running_median(p: np.ndarray, half_width: int = _HALF_WIDTH) -> np.ndarray:

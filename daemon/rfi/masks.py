@@ -6,29 +6,37 @@
 - Masks: sky-frequency ranges the observer knows are polluted (``rfi.masks_mhz``,
   [[lo, hi], ...] in MHz, topocentric); every channel overlapping a range is flagged.
 
-Channel k of a spectrum at LO f_LO covers sky frequencies f_LO + (k - N//2 -+ 1/2) df.
+Channel k of a spectrum at LO f_LO covers sky frequencies f_LO + (k - N//2 -+ 1/2) df
+(:class:`spinflip.daemon.dsp.channel_grid.ChannelGrid`).
+
+:func:`dc_channels` is the one place that says which channel ``rfi.flag_dc`` flags.
 """
 
 from __future__ import annotations
 
 import numpy as np
 
+from spinflip.daemon.dsp.channel_grid import ChannelGrid, lo_mask
+
+
+def dc_channels(nchan: int, flag_dc: bool = True) -> np.ndarray:
+    """bool[nchan]: the channel ``rfi.flag_dc`` flags (the LO's, N // 2), or none."""
+    return lo_mask(nchan) if flag_dc else np.zeros(nchan, dtype=bool)
+
 
 def named_channels(lo_hz: float, nchan: int, channel_hz: float, flag_dc: bool = True,
                    spurs_hz=(), masks_mhz=()) -> np.ndarray:
     """bool[nchan]: the channels flagged by name for a spectrum taken at ``lo_hz``."""
-    out = np.zeros(nchan, dtype=bool)
-    centre = nchan // 2
-    if flag_dc:
-        out[centre] = True
+    grid = ChannelGrid(nchan, channel_hz)
+    out = dc_channels(nchan, flag_dc)
     for off in spurs_hz:
-        k = centre + int(round(off / channel_hz))
+        k = grid.lo_index + int(round(off / channel_hz))
         if 0 <= k < nchan:
             out[k] = True
     if len(masks_mhz):
-        k = np.arange(nchan)
-        lo_edge = lo_hz + (k - centre - 0.5) * channel_hz
-        hi_edge = lo_hz + (k - centre + 0.5) * channel_hz
+        centre = grid.sky_hz(lo_hz)
+        lo_edge = centre - 0.5 * channel_hz
+        hi_edge = centre + 0.5 * channel_hz
         for lo, hi in masks_mhz:
             out |= (hi_edge > lo * 1e6) & (lo_edge < hi * 1e6)
     return out

@@ -39,6 +39,7 @@ import functools
 import logging
 import threading
 import warnings
+from dataclasses import dataclass
 
 import numpy as np
 from astropy import units as u
@@ -332,6 +333,26 @@ def describe(coord: SkyCoord, location: EarthLocation, time: Time) -> dict:
     return {"GLON": _float_or_array(gal.l.deg), "GLAT": _float_or_array(gal.b.deg),
             "RA": _float_or_array(icrs.ra.deg), "DEC": _float_or_array(icrs.dec.deg),
             "AZIMUTH": _float_or_array(aa.az.deg), "ELEVATIO": _float_or_array(aa.alt.deg)}
+
+
+@dataclass(frozen=True)
+class SkyPosition:
+    """Where a position is at one time and site, deg: Galactic, ICRS and horizontal (azimuth
+    from north through east, elevation without refraction)."""
+
+    glon_deg: float
+    glat_deg: float
+    ra_deg: float
+    dec_deg: float
+    az_deg: float
+    el_deg: float
+
+
+def sky_position(coord: SkyCoord, location: EarthLocation, time: Time) -> SkyPosition:
+    """:func:`describe` of a scalar position and time, as a :class:`SkyPosition`."""
+    d = describe(coord, location, time)
+    return SkyPosition(float(d["GLON"]), float(d["GLAT"]), float(d["RA"]), float(d["DEC"]),
+                       float(d["AZIMUTH"]), float(d["ELEVATIO"]))
 
 
 def best_plane_longitude(location: EarthLocation, time: Time, min_elevation_deg: float) -> float:

@@ -1,16 +1,69 @@
-"""Sources of Blocks behind one interface: ``open()``, ``read() -> Block | None``, ``close()``,
-``set_cal(on)``, ``schedule`` and ``kind``. ``read`` returns None when a finite source ends.
+"""Sources of Blocks behind one interface, :class:`Source`: ``open()``, ``read() -> Block |
+None``, ``close()``, ``set_cal(on)``, ``schedule``, ``kind``, ``block_samples``, ``t_start``, and
+the capabilities a source may lack, asked for by name rather than guessed from its attributes:
 
-Choose one with :func:`make_source`; all three (sim, rtlsdr, replay) look the same to the rest.
+* a noise source it can fire: :meth:`Source.can_fire_noise_source`,
+  :meth:`Source.attach_noise_source` (the switch it fires through), :meth:`Source.request_firing`
+  (an extra firing as soon as possible; safe from any thread);
+* a sky that depends on the pointing (the simulator): :meth:`Source.set_pointing` (safe from any
+  thread; a source that does not need it ignores it);
+* reopening after a :class:`SourceError` (the dongle unplugged): :meth:`Source.can_reopen`,
+  :meth:`Source.reopen`.
+
+``read`` returns None when a finite source ends. Choose one with :func:`make_source`; all three
+(sim, rtlsdr, replay) look the same to the rest.
 """
 
 from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any, Protocol, runtime_checkable
 
 from spinflip.daemon.config import ConfigError
 
 
 class SourceError(RuntimeError):
     """A source that cannot start or has failed; the message says what to do about it."""
+
+
+@runtime_checkable
+class Source(Protocol):
+    """What the daemon asks of a source of Blocks (sim, rtlsdr, replay)."""
+
+    kind: str
+    block_samples: int
+    schedule: Any                 # spinflip.daemon.dsp.switching.Schedule
+    t_start: Any                  # astropy Time of the first sample, or None (the wall clock)
+
+    def open(self) -> None: ...
+    def read(self) -> Any: ...    # Block, or None when a finite source ends
+    def close(self) -> None: ...
+    def set_cal(self, on: bool | None) -> None: ...
+
+    def can_fire_noise_source(self) -> bool:
+        """True when the source drives a noise source on the switching schedule."""
+        ...
+
+    def attach_noise_source(self, control: Any) -> None:
+        """Fire through ``control`` (a :class:`~spinflip.daemon.calibration.noise_source.
+        CalControl`); called before :meth:`open`."""
+        ...
+
+    def request_firing(self) -> None:
+        """An extra firing as soon as possible (from any thread)."""
+        ...
+
+    def set_pointing(self, pointing: Callable[[Any], Any] | None) -> None:
+        """Where the telescope points: callable(Time) -> SkyCoord (from any thread)."""
+        ...
+
+    def can_reopen(self) -> bool:
+        """True when :meth:`reopen` can bring the source back after a :class:`SourceError`."""
+        ...
+
+    def reopen(self) -> None:
+        """Open the source again after a :class:`SourceError` (SourceError if still absent)."""
+        ...
 
 
 def parse_source_option(text: str) -> dict:

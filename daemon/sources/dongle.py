@@ -150,9 +150,10 @@ class RtlSdrSource:
 
     Notes
     -----
-    The Source interface: :meth:`open`, :meth:`read` -> Block, :meth:`close`, :meth:`set_cal`,
-    ``schedule``, ``kind``, ``cal``, ``fire_now``, ``forced_cal``; and :meth:`reopen` after a
-    :class:`SourceError`.
+    The Source interface (:class:`spinflip.daemon.sources.base.Source`): :meth:`open`,
+    :meth:`read` -> Block, :meth:`close`, :meth:`set_cal`, ``schedule``, ``kind``, ``forced_cal``,
+    the noise source (:meth:`attach_noise_source`, :meth:`request_firing`); and :meth:`reopen`
+    after a :class:`SourceError`.
     """
 
     kind = "rtlsdr"
@@ -165,7 +166,8 @@ class RtlSdrSource:
         self.schedule = Schedule.from_config(cfg)
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
         self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
-        self.fire_now = False     # set by a control command: an extra firing as soon as possible
+        self._fire = threading.Event()   # a control command: an extra firing as soon as possible
+        self.t_start = None       # samples are dated by the clock as they come
         self.clock = clock or SampleClock()
         self._extra_from = None
         self._cal_wanted = False  # noise-source state of the previous block
@@ -261,6 +263,21 @@ class RtlSdrSource:
             sdr.set_bias_tee(bool(src["bias_tee"]))
         elif src["bias_tee"]:
             raise SourceError("source.bias_tee = true but this pyrtlsdr/librtlsdr has no bias-tee call")
+
+    def can_fire_noise_source(self) -> bool:
+        return True
+
+    def attach_noise_source(self, control: CalControl) -> None:
+        self.cal = control
+
+    def request_firing(self) -> None:
+        self._fire.set()
+
+    def set_pointing(self, pointing) -> None:
+        """The dongle's samples do not depend on where the dish points."""
+
+    def can_reopen(self) -> bool:
+        return True
 
     def reopen(self) -> None:
         """Close whatever is left of the device and open it again (after a SourceError).
@@ -428,8 +445,9 @@ class RtlSdrSource:
         phase = sch.phase_of_block(i)
         hop = sch.is_hop(i)
         lo = sch.lo_of(phase)
-        if self.fire_now:
-            self.fire_now, self._extra_from = False, i
+        if self._fire.is_set():
+            self._fire.clear()
+            self._extra_from = i
         wanted = sch.cal_on(i, self._extra_from) if self.forced_cal is None else self.forced_cal
         switched = wanted != self._cal_wanted
         self._cal_wanted = wanted

@@ -19,6 +19,7 @@ from astropy.time import Time
 from spinflip.daemon.dsp.block import SIG, Block
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.dsp.switching import Schedule
+from spinflip.daemon.sources.base import SourceError
 
 
 class ReplaySource:
@@ -66,6 +67,24 @@ class ReplaySource:
     def set_cal(self, on: bool | None) -> None:
         if on:
             raise ConfigError("replay cannot switch a calibration noise source")
+
+    def can_fire_noise_source(self) -> bool:
+        return False
+
+    def attach_noise_source(self, control) -> None:
+        """A capture has no noise source to fire."""
+
+    def request_firing(self) -> None:
+        raise ConfigError("replay cannot fire a calibration noise source")
+
+    def set_pointing(self, pointing) -> None:
+        """A capture's samples do not depend on the pointing."""
+
+    def can_reopen(self) -> bool:
+        return False
+
+    def reopen(self) -> None:
+        raise SourceError(f"replay file {self.path}: cannot be reopened")
 
     def read(self) -> Block | None:
         data = self._fh.read(2 * self.block_samples)

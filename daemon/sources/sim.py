@@ -25,6 +25,7 @@ Signal model, per block of samples at LO frequency f_LO (baseband frequency f, s
 
 from __future__ import annotations
 
+import threading
 import time as _time
 from dataclasses import dataclass
 
@@ -41,6 +42,7 @@ from spinflip.daemon.sources.galaxy import ModelGalaxy
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.dsp.samples import complex_to_u8
 from spinflip.daemon.dsp.switching import Schedule
+from spinflip.daemon.sources.base import SourceError
 
 _CHUNK = 65536                 # samples per frequency-domain shaping chunk
 _GAIN_REF_DB = 40.2            # gain at which the rms per component is _RMS_REF of full scale
@@ -133,10 +135,11 @@ class SimSource:
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
         self.diode_on = False     # the simulated noise source's true state
         self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
-        self.fire_now = False     # set by a control command: an extra firing as soon as possible
+        self._fire = threading.Event()   # a control command: an extra firing as soon as possible
         self._extra_from = None
         self.load = None          # None (the sky), "hot" or "cold"
-        self.pointing = None      # set by the pipeline: callable(time) -> SkyCoord
+        self._pointing_lock = threading.Lock()
+        self.pointing = None      # set_pointing(): callable(time) -> SkyCoord
         self._sky_cache: dict = {}
         self._tones: dict = {}    # (baseband Hz, samples) -> exp(2 pi i f k / fs), for carriers
         self._index = 0
@@ -157,7 +160,9 @@ class SimSource:
                                  tcal_k=sim["noise_source_k"])
             self._sky_cache[bucket] = (np.full(_CHUNK, base), {})
             return self._sky_cache[bucket]
-        coord = self.pointing(t)
+        with self._pointing_lock:
+            pointing = self.pointing
+        coord = pointing(t)
         pos = coordinates.describe(coord, self.location, t)
         vframe = coordinates.vframe_lsrk_m_s(coord, self.location, t)
         v_grid = np.linspace(-400.0, 400.0, 1601)
@@ -241,6 +246,25 @@ class SimSource:
         """Hold the noise source on or off (True / False), or back to the schedule (None)."""
         self.forced_cal = None if on is None else bool(on)
 
+    def can_fire_noise_source(self) -> bool:
+        return True
+
+    def attach_noise_source(self, control: CalControl) -> None:
+        self.cal = control
+
+    def request_firing(self) -> None:
+        self._fire.set()
+
+    def set_pointing(self, pointing) -> None:
+        with self._pointing_lock:
+            self.pointing = pointing
+
+    def can_reopen(self) -> bool:
+        return False
+
+    def reopen(self) -> None:
+        raise SourceError("the simulator cannot be reopened")
+
     def read(self) -> Block:
         """Next block; paced to real time unless ``fast``."""
         i = self._index
@@ -250,8 +274,9 @@ class SimSource:
         lo = sch.lo_of(phase)
         t_rel = i * self.block_samples / self.fs
         hop = sch.is_hop(i)
-        if self.fire_now:
-            self.fire_now, self._extra_from = False, i
+        if self._fire.is_set():
+            self._fire.clear()
+            self._extra_from = i
         wanted = sch.cal_on(i, self._extra_from) if self.forced_cal is None else self.forced_cal
         cal_state = self.cal.state_for(wanted)
         if cal_state is not None:

@@ -1,11 +1,14 @@
 """The writer thread: scans onto the disk, and what happens when the disk is full.
 
-The DSP loop hands items to :meth:`ScanStore.put` and never waits for the disk:
+The DSP loop hands items (:mod:`spinflip.daemon.storage.items`) to :meth:`ScanStore.put` and
+never waits for the disk:
 
-* a row (dict): one finished integration;
-* ``("open", name, header)`` / ``("close",)``: a scan file begins / ends;
-* ``("tsys" | "rfi" | "note", record)``: a system-temperature measurement, an interference
-  log record, an observer's note.
+* a :class:`~spinflip.daemon.products.row.Row`: one finished integration;
+* :class:`OpenScan` / :class:`CloseScan`: a scan file begins / ends;
+* :class:`TsysRecord`, :class:`RfiRecord`, :class:`Note`: a system-temperature measurement, an
+  interference log record, an observer's note.
+
+They become the file's columns here (:mod:`spinflip.daemon.storage.row_columns`).
 
 Items are written in the order they came, each durable (journal + fsync,
 :class:`spinflip.daemon.storage.archive.ScanWriter`) before the next. When a write fails (ENOSPC,
@@ -36,17 +39,29 @@ import time as _time
 from collections.abc import Callable
 from pathlib import Path
 
-from spinflip.daemon.storage import archive
+from spinflip.daemon.products.row import Row
 from spinflip.daemon.run.supervisor import one_line
+from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.items import (
+    CloseScan,
+    Item,
+    Note,
+    OpenScan,
+    RfiRecord,
+    TsysRecord,
+    item_bytes,
+)
+from spinflip.daemon.storage.row_columns import (
+    note_columns,
+    rfi_columns,
+    row_columns,
+    tsys_columns,
+)
 
 _STOP = object()
-
-
-def item_bytes(item) -> int:
-    """Memory an item holds (its arrays), bytes; small scalars count as 0."""
-    rec = item if isinstance(item, dict) else (item[1] if len(item) > 1 and
-                                                isinstance(item[1], dict) else {})
-    return sum(getattr(v, "nbytes", 0) for v in rec.values())
+_WHAT = {OpenScan: "the start of a scan", CloseScan: "the end of a scan",
+         TsysRecord: "a system-temperature record", RfiRecord: "an interference record",
+         Note: "a note"}
 
 
 class ScanStore:
@@ -105,7 +120,10 @@ class ScanStore:
     def start(self) -> None:
         self._thread.start()
 
-    def put(self, item) -> None:
+    def put(self, item: Item) -> None:
+        """Queue an item for writing (never waits)."""
+        if not isinstance(item, (Row, OpenScan, CloseScan, TsysRecord, RfiRecord, Note)):
+            raise TypeError(f"ScanStore.put: {type(item).__name__} is not a writer item")
         self.q.put(item)
 
     def finish(self, give_up_after_s: float = 5.0) -> None:
@@ -119,7 +137,7 @@ class ScanStore:
                 self._run()
             except Exception as exc:  # noqa: BLE001 - counted as unsaved, said in one line
                 self.unsaved_rows += self.held_rows + sum(
-                    1 for it in list(self.q.queue) if isinstance(it, dict))
+                    1 for it in list(self.q.queue) if isinstance(it, Row))
                 self.event("error", f"writing failed at the end ({one_line(exc)}): "
                            f"{self.unsaved_rows} integration(s) not saved")
                 try:                  # what the journal holds becomes the FITS file
@@ -136,9 +154,22 @@ class ScanStore:
             return "failed"
         return "holding" if self.error is not None else "writing"
 
+    def unsaved_text(self) -> str:
+        """What could not be saved, by cause; '' when everything finished is saved."""
+        parts = []
+        if self.unsaved_rows:
+            parts.append(f"{self.unsaved_rows} still held when the disk kept refusing "
+                         f"({self.error or 'write error'})")
+        if self.dropped_rows:
+            parts.append(f"{self.dropped_rows} dropped at the memory bound output.hold_mb")
+        if self.failed_rows:
+            parts.append(f"{self.failed_rows} failed to write (see the log)")
+        n = self.unsaved_rows + self.dropped_rows + self.failed_rows
+        return f"{n} integration(s) could not be saved: " + ", ".join(parts) if n else ""
+
     @property
     def held_rows(self) -> int:
-        return sum(1 for it in self.held if isinstance(it, dict))
+        return sum(1 for it in self.held if isinstance(it, Row))
 
     # -- the thread --------------------------------------------------------------------------
     def _run(self) -> None:
@@ -150,7 +181,7 @@ class ScanStore:
                     item = None
                 if item is _STOP:
                     self._stopping_since = _time.monotonic()
-                    self.held.append(("close",))
+                    self.held.append(CloseScan())
                 elif item is not None:
                     self._hold(item)
             self._drain()
@@ -167,7 +198,7 @@ class ScanStore:
     def _hold(self, item) -> None:
         """Queue an item behind the ones waiting; drop a row past the memory bound."""
         size = item_bytes(item)
-        if self.held and isinstance(item, dict) and self.held_bytes + size > self.hold_bytes:
+        if self.held and isinstance(item, Row) and self.held_bytes + size > self.hold_bytes:
             self.dropped_rows += 1
             if self.dropped_rows == 1 or self.dropped_rows % 100 == 0:
                 self.event("error", f"cannot write to {self.out_dir} and {self.held_bytes / 1e6:.0f}"
@@ -205,35 +236,36 @@ class ScanStore:
         """An item that could not be written for a reason other than the disk: dropped, counted
         and said; the items after it are written as usual."""
         self.failed_items += 1
-        if isinstance(item, dict):
+        if isinstance(item, Row):
             self.failed_rows += 1
             what = "an integration"
         else:
-            what = {"open": "the start of a scan", "close": "the end of a scan", "tsys": "a "
-                    "system-temperature record", "rfi": "an interference record",
-                    "note": "a note"}.get(item[0], "a record")
+            what = _WHAT.get(type(item), "a record")
         self.event("error", f"could not save {what} ({one_line(exc)}): it is dropped; writing "
                    "goes on with the next")
 
-    def _write(self, item) -> None:
-        if isinstance(item, tuple) and item[0] == "open":
+    def _write(self, item: Item) -> None:
+        if isinstance(item, OpenScan):
             self._close()
-            self._writer = archive.ScanWriter(self.out_dir, item[1], item[2], self.nchan,
+            self._writer = archive.ScanWriter(self.out_dir, item.name, item.header, self.nchan,
                                               products=self.products)
             self.scan_name = self._writer.scan_name
             if self.on_open is not None:
                 self.on_open(self.scan_name)
-        elif isinstance(item, tuple) and item[0] == "close":
+        elif isinstance(item, CloseScan):
             self._close()
         elif self._writer is None:                # no scan open (its start failed)
-            if isinstance(item, dict):
+            if isinstance(item, Row):
                 raise RuntimeError("no scan file is open")
             return
-        elif isinstance(item, tuple):
-            {"tsys": self._writer.append_tsys, "rfi": self._writer.append_rfi,
-             "note": self._writer.append_note}[item[0]](item[1])
+        elif isinstance(item, Row):
+            self._writer.append(row_columns(item))
+        elif isinstance(item, TsysRecord):
+            self._writer.append_tsys(tsys_columns(item))
+        elif isinstance(item, RfiRecord):
+            self._writer.append_rfi(rfi_columns(item))
         else:
-            self._writer.append(item)
+            self._writer.append_note(note_columns(item))
 
     def _close(self) -> None:
         w, self._writer = self._writer, None

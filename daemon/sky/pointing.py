@@ -1,0 +1,42 @@
+"""The configured pointing, resolved to a sky position at any time."""
+
+from __future__ import annotations
+
+from astropy.time import Time
+from spinflip.daemon.sky import coordinates
+
+
+class Pointing:
+    """Resolves a ``[pointing]`` table (frame, lon, lat, object, min_elevation) to a sky
+    position at any time; ``frame = "auto"`` picks a Galactic-plane longitude above the
+    horizon at ``t_start`` (:func:`spinflip.daemon.sky.coordinates.best_plane_longitude`)."""
+
+    def __init__(self, cfg: dict, location, t_start: Time):
+        p = cfg["pointing"]
+        self.frame, self.lon, self.lat = p["frame"], p["lon"], p["lat"]
+        if self.frame == "auto":
+            self.frame, self.lon, self.lat = "galactic", coordinates.best_plane_longitude(
+                location, t_start, p["min_elevation"]), 0.0
+        self.location = location
+        self.object = p["object"] or self._name()
+
+    def _name(self) -> str:
+        if self.frame == "galactic":
+            return f"G{self.lon % 360:05.1f}{self.lat:+05.1f}"
+        if self.frame == "radec":
+            return f"RA{self.lon:06.2f}DEC{self.lat:+06.2f}"
+        return f"AZ{self.lon:05.1f}EL{self.lat:04.1f}"
+
+    def __call__(self, t: Time):
+        return coordinates.pointing_coord(self.frame, self.lon, self.lat, self.location, t)
+
+    def elevation_deg(self, t: Time) -> float:
+        """Elevation (deg, no refraction) of the pointing at ``t``."""
+        if self.frame == "azel":
+            return float(self.lat)
+        return coordinates.sky_position(self(t), self.location, t).el_deg
+
+    def as_status(self) -> dict:
+        """The status message's ``pointing`` object."""
+        return {"frame": self.frame, "lon_deg": self.lon, "lat_deg": self.lat,
+                "object": self.object}
