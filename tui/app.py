@@ -58,16 +58,20 @@ import sys
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable
 
 import zmq
 from rich.text import Text
 from zmq.utils.monitor import recv_monitor_message
 
 from spinflip.daemon.live import schema
-from spinflip.daemon.live.control import DEFAULT_TIMEOUT_S, ControlError, format_result, request
-
+from spinflip.daemon.live.control import (
+    DEFAULT_TIMEOUT_S,
+    ControlError,
+    format_result,
+    request,
+)
 from spinflip.daemon.live.ports import free_loopback_port
 
 from . import panels
@@ -129,10 +133,6 @@ def _one_line(text: str, limit: int = REPLY_MAX_CHARS) -> str:
     """``text`` on one line, at most ``limit`` characters (an ellipsis marks a cut)."""
     flat = " ".join(str(text).split())
     return flat if len(flat) <= limit else flat[:limit - 1] + "…"
-
-
-def _utc_now_iso() -> str:
-    return schema.now_utc_iso()
 
 
 # --------------------------------------------------------------------------------------------
@@ -279,7 +279,7 @@ class Feed(threading.Thread):
         if n == 1 or (n % 10 == 0 and str(n).rstrip("0") == "1"):   # 1, 10, 100, ...
             with self.lock:
                 self.state.events.append(
-                    (_utc_now_iso(), "warning",
+                    (schema.now_utc_iso(), "warning",
                      f"{n} bad message{'s' if n > 1 else ''} so far: {self.last_error}"))
 
     def _monitor_events(self, monitor) -> None:
@@ -299,7 +299,7 @@ class Feed(threading.Thread):
                     if not self._refusal_reported:   # once, not at every retry
                         self._refusal_reported = True
                         self.state.events.append(
-                            (_utc_now_iso(), "error",
+                            (schema.now_utc_iso(), "error",
                              f"the daemon at {self.endpoint} refused the connection: is this "
                              f"client on its allow-list, and is server.key the daemon's?"))
 
@@ -581,7 +581,7 @@ class WatchSession:
                             if message:
                                 with self.lock:
                                     self.state.reply = _one_line(message)
-                                    self.state.events.append((_utc_now_iso(), "info",
+                                    self.state.events.append((schema.now_utc_iso(), "info",
                                                               _one_line(message)))
                                 finish_at_s = now_s + FINISHED_SHOW_S
                         if finish_at_s is not None and now_s >= finish_at_s:

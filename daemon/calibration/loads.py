@@ -62,12 +62,13 @@ import math
 import numbers
 import os
 import time
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 from spinflip import __version__
-from spinflip.daemon.storage.archive import _fsync_dir
+from spinflip.daemon.storage.durable import fsync_dir
+from spinflip.daemon.utc import utc_iso
 
 
 class LoadsError(ValueError):
@@ -439,16 +440,11 @@ _POSITIVE = {"p_hot_counts", "p_cold_counts", "trx_k", "tsys_cold_k", "gain_coun
 _MAX_TEXT = 68
 
 
-def _utc_iso(time_unix_s: float) -> str:
-    t = _dt.datetime.fromtimestamp(time_unix_s, _dt.timezone.utc).replace(tzinfo=None)
-    return t.isoformat(timespec="seconds")
-
-
 def _parse_utc_s(text: str) -> float:
     """POSIX seconds of a UTC ISO time (no offset: UTC), or ValueError."""
     t = _dt.datetime.fromisoformat(text)
     if t.tzinfo is None:
-        t = t.replace(tzinfo=_dt.timezone.utc)
+        t = t.replace(tzinfo=_dt.UTC)
     return t.timestamp()
 
 
@@ -555,9 +551,9 @@ def make_record(meta: dict, *, p_hot_counts: float, p_cold_counts: float, t_hot_
     if p_cold_cal_counts is not None:
         t_cal = noise_source_k_from_loads(p_cold_cal_counts, p_cold_counts, gain)
         p_cold_cal_counts = float(p_cold_cal_counts)
-    stamp = _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y%m%dT%H%M%S")
+    stamp = _dt.datetime.fromtimestamp(t, _dt.UTC).strftime("%Y%m%dT%H%M%S")
     return LoadsRecord(
-        name=f"loads-{stamp}", time_utc=_utc_iso(t), t_hot_k=th, t_cold_k=tc,
+        name=f"loads-{stamp}", time_utc=utc_iso(t), t_hot_k=th, t_cold_k=tc,
         p_hot_counts=float(p_hot_counts), p_cold_counts=float(p_cold_counts), y=y, trx_k=trx,
         tsys_cold_k=system_temperature_k(trx, tc), gain_counts_per_k=gain,
         gain_setting_db=m["gain_setting_db"], center_freq_hz=m["center_freq_hz"],
@@ -643,7 +639,7 @@ def save_record(record: LoadsRecord, folder) -> Path:
     folder = Path(folder)
     if not folder.is_dir():
         folder.mkdir(parents=True, exist_ok=True)
-        _fsync_dir(folder.parent)
+        fsync_dir(folder.parent)
     final = folder / f"{record.name}.json"
     if final.exists():
         raise LoadsError(f"calibration record {final} exists already; it is not overwritten")
@@ -661,7 +657,7 @@ def save_record(record: LoadsRecord, folder) -> Path:
         except OSError:
             pass
         raise
-    _fsync_dir(folder)
+    fsync_dir(folder)
     return final
 
 

@@ -85,7 +85,7 @@ from zmq.utils.monitor import recv_monitor_message
 
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.publisher import MAX_SUBSCRIPTION_FRAME
-from spinflip.daemon.storage.archive import _fsync_dir, _write_all
+from spinflip.daemon.storage.durable import fsync_dir, write_all
 
 try:  # POSIX advisory locks
     import fcntl
@@ -176,7 +176,7 @@ def _spectrum_key(header: dict) -> tuple:
 
 
 def _utc_day(time_utc: str) -> str:
-    t = _dt.datetime.fromisoformat(time_utc).astimezone(_dt.timezone.utc)
+    t = _dt.datetime.fromisoformat(time_utc).astimezone(_dt.UTC)
     return t.strftime("%Y%m%d")
 
 
@@ -202,7 +202,7 @@ class _DayFiles:
             os.close(self.index_fd)
             raise
         if created:
-            _fsync_dir(folder)
+            fsync_dir(folder)
 
     def _cut_torn_tail(self) -> None:
         """Drop a last line that a crash left without its newline."""
@@ -241,12 +241,12 @@ class _DayFiles:
     def append(self, header_json: bytes, payload: list[bytes], received_utc: str) -> None:
         blob = b"".join(payload)
         offset = os.lseek(self.bin_fd, 0, os.SEEK_END)
-        _write_all(self.bin_fd, blob)
+        write_all(self.bin_fd, blob)
         os.fsync(self.bin_fd)
         line = (b'{"bin_offset":%d,"bin_bytes":%d,"crc32":%d,"received_utc":%s,"header":'
                 % (offset, len(blob), zlib.crc32(blob), json.dumps(received_utc).encode())
                 + header_json + b"}\n")
-        _write_all(self.index_fd, line)
+        write_all(self.index_fd, line)
         os.fsync(self.index_fd)
 
     def close(self) -> None:
@@ -292,7 +292,7 @@ class SpectrumArchive:
             folder = self.folder / station
             if not folder.exists():
                 folder.mkdir()
-                _fsync_dir(self.folder)
+                fsync_dir(self.folder)
             current = (day, _DayFiles(folder, day))
             self._open[station] = current
             if current[1].last_key is not None:
@@ -430,7 +430,9 @@ def _check_args(stations, relay_endpoint, duration_s) -> None:
 
 
 def _station_security(keys_dir: Path, name: str):
-    from spinflip.daemon.live.keys import ClientSecurity     # lazily: collecting without keys never needs it
+    from spinflip.daemon.live.keys import (
+        ClientSecurity,  # lazily: collecting without keys never needs it
+    )
     own = keys_dir / name
     return ClientSecurity.from_dir(own if own.is_dir() else keys_dir)
 

@@ -224,6 +224,8 @@ from dataclasses import dataclass, field
 
 import numpy as np
 
+from spinflip.daemon.utc import utc_iso
+
 #: Version of the schema in this docstring; a reader refuses any other.
 SCHEMA_VERSION = 1
 
@@ -285,7 +287,7 @@ class Message:
 
 def now_utc_iso() -> str:
     """The current UTC time as ``YYYY-MM-DDTHH:MM:SS.ffffffZ`` (the form of ``time_utc``)."""
-    return _dt.datetime.now(_dt.timezone.utc).strftime("%Y-%m-%dT%H:%M:%S.%fZ")
+    return utc_iso(micro=True, zulu=True)
 
 
 # ----------------------------------------------------------------------------------------------

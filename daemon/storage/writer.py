@@ -36,8 +36,8 @@ import time as _time
 from collections.abc import Callable
 from pathlib import Path
 
-from spinflip.daemon.storage import archive
 from spinflip.daemon.run.supervisor import one_line
+from spinflip.daemon.storage import archive
 
 _STOP = object()
 
