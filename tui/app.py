@@ -65,6 +65,8 @@ import zmq
 from rich.text import Text
 from zmq.utils.monitor import recv_monitor_message
 
+from spinflip.daemon.config import DEFAULT_CONTROL_ENDPOINT, DEFAULT_DATA_ENDPOINT
+from spinflip.daemon.error_line import one_line
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.control import (
     DEFAULT_TIMEOUT_S,
@@ -83,10 +85,6 @@ try:  # POSIX terminals
 except ImportError:  # pragma: no cover - non-POSIX
     termios = tty = None
 
-#: Default data socket of a daemon on this computer (config ``publish.data``).
-DEFAULT_DATA_ENDPOINT = "tcp://127.0.0.1:5621"
-#: Default control socket of a daemon on this computer (config ``publish.control``).
-DEFAULT_CONTROL_ENDPOINT = "tcp://127.0.0.1:5622"
 #: Time between two redraws of the screen, s (about 4 per second).
 REFRESH_S = 0.25
 #: Longest wait for a command's reply, s.
@@ -129,10 +127,9 @@ KEY_AXIS = "a"
 KEY_QUIT = "q"
 
 
-def _one_line(text: str, limit: int = REPLY_MAX_CHARS) -> str:
-    """``text`` on one line, at most ``limit`` characters (an ellipsis marks a cut)."""
-    flat = " ".join(str(text).split())
-    return flat if len(flat) <= limit else flat[:limit - 1] + "…"
+def _one_line(text: str) -> str:
+    """``text`` on one line, at most :data:`REPLY_MAX_CHARS` characters (``…`` marks a cut)."""
+    return one_line(text, REPLY_MAX_CHARS, ellipsis="…")
 
 
 # --------------------------------------------------------------------------------------------

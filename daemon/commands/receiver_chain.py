@@ -131,9 +131,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
-from spinflip.daemon.products.line_integral import K_SWITCHED, K_TOTAL_POWER, radiometer_noise_k
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.calibration.loads import T0_K, noise_figure_db, noise_temperature_k
+from spinflip.daemon.error_line import quoted
+from spinflip.daemon.products.line_integral import (
+    K_SWITCHED,
+    K_TOTAL_POWER,
+    radiometer_noise_k,
+)
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.toml_file import TomlFileError, read_toml
 
 #: Boltzmann constant, J/K (exact, SI 2019).
@@ -473,25 +478,20 @@ class Profile:
     integration_s: float
 
 
-def _short(value) -> str:
-    text = repr(value)
-    return text if len(text) <= 60 else text[:57] + "..."
-
-
 def _check_value(where: str, key: str, spec, value):
     """Type and range of one value; returns it as float / int / str."""
     if isinstance(spec, _Text):
         if not isinstance(value, str) or not value.strip() or "\n" in value:
-            raise ProfileError(f"{where}: {key} = {_short(value)}: expected {spec.allowed()}")
+            raise ProfileError(f"{where}: {key} = {quoted(value)}: expected {spec.allowed()}")
         if spec.choices and value not in spec.choices:
-            raise ProfileError(f"{where}: {key} = {_short(value)}: expected {spec.allowed()}")
+            raise ProfileError(f"{where}: {key} = {quoted(value)}: expected {spec.allowed()}")
         return value
     if spec.integer:
         ok = isinstance(value, int) and not isinstance(value, bool)
     else:
         ok = isinstance(value, numbers.Real) and not isinstance(value, bool)
     if not ok or not math.isfinite(float(value)):
-        raise ProfileError(f"{where}: {key} = {_short(value)}: expected {spec.allowed()}")
+        raise ProfileError(f"{where}: {key} = {quoted(value)}: expected {spec.allowed()}")
     v = int(value) if spec.integer else float(value)
     low_bad = v <= spec.lo if spec.lo_open else v < spec.lo
     if low_bad or v > spec.hi:
@@ -502,11 +502,11 @@ def _check_value(where: str, key: str, spec, value):
 def _section(where: str, prefix: str, table, schema: dict, either_noise: bool = False) -> dict:
     """Validate one table against its schema: unknown, missing, type, range."""
     if not isinstance(table, dict):
-        raise ProfileError(f"{where}: {prefix} = {_short(table)}: expected a table "
+        raise ProfileError(f"{where}: {prefix} = {quoted(table)}: expected a table "
                            f"([{prefix}])")
     for key in table:
         if key not in schema:
-            raise ProfileError(f"{where}: {prefix}.{key} = {_short(table[key])}: unknown key; "
+            raise ProfileError(f"{where}: {prefix}.{key} = {quoted(table[key])}: unknown key; "
                                f"allowed: {', '.join(schema)}")
     out = {}
     for key, spec in schema.items():
@@ -521,7 +521,7 @@ def _section(where: str, prefix: str, table, schema: dict, either_noise: bool = 
     if either_noise:
         given = [k for k in _EITHER_NOISE if k in table]
         if len(given) == 2:
-            raise ProfileError(f"{where}: {prefix}.noise_temp_k = {_short(table['noise_temp_k'])}"
+            raise ProfileError(f"{where}: {prefix}.noise_temp_k = {quoted(table['noise_temp_k'])}"
                                f": give noise_figure_db or noise_temp_k, not both")
     return out
 
@@ -563,7 +563,7 @@ def profile_from_dict(data: dict, where: str = "profile") -> Profile:
         raise ProfileError(f"{where}: expected a TOML document (a table at the top)")
     for key in data:
         if key not in _SECTIONS:
-            raise ProfileError(f"{where}: {key} = {_short(data[key])}: unknown section; allowed: "
+            raise ProfileError(f"{where}: {key} = {quoted(data[key])}: unknown section; allowed: "
                                "[telescope], [sky], [[stage]], [dongle], [observing]")
     for key in _REQUIRED_SECTIONS:
         if key not in data:
@@ -580,13 +580,13 @@ def profile_from_dict(data: dict, where: str = "profile") -> Profile:
 
     raw_stages = data["stage"]
     if not isinstance(raw_stages, list) or not raw_stages:
-        raise ProfileError(f"{where}: stage = {_short(raw_stages)}: expected one or more "
+        raise ProfileError(f"{where}: stage = {quoted(raw_stages)}: expected one or more "
                            "[[stage]] tables")
     stages = []
     for i, raw in enumerate(raw_stages):
         prefix = f"stage[{i + 1}]"
         if not isinstance(raw, dict):
-            raise ProfileError(f"{where}: {prefix} = {_short(raw)}: expected a [[stage]] table")
+            raise ProfileError(f"{where}: {prefix} = {quoted(raw)}: expected a [[stage]] table")
         if "kind" not in raw:
             raise ProfileError(f"{where}: {prefix}.kind: missing; expected "
                                f"{_STAGE_COMMON['kind'].allowed()}")

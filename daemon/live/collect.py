@@ -83,6 +83,7 @@ import numpy as np
 import zmq
 from zmq.utils.monitor import recv_monitor_message
 
+from spinflip.daemon.error_line import one_line
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.publisher import MAX_SUBSCRIPTION_FRAME
 from spinflip.daemon.storage.durable import fsync_dir, write_all
@@ -589,7 +590,7 @@ def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) 
                            for d in msg.header["arrays"]})
     except (schema.WireError, ValueError, TypeError, RecursionError) as exc:
         count.decode_errors += 1
-        count.last_error = schema.one_line(str(exc) or type(exc).__name__)
+        count.last_error = one_line(str(exc) or type(exc).__name__, schema.MAX_ERROR_CHARS)
         _warn_decode_error(count, log_line)
         return
     count.by_topic[msg.topic] = count.by_topic.get(msg.topic, 0) + 1

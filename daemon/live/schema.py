@@ -221,9 +221,11 @@ import datetime as _dt
 import json
 import math
 from dataclasses import dataclass, field
+from typing import Any
 
 import numpy as np
 
+from spinflip.daemon.error_line import one_line, quoted, quoted_json
 from spinflip.daemon.utc import utc_iso
 
 #: Version of the schema in this docstring; a reader refuses any other.
@@ -352,7 +354,9 @@ SPECTRUM_ARRAYS = {
 _ITEMSIZE = {d: np.dtype(d).itemsize for d in DTYPES}
 
 
-def _json_type(value) -> str:
+def json_type(value: Any) -> str:
+    """The schema's name of a decoded JSON value's type: ``null``, ``boolean``, ``integer``,
+    ``number`` (a float), ``string``, ``object`` or ``array`` (else the Python type's name)."""
     if value is None:
         return "null"
     if isinstance(value, bool):
@@ -370,27 +374,23 @@ def _json_type(value) -> str:
     return type(value).__name__
 
 
+def json_type_words(value: Any) -> str:
+    """A decoded JSON value's type as words for an error line: ``a number`` (integers too),
+    ``a string``, ``a boolean``, ``an array``, ``an object`` or ``null``."""
+    kind = json_type(value)
+    kind = "number" if kind == "integer" else kind
+    return {"null": "null", "array": "an array", "object": "an object", "boolean": "a boolean",
+            "number": "a number", "string": "a string"}.get(kind, "an object")
+
+
 def _check_type(where: str, value, allowed: tuple) -> None:
-    kind = _json_type(value)
+    kind = json_type(value)
     ok = kind in allowed or (kind == "integer" and "number" in allowed)
     if not ok:
-        raise WireError(f"{where} = {_short(value)} is a JSON {kind}: expected "
+        raise WireError(f"{where} = {quoted_json(value)} is a JSON {kind}: expected "
                         f"{' or '.join(allowed)}")
     if kind == "number" and not math.isfinite(value):
         raise WireError(f"{where} = {value!r}: JSON numbers must be finite")
-
-
-def _short(value) -> str:
-    try:
-        text = json.dumps(value)
-    except (TypeError, ValueError):
-        text = repr(value)
-    return text if len(text) <= 60 else text[:57] + "..."
-
-
-def _short_repr(value) -> str:
-    text = repr(value)
-    return text if len(text) <= 60 else text[:57] + "..."
 
 
 def _check_schema(value) -> None:
@@ -413,14 +413,14 @@ def _check_time_utc(value: str) -> None:
     try:
         t = _dt.datetime.fromisoformat(value)
     except ValueError:
-        raise WireError(f"header.time_utc = {_short(value)} is not an ISO 8601 time") from None
+        raise WireError(f"header.time_utc = {quoted_json(value)} is not an ISO 8601 time") from None
     if t.utcoffset() != _dt.timedelta(0):
-        raise WireError(f"header.time_utc = {_short(value)} is not UTC: end it with Z or +00:00")
+        raise WireError(f"header.time_utc = {quoted_json(value)} is not UTC: end it with Z or +00:00")
 
 
 def _check_array_list(descs) -> None:
     if not isinstance(descs, list):
-        raise WireError(f"header.arrays = {_short(descs)} is a JSON {_json_type(descs)}: "
+        raise WireError(f"header.arrays = {quoted_json(descs)} is a JSON {json_type(descs)}: "
                         "expected an array of {name, dtype, shape, unit} objects")
     if len(descs) > MAX_ARRAYS:
         raise WireError(f"header.arrays lists {len(descs)} arrays: at most {MAX_ARRAYS}")
@@ -428,25 +428,25 @@ def _check_array_list(descs) -> None:
     for i, d in enumerate(descs):
         where = f"header.arrays[{i}]"
         if not isinstance(d, dict):
-            raise WireError(f"{where} = {_short(d)} is a JSON {_json_type(d)}: expected an "
+            raise WireError(f"{where} = {quoted_json(d)} is a JSON {json_type(d)}: expected an "
                             "object {name, dtype, shape, unit}")
         _check_fields(where, d, {"name": _STR, "dtype": _STR, "shape": ("array",),
                                  "unit": _STR})
         if not d["name"]:
             raise WireError(f"{where}.name is empty")
         if d["name"] in names:
-            raise WireError(f"{where}.name = {_short_repr(d['name'])} appears twice: names are "
+            raise WireError(f"{where}.name = {quoted(d['name'])} appears twice: names are "
                             "unique")
         names.add(d["name"])
         if d["dtype"] not in DTYPES:
-            raise WireError(f"{where}.dtype = {_short(d['dtype'])}: allowed are "
+            raise WireError(f"{where}.dtype = {quoted_json(d['dtype'])}: allowed are "
                             f"{', '.join(DTYPES)}")
         if len(d["shape"]) > MAX_DIMS:
             raise WireError(f"{where}.shape has {len(d['shape'])} dimensions: at most "
                             f"{MAX_DIMS}")
         for n in d["shape"]:
-            if _json_type(n) != "integer" or n < 0:
-                raise WireError(f"{where}.shape = {_short(d['shape'])}: expected a list of "
+            if json_type(n) != "integer" or n < 0:
+                raise WireError(f"{where}.shape = {quoted_json(d['shape'])}: expected a list of "
                                 "non-negative integers")
 
 
@@ -464,7 +464,7 @@ def _check_spectrum_arrays(header: dict) -> None:
             raise WireError(f"spectrum array {name!r} has unit {d['unit']!r}: expected "
                             f"{want_unit!r}")
         if len(d["shape"]) != 1 or d["shape"][0] < 1:
-            raise WireError(f"spectrum array {name!r} has shape {_short(d['shape'])}: expected "
+            raise WireError(f"spectrum array {name!r} has shape {quoted_json(d['shape'])}: expected "
                             "[nchan] with nchan >= 1")
         if nchan is None:
             nchan = d["shape"][0]
@@ -497,7 +497,7 @@ def validate_header(topic: str, header: dict) -> None:
     if topic not in TOPICS:
         raise WireError(f"topic {topic!r} is unknown: expected one of {', '.join(TOPICS)}")
     if not isinstance(header, dict):
-        raise WireError(f"header is a JSON {_json_type(header)}: expected an object")
+        raise WireError(f"header is a JSON {json_type(header)}: expected an object")
     _check_fields("header", header, _COMMON)
     _check_schema(header["schema"])
     if "seq" in header:
@@ -514,7 +514,7 @@ def validate_header(topic: str, header: dict) -> None:
     _check_fields("header", header, _FIELDS[topic])
     for (t, key), allowed in _CHOICES.items():
         if t == topic and header[key] not in allowed:
-            raise WireError(f"header.{key} = {_short(header[key])}: allowed are "
+            raise WireError(f"header.{key} = {quoted_json(header[key])}: allowed are "
                             f"{', '.join(allowed)}")
     if topic == "spectrum":
         for key in _FRACTIONS:
@@ -524,7 +524,7 @@ def validate_header(topic: str, header: dict) -> None:
     if topic == "status":
         _check_fields("header.pointing", header["pointing"], _POINTING)
         if header["pointing"]["frame"] not in _POINTING_FRAMES:
-            raise WireError(f"header.pointing.frame = {_short(header['pointing']['frame'])}: "
+            raise WireError(f"header.pointing.frame = {quoted_json(header['pointing']['frame'])}: "
                             f"allowed are {', '.join(_POINTING_FRAMES)}")
         for name, count in header["drops"].items():
             _check_type(f"header.drops.{name}", count, _INT)
@@ -540,10 +540,10 @@ def validate_header(topic: str, header: dict) -> None:
         band = rfi.get("uncovered_hz")
         if band is not None and not (isinstance(band, list) and len(band) == 2 and all(
                 isinstance(f, (int, float)) and not isinstance(f, bool) for f in band)):
-            raise WireError(f"header.rfi.uncovered_hz = {_short(band)}: expected [first, last] "
+            raise WireError(f"header.rfi.uncovered_hz = {quoted_json(band)}: expected [first, last] "
                             "sky frequencies in Hz, or null")
     if topic == "event" and ("\n" in header["text"] or "\r" in header["text"]):
-        raise WireError(f"header.text = {_short(header['text'])}: expected one line")
+        raise WireError(f"header.text = {quoted_json(header['text'])}: expected one line")
 
 
 # ----------------------------------------------------------------------------------------------
@@ -672,12 +672,6 @@ def _depth(value) -> int:
     return deepest
 
 
-def one_line(text: str, limit: int = MAX_ERROR_CHARS) -> str:
-    """``text`` on one line (control characters as spaces), cut to ``limit`` characters."""
-    flat = " ".join("".join(c if c.isprintable() else " " for c in text[: 4 * limit]).split())
-    return flat if len(flat) <= limit else flat[: limit - 3] + "..."
-
-
 def decode(frames) -> Message:
     """Read one message, checking it against the schema.
 
@@ -703,12 +697,12 @@ def decode(frames) -> Message:
     try:
         return _decode(frames)
     except WireError as exc:
-        raise WireError(one_line(str(exc))) from None
+        raise WireError(one_line(str(exc), MAX_ERROR_CHARS)) from None
     except RecursionError:
         raise WireError(f"header nests too deeply: at most {MAX_DEPTH} levels") from None
     except (ValueError, TypeError, OverflowError, MemoryError) as exc:
         # e.g. an integer longer than Python converts (ValueError): refused, never raised on
-        raise WireError(one_line(f"message not usable: {type(exc).__name__}: {exc}")) \
+        raise WireError(one_line(f"message not usable: {type(exc).__name__}: {exc}", MAX_ERROR_CHARS)) \
             from None
 
 
@@ -747,7 +741,7 @@ def _decode(frames) -> Message:
         raise WireError(f"{topic} header is not JSON: {exc.msg} at character {exc.pos}") \
             from None
     if not isinstance(header, dict):
-        raise WireError(f"{topic} header is a JSON {_json_type(header)}: expected an object")
+        raise WireError(f"{topic} header is a JSON {json_type(header)}: expected an object")
     if _depth(header) > MAX_DEPTH:
         raise WireError(f"{topic} header nests too deeply: at most {MAX_DEPTH} levels")
     # the version first, so that a newer schema is reported as such and not as a missing field
@@ -764,8 +758,8 @@ def _decode(frames) -> Message:
         count = math.prod(d["shape"])
         want = count * _ITEMSIZE[d["dtype"]]
         if buf.nbytes != want:
-            raise WireError(f"{topic} array {_short_repr(d['name'])} has {buf.nbytes} bytes: shape "
-                            f"{_short(d['shape'])} of {d['dtype']} needs "
+            raise WireError(f"{topic} array {quoted(d['name'])} has {buf.nbytes} bytes: shape "
+                            f"{quoted_json(d['shape'])} of {d['dtype']} needs "
                             f"{want if want < 10 ** 30 else 'more'}")
         dt = np.dtype(d["dtype"])
         arr = np.frombuffer(buf, dtype=dt, count=count).reshape(d["shape"])
