@@ -66,6 +66,7 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--seconds", type=_positive_seconds, default=60.0, metavar="S",
                    help="observing time (default 60)")
     d.add_argument("--out", metavar="DIR", default="spinflip-data", help="where the scan goes")
+    d.add_argument("--fast", action="store_true", help=argparse.SUPPRESS)  # tests: sim time
     c = sub.add_parser("ctl", help="send a command to a running daemon (its control socket)")
     c.add_argument("--connect", metavar="ENDPOINT", default=DEFAULT_CONTROL_ENDPOINT,
                    help=f"the daemon's control socket (default {DEFAULT_CONTROL_ENDPOINT})")
@@ -226,7 +227,7 @@ def _cmd_watch(args) -> int:
 
 def _cmd_demo(args) -> int:
     from spinflip.tui.app import demo_main
-    return demo_main(seconds=args.seconds, out_dir=args.out)
+    return demo_main(seconds=args.seconds, out_dir=args.out, fast=args.fast)
 
 
 def _cmd_ctl(args) -> int:
@@ -241,7 +242,8 @@ def _cmd_keys(args) -> int:
 
 def _cmd_collect(args) -> int:
     from spinflip.daemon.live.collect import main_collect
-    return main_collect(args)
+    return main_collect(args.stations, relay=args.relay, archive=args.archive, keys=args.keys,
+                        duration=args.duration)
 
 
 def _cmd_inspect(args) -> int:

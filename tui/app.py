@@ -47,7 +47,6 @@ rich documentation: ``rich.live.Live`` (``screen=True``: alternate screen).
 
 from __future__ import annotations
 
-import argparse
 import contextlib
 import os
 import select
@@ -737,37 +736,6 @@ def demo_main(seconds: float = 60, out_dir="spinflip-data", fast: bool = False,
         shutil.rmtree(work, ignore_errors=True)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """``python -m spinflip.tui.app watch|demo ...`` (the same options as ``spinflip``)."""
-    p = argparse.ArgumentParser(prog="python -m spinflip.tui.app",
-                                description="spinflip's terminal UI")
-    sub = p.add_subparsers(dest="command", required=True)
-    w = sub.add_parser("watch", help="live screen of a running daemon")
-    w.add_argument("--connect", metavar="ENDPOINT", default=DEFAULT_DATA_ENDPOINT,
-                   help=f"the daemon's data socket (default {DEFAULT_DATA_ENDPOINT})")
-    w.add_argument("--control", metavar="ENDPOINT", default=DEFAULT_CONTROL_ENDPOINT,
-                   help=f"the daemon's control socket (default {DEFAULT_CONTROL_ENDPOINT})")
-    w.add_argument("--keys", metavar="DIR",
-                   help="client CURVE keys (spinflip keys DIR --client NAME)")
-    d = sub.add_parser("demo", help="observe the simulated sky for a while and watch it")
-    d.add_argument("--seconds", type=float, default=60.0, metavar="S",
-                   help="observing time in seconds (default 60)")
-    d.add_argument("--out", metavar="DIR", default="spinflip-data",
-                   help="output folder (default spinflip-data)")
-    d.add_argument("--fast", action="store_true", help="simulated time faster than real time")
-    return p
-
-
-def main(argv=None) -> int:
-    args = build_parser().parse_args(argv)
-    try:
-        if args.command == "watch":
-            return watch_main(args.connect, args.control, args.keys)
-        return demo_main(args.seconds, args.out, fast=args.fast)
-    except ValueError as exc:
-        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
-        return 2
-
-
-if __name__ == "__main__":
+if __name__ == "__main__":   # ``python -m spinflip.tui.app watch|demo ...``: the one command line
+    from spinflip.cli import main
     sys.exit(main())

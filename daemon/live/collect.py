@@ -615,31 +615,23 @@ def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) 
 # ----------------------------------------------------------------------------------------------
 # command line
 # ----------------------------------------------------------------------------------------------
-def add_collect_arguments(parser) -> None:
-    """The options of ``spinflip collect`` on an argparse (sub)parser; see :func:`main_collect`."""
-    parser.add_argument("stations", nargs="+", metavar="NAME=ENDPOINT",
-                        help="a station's data socket, e.g. dish1=tcp://192.168.1.20:5621")
-    parser.add_argument("--relay", metavar="ENDPOINT",
-                        help="re-publish everything here with the station's name "
-                        "(loopback or ipc:// only), e.g. tcp://127.0.0.1:5631")
-    parser.add_argument("--archive", metavar="DIR",
-                        help="append every integration to DIR/NAME/spectra-YYYYMMDD.jsonl/.bin")
-    parser.add_argument("--keys", metavar="DIR",
-                        help="CURVE client keys (DIR/client.key, client.key_secret, "
-                        "server.key; DIR/NAME/ for a station's own)")
-    parser.add_argument("--duration", type=float, metavar="S",
-                        help="stop after S seconds; default: until Ctrl-C or SIGTERM")
-
-
-def main_collect(args) -> int:
-    """Run ``spinflip collect`` from parsed options; returns the exit code.
+def main_collect(stations: list[str], relay: str | None = None, archive: str | None = None,
+                 keys: str | None = None, duration: float | None = None) -> int:
+    """Run ``spinflip collect`` (its options are parsed by :mod:`spinflip.cli`); returns the
+    exit code.
 
     Parameters
     ----------
-    args : argparse.Namespace
-        ``stations`` (list of "NAME=ENDPOINT" strings), ``relay`` (str or None),
-        ``archive`` (str or None), ``keys`` (str or None), ``duration`` (float or None), as
-        :func:`add_collect_arguments` defines them.
+    stations : list of str
+        ``"NAME=ENDPOINT"`` of each station.
+    relay : str or None
+        Endpoint to re-publish everything on.
+    archive : str or None
+        Folder to store every received integration in.
+    keys : str or None
+        Folder of CURVE client keys.
+    duration : float or None
+        Seconds to collect; None: until SIGINT or SIGTERM.
 
     Returns
     -------
@@ -656,20 +648,18 @@ def main_collect(args) -> int:
     stop_event = threading.Event()
     old_handlers = {}
     try:
-        stations = [parse_station(t) for t in args.stations]
-        archive = Path(args.archive) if getattr(args, "archive", None) else None
-        keys = Path(args.keys) if getattr(args, "keys", None) else None
-        relay = getattr(args, "relay", None)
-        duration = getattr(args, "duration", None)
-        _check_args(stations, relay, duration)
+        parsed = [parse_station(t) for t in stations]
+        archive_dir = Path(archive) if archive else None
+        keys_dir = Path(keys) if keys else None
+        _check_args(parsed, relay, duration)
         if threading.current_thread() is threading.main_thread():
             for sig in (signal.SIGINT, signal.SIGTERM):
                 old_handlers[sig] = signal.signal(sig, lambda *_: stop_event.set())
-        where = "; ".join(f"{n} {e}" for n, e in stations)
+        where = "; ".join(f"{n} {e}" for n, e in parsed)
         print(f"spinflip collect: from {where}"
               + (f"; relaying on {relay}" if relay else "")
-              + (f"; archiving to {archive}" if archive else ""), flush=True)
-        report = run_collect(stations, relay, archive, keys, duration, stop_event,
+              + (f"; archiving to {archive_dir}" if archive_dir else ""), flush=True)
+        report = run_collect(parsed, relay, archive_dir, keys_dir, duration, stop_event,
                              log_line=lambda s: print(f"spinflip collect: {s}",
                                                       file=sys.stderr, flush=True))
     except ValueError as exc:
