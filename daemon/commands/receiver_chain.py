@@ -131,7 +131,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Sequence
 
-from spinflip.daemon.calibration.loads import T0_K, noise_figure_db, noise_temperature_k
+from spinflip.daemon.calibration.y_factor import (
+    T0_K,
+    noise_figure_db,
+    noise_temperature_k,
+)
 from spinflip.daemon.error_line import quoted
 from spinflip.daemon.products.line_integral import (
     K_SWITCHED,
