@@ -44,6 +44,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.dsp.block import Block
 
@@ -85,7 +86,7 @@ def line_free_channels(tsys_chan_k: np.ndarray, usable: np.ndarray) -> np.ndarra
         if vals.size < 8:
             break
         med = np.median(vals)
-        sigma = 1.4826 * np.median(np.abs(vals - med))
+        sigma = median_abs_deviation(vals, scale="normal")   # 1.4826 MAD
         new = good & (sm <= med + _CLIP_SIGMA * sigma)
         if np.array_equal(new, keep):
             break

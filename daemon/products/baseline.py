@@ -50,14 +50,12 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.polynomial import Polynomial
+from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
 
 #: Highest polynomial order accepted.
 MAX_ORDER = 8
-
-#: MAD -> Gaussian sigma, 1 / Phi^-1(3/4) (Rousseeuw & Croux 1993, from memory).
-MAD_TO_SIGMA = 1.4826
 
 _SCALED_WINDOW = (-1.0, 1.0)
 
@@ -201,7 +199,7 @@ def fit_baseline(data_k, flagged, x, order: int, windows=None, clip_sigma: float
             break
         resid_k = data - poly(xs)
         m_k = np.median(resid_k[keep])
-        sigma_k = MAD_TO_SIGMA * np.median(np.abs(resid_k[keep] - m_k))
+        sigma_k = median_abs_deviation(resid_k[keep], scale="normal")   # 1.4826 MAD
         if sigma_k <= sigma_floor_k:
             converged = True
             break

@@ -28,8 +28,8 @@ Common practice in radio astronomy for time-domain blanking of impulsive interfe
 from __future__ import annotations
 
 import numpy as np
+from scipy.stats import median_abs_deviation
 
-_MAD_TO_SIGMA = 1.4826
 _LONG_BURST_RATIO = 1.5
 CHUNK_SAMPLES = 512
 
@@ -99,7 +99,7 @@ class ImpulseBlanker:
                 blank[:] = True
                 return blank, 1                   # the whole block; keep the old level
             self._levels[state] = level
-            sigma = _MAD_TO_SIGMA * float(np.median(np.abs(e - level)))
+            sigma = float(median_abs_deviation(e, scale="normal"))       # 1.4826 MAD
             hit = e > level + self.sigma * sigma if sigma > 0 else np.zeros(e.size, bool)
             if hit.any():
                 idx = np.flatnonzero(hit)
