@@ -65,13 +65,7 @@ and what is allowed.
 
 References
 ----------
-Friis, H. T. 1944, Proc. IRE 32, 419 (noise figures of radio receivers; from memory).
-IRE Standards on Methods of Measuring Noise in Linear Twoports, Proc. IRE 48, 60 (1960):
-T0 = 290 K (from memory).
-Wilson, T. L., Rohlfs, K. & Huttemeister, S., *Tools of Radio Astronomy* (radiometer equation,
-switched measurements, antenna temperature, passive loss as a noise source).
-Kutner, M. L. & Ulich, B. L. 1981, ApJ 250, 341 (temperature scales, efficiencies).
-Kalberla, P. M. W. et al. 2005, A&A 440, 775 (Leiden/Argentine/Bonn HI survey; from memory).
+Those of the maths are listed in :mod:`spinflip.daemon.calibration.cascade`.
 """
 
 from __future__ import annotations
