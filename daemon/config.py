@@ -272,17 +272,17 @@ def _cross_checks(cfg: dict) -> None:
     if sw["mode"] == "frequency" and abs(sw["offset_hz"]) < 4 * cfg["source"]["sample_rate"] / n:
         raise ConfigError(f"config switching.offset_hz = {sw['offset_hz']:g}: must be at least four "
                           "channels wide for frequency switching")
-    cal = cfg["calibration"]
-    if cal["cal_interval_s"] < 3 * cal["cal_on_s"]:
-        raise ConfigError(f"config calibration.cal_interval_s = {cal['cal_interval_s']:g}: must be "
-                          f"at least three times calibration.cal_on_s = {cal['cal_on_s']:g} (the "
+    calib = cfg["calibration"]
+    if calib["cal_interval_s"] < 3 * calib["cal_on_s"]:
+        raise ConfigError(f"config calibration.cal_interval_s = {calib['cal_interval_s']:g}: must "
+                          f"be at least three times calibration.cal_on_s = {calib['cal_on_s']:g} (the "
                           "noise source needs off time on both sides of each firing)")
-    if cal["switch"] == "command":
+    if calib["switch"] == "command":
         for key, what in (("switch_on_cmd", "on"), ("switch_off_cmd", "off")):
-            if not cal[key].strip():
+            if not calib[key].strip():
                 raise ConfigError(f"config calibration.{key} is empty: calibration.switch = "
                                   f"'command' needs a command that turns the noise source {what}")
-    if cal["switch"] == "gpio" and cal["gpio_line"] < 0:
+    if calib["switch"] == "gpio" and calib["gpio_line"] < 0:
         raise ConfigError("config calibration.gpio_line is not given: calibration.switch = 'gpio' "
                           "needs the line offset (0-1023) on calibration.gpio_chip")
     for key in ("data", "control"):

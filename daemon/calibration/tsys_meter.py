@@ -156,7 +156,7 @@ class TsysMeasurement:
 @dataclass
 class _Cycle:
     number: int
-    cal: bool | None
+    noise_source_on: bool | None   # its state over the whole cycle; None: mixed or unknown
     s1: dict = field(default_factory=dict)    # phase -> sum of power spectra
     m: dict = field(default_factory=dict)     # phase -> number of spectra
     t_first_s: float = 0.0
@@ -212,8 +212,8 @@ class TsysMeter:
         if self._cycle is None:
             self._cycle = _Cycle(number, block.cal_on, t_first_s=block.t0_unix_s)
         c = self._cycle
-        if block.cal_on != c.cal:
-            c.cal = None          # a cycle with mixed or unknown states is no use
+        if block.cal_on != c.noise_source_on:
+            c.noise_source_on = None   # a cycle with mixed or unknown states is no use
         if np.any(np.asarray(m) > 0):
             c.s1[block.phase] = c.s1.get(block.phase, 0.0) + s1
             c.m[block.phase] = c.m.get(block.phase, 0) + np.asarray(m, dtype=float)
@@ -224,7 +224,7 @@ class TsysMeter:
 
     def _close(self) -> TsysMeasurement | None:
         c, self._cycle = self._cycle, None
-        if c.cal is None:                       # the switch failed: drop the firing
+        if c.noise_source_on is None:           # the switch failed: drop the firing
             fault = bool(self._on) or not self._fault
             self._fault = True
             self._on, self._off_before = [], None
@@ -233,7 +233,7 @@ class TsysMeter:
                                        "noise source state unknown (its switch failed): "
                                        "no system temperature from this firing")
             return None
-        if c.cal:
+        if c.noise_source_on:
             self._on.append(c)
             return None
         self._fault = False

@@ -194,9 +194,9 @@ class LoadsSession:
         self.cfg["switching"]["mode"] = "none"          # hold the signal LO
         self.cfg["calibration"]["tsys_from"] = "fixed"  # the schedule never fires the source
         self.source = make_source(self.cfg, fast=fast)
-        cal = cfg["calibration"]
+        calib = cfg["calibration"]
         try:
-            self.switch = make_noise_switch(cal)
+            self.switch = make_noise_switch(calib)
         except ValueError as exc:
             raise ConfigError(str(exc)) from None
         self.is_sim = self.source.kind == "sim"
@@ -207,8 +207,8 @@ class LoadsSession:
         self.spectrometer = Spectrometer(sp["channels"], sp["method"], sp["taps"])
         self.usable = usable_channels(sp["channels"])
         self.procedure = LoadsProcedure(
-            self._measure, prompt, t_hot_k=cal["t_hot_k"], t_cold_k=cal["t_cold_k"],
-            seconds=cal["loads_s"],
+            self._measure, prompt, t_hot_k=calib["t_hot_k"], t_cold_k=calib["t_cold_k"],
+            seconds=calib["loads_s"],
             set_noise_source=self._set_noise_source if has_noise_source else None)
 
     def _set_noise_source(self, on: bool) -> None:
