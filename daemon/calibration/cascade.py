@@ -166,7 +166,7 @@ def friis_cascade_k(noise_temps_k: Sequence[float], gains: Sequence[float]) -> C
     if len(temps) != len(gs) or not temps:
         raise ValueError(f"friis_cascade_k needs one gain per stage and at least one stage; got "
                          f"{len(temps)} temperatures and {len(gs)} gains")
-    for i, (t, g) in enumerate(zip(temps, gs)):
+    for i, (t, g) in enumerate(zip(temps, gs, strict=True)):
         if not (math.isfinite(t) and t >= 0.0):
             raise ValueError(f"stage {i} noise temperature = {t!r} K: expected a finite "
                              "number >= 0")
@@ -174,7 +174,7 @@ def friis_cascade_k(noise_temps_k: Sequence[float], gains: Sequence[float]) -> C
             raise ValueError(f"stage {i} gain = {g!r}: expected a finite linear gain > 0")
     contributions, before, after = [], [], []
     g_before = 1.0
-    for t, g in zip(temps, gs):
+    for t, g in zip(temps, gs, strict=True):
         before.append(g_before)
         contributions.append(t / g_before)                  # T_i / (G_1 ... G_{i-1})
         g_before *= g
