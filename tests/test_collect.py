@@ -26,8 +26,8 @@ import zmq
 from spinflip.cli import build_parser
 from spinflip.daemon.live import collect
 from spinflip.daemon.live import schema
-from spinflip.daemon.live.collect import (SpectrumArchive, main_collect, parse_station, read_spectra,
-                                     run_collect)
+from spinflip.daemon.live.collect import main_collect, parse_station, run_collect
+from spinflip.daemon.live.spectrum_archive import SpectrumArchive, read_spectra
 
 REST_HZ = 1_420_405_751.768          # HI rest frequency (Hellwig et al. 1970, from memory)
 DAY = "2025-03-01"
