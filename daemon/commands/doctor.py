@@ -64,8 +64,8 @@ DISK_FAIL_BYTES = 100_000_000
 DISK_FAIL_H = 1.0
 DISK_WARN_H = 24.0
 #: Per row and channel the archive stores about three 4-byte arrays (DATA, CHANEXP, FLAGGED
-#: rounded up; see archive.py), and the journal and the FITS file hold the scan twice while
-#: it is turned over; so bytes/s = 2 * 3 * 4 * channels / integration_s (an upper estimate).
+#: rounded up; see storage/fits_file.py), and the journal and the FITS file hold the scan twice
+#: while it is turned over; so bytes/s = 2 * 3 * 4 * channels / integration_s (an upper estimate).
 ARRAYS_PER_ROW = 3
 BYTES_PER_VALUE = 4
 COPIES_ON_DISK = 2
