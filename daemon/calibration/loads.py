@@ -20,8 +20,6 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import json
-import math
-import numbers
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -153,12 +151,7 @@ def _typed(key: str, value, kind: type, where: str):
             raise LoadsError(f"{where}: key {key!r} = {value!r}: expected printable ASCII text "
                              f"of 1 to {_MAX_TEXT} characters")
         return value
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise LoadsError(f"{where}: key {key!r} = {value!r}: expected a number")
-    v = float(value)
-    if not math.isfinite(v):
-        raise LoadsError(f"{where}: key {key!r} = {v!r}: expected a finite number")
-    return v
+    return _finite(value, f"{where}: key {key!r}")
 
 
 def check_meta(meta: dict, where: str = "meta") -> dict:
