@@ -13,6 +13,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
+from spinflip.daemon.error_line import quoted
 from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
 from spinflip.daemon.toml_file import TomlFileError, read_toml
 
@@ -43,6 +44,11 @@ class Key:
             return f"{name} >= {self.lo:g}"
         return name
 
+
+#: Default live data endpoint of the daemon (``publish.data``; ``spinflip watch --connect``).
+DEFAULT_DATA_ENDPOINT = "tcp://127.0.0.1:5621"
+#: Default control endpoint of the daemon (``publish.control``; ``spinflip ctl --connect``).
+DEFAULT_CONTROL_ENDPOINT = "tcp://127.0.0.1:5622"
 
 #: The schema: section -> key -> Key. The site, telescope and sky are fictional defaults.
 SCHEMA: dict[str, dict[str, Key]] = {
@@ -153,8 +159,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
                        " writes (full disk), MB; past it new integrations are dropped and said so"),
     },
     "publish": {
-        "data": Key("tcp://127.0.0.1:5621", str, doc="live data (PUB) endpoint; '' for none"),
-        "control": Key("tcp://127.0.0.1:5622", str, doc="control (ROUTER, answers REQ clients) endpoint; '' for none"),
+        "data": Key(DEFAULT_DATA_ENDPOINT, str, doc="live data (PUB) endpoint; '' for none"),
+        "control": Key(DEFAULT_CONTROL_ENDPOINT, str, doc="control (ROUTER, answers REQ clients) endpoint; '' for none"),
         "keys": Key("", str, doc="folder of CURVE keys (spinflip keys); '' for none"),
         "allow_insecure": Key(False, bool, doc="bind beyond loopback without keys (warned)"),
     },
@@ -173,19 +179,19 @@ def _check(section: str, key: str, value: Any) -> Any:
     if spec.kind is float and isinstance(value, int) and not isinstance(value, bool):
         value, ok_type = float(value), True
     if not ok_type:
-        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     if spec.kind is float and not math.isfinite(value):
-        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
-        raise ConfigError(f"config {where} = {_shown(value)}: expected printable ASCII (it goes into FITS headers)")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected printable ASCII (it goes into FITS headers)")
     if spec.kind is list:
         if key == "spurs_hz":
             return _check_numbers(where, value)
         return _check_windows(where, value)
     if spec.choices and value not in spec.choices:
-        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
-        raise ConfigError(f"config {where} = {_shown(value)}: expected {spec.allowed()}")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     return value
 
 
@@ -193,7 +199,7 @@ def _check_numbers(where: str, value: list) -> list:
     """A list of finite numbers."""
     for x in value:
         if isinstance(x, bool) or not isinstance(x, (int, float)) or not math.isfinite(x):
-            raise ConfigError(f"config {where} = {_shown(value)}: expected a list of numbers, e.g. "
+            raise ConfigError(f"config {where} = {quoted(value)}: expected a list of numbers, e.g. "
                               f"[-300000, 450000]; {x!r} is not")
     return [float(x) for x in value]
 
@@ -206,7 +212,7 @@ def _check_windows(where: str, value: list) -> list:
               and all(isinstance(x, (int, float)) and not isinstance(x, bool)
                       and math.isfinite(x) for x in w))
         if not ok or not w[0] < w[1]:
-            raise ConfigError(f"config {where} = {_shown(value)}: expected a list of [lo, hi] pairs of "
+            raise ConfigError(f"config {where} = {quoted(value)}: expected a list of [lo, hi] pairs of "
                               f"numbers with lo < hi, e.g. [[-250, -150], [180, 250]]; {w!r} is not")
         out.append([float(w[0]), float(w[1])])
     return out
@@ -229,12 +235,6 @@ def merge(cfg: dict, overrides: dict, origin: str = "config") -> dict:
     return cfg
 
 
-def _shown(value: Any, limit: int = 60) -> str:
-    """``repr(value)``, cut to ``limit`` characters: an error line never carries a whole file."""
-    text = repr(value)
-    return text if len(text) <= limit else text[:limit - 5] + " ...]"
-
-
 def utc_start(text: str) -> str:
     """``sim.start``: ``"now"`` or a UTC ISO 8601 time, returned as ``YYYY-MM-DDTHH:MM:SS[.f]``.
 
@@ -248,10 +248,10 @@ def utc_start(text: str) -> str:
     try:
         t = _dt.datetime.fromisoformat(text)
     except ValueError:
-        raise ConfigError(f"config sim.start = {_shown(text)}: expected 'now' or a UTC time "
+        raise ConfigError(f"config sim.start = {quoted(text)}: expected 'now' or a UTC time "
                           "in ISO 8601, e.g. '2026-03-01T04:00:00'") from None
     if t.utcoffset() not in (None, _dt.timedelta(0)):
-        raise ConfigError(f"config sim.start = {_shown(text)}: expected a UTC time (no offset "
+        raise ConfigError(f"config sim.start = {quoted(text)}: expected a UTC time (no offset "
                           "other than Z or +00:00)")
     return t.replace(tzinfo=None).isoformat()
 
@@ -272,24 +272,24 @@ def _cross_checks(cfg: dict) -> None:
     if sw["mode"] == "frequency" and abs(sw["offset_hz"]) < 4 * cfg["source"]["sample_rate"] / n:
         raise ConfigError(f"config switching.offset_hz = {sw['offset_hz']:g}: must be at least four "
                           "channels wide for frequency switching")
-    cal = cfg["calibration"]
-    if cal["cal_interval_s"] < 3 * cal["cal_on_s"]:
-        raise ConfigError(f"config calibration.cal_interval_s = {cal['cal_interval_s']:g}: must be "
-                          f"at least three times calibration.cal_on_s = {cal['cal_on_s']:g} (the "
+    calib = cfg["calibration"]
+    if calib["cal_interval_s"] < 3 * calib["cal_on_s"]:
+        raise ConfigError(f"config calibration.cal_interval_s = {calib['cal_interval_s']:g}: must "
+                          f"be at least three times calibration.cal_on_s = {calib['cal_on_s']:g} (the "
                           "noise source needs off time on both sides of each firing)")
-    if cal["switch"] == "command":
+    if calib["switch"] == "command":
         for key, what in (("switch_on_cmd", "on"), ("switch_off_cmd", "off")):
-            if not cal[key].strip():
+            if not calib[key].strip():
                 raise ConfigError(f"config calibration.{key} is empty: calibration.switch = "
                                   f"'command' needs a command that turns the noise source {what}")
-    if cal["switch"] == "gpio" and cal["gpio_line"] < 0:
+    if calib["switch"] == "gpio" and calib["gpio_line"] < 0:
         raise ConfigError("config calibration.gpio_line is not given: calibration.switch = 'gpio' "
                           "needs the line offset (0-1023) on calibration.gpio_chip")
     for key in ("data", "control"):
         ep = cfg["publish"][key]
         if ep and not ep.startswith(("tcp://", "ipc://", "inproc://")):
             raise ConfigError(f"config publish.{key} = {ep!r}: expected a ZeroMQ endpoint such "
-                              "as 'tcp://127.0.0.1:5621', or '' for none")
+                              f"as {DEFAULT_DATA_ENDPOINT!r}, or '' for none")
     if cfg["publish"]["data"] and cfg["publish"]["data"] == cfg["publish"]["control"]:
         raise ConfigError(f"config publish.control = {cfg['publish']['control']!r}: must differ "
                           "from publish.data")

@@ -12,7 +12,11 @@ import json
 import sys
 from pathlib import Path
 
-from spinflip.daemon.config import ConfigError
+from spinflip.daemon.config import (
+    DEFAULT_CONTROL_ENDPOINT,
+    DEFAULT_DATA_ENDPOINT,
+    ConfigError,
+)
 
 
 class _Parser(argparse.ArgumentParser):
@@ -53,8 +57,8 @@ def build_parser() -> argparse.ArgumentParser:
                     help="do not wait for Enter at each step (the loads are already in place, "
                     "or the simulator places them)")
     w = sub.add_parser("watch", help="the terminal UI against a running daemon")
-    w.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5621",
-                   help="the daemon's data socket (default tcp://127.0.0.1:5621)")
+    w.add_argument("--connect", metavar="ENDPOINT", default=DEFAULT_DATA_ENDPOINT,
+                   help=f"the daemon's data socket (default {DEFAULT_DATA_ENDPOINT})")
     w.add_argument("--control", metavar="ENDPOINT",
                    help="its control socket (default: the data socket's host, port + 1)")
     w.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
@@ -62,9 +66,10 @@ def build_parser() -> argparse.ArgumentParser:
     d.add_argument("--seconds", type=_positive_seconds, default=60.0, metavar="S",
                    help="observing time (default 60)")
     d.add_argument("--out", metavar="DIR", default="spinflip-data", help="where the scan goes")
+    d.add_argument("--fast", action="store_true", help=argparse.SUPPRESS)  # tests: sim time
     c = sub.add_parser("ctl", help="send a command to a running daemon (its control socket)")
-    c.add_argument("--connect", metavar="ENDPOINT", default="tcp://127.0.0.1:5622",
-                   help="the daemon's control socket (default tcp://127.0.0.1:5622)")
+    c.add_argument("--connect", metavar="ENDPOINT", default=DEFAULT_CONTROL_ENDPOINT,
+                   help=f"the daemon's control socket (default {DEFAULT_CONTROL_ENDPOINT})")
     c.add_argument("--keys", metavar="DIR", help="client CURVE keys (spinflip keys DIR --client NAME)")
     c.add_argument("--timeout", type=_positive_seconds, default=5.0, metavar="S",
                    help="seconds to wait for the reply (default 5)")
@@ -222,7 +227,7 @@ def _cmd_watch(args) -> int:
 
 def _cmd_demo(args) -> int:
     from spinflip.tui.app import demo_main
-    return demo_main(seconds=args.seconds, out_dir=args.out)
+    return demo_main(seconds=args.seconds, out_dir=args.out, fast=args.fast)
 
 
 def _cmd_ctl(args) -> int:
@@ -237,7 +242,8 @@ def _cmd_keys(args) -> int:
 
 def _cmd_collect(args) -> int:
     from spinflip.daemon.live.collect import main_collect
-    return main_collect(args)
+    return main_collect(args.stations, relay=args.relay, archive=args.archive, keys=args.keys,
+                        duration=args.duration)
 
 
 def _cmd_inspect(args) -> int:
@@ -261,8 +267,8 @@ def main(argv=None) -> int:
                "watch": _cmd_watch, "demo": _cmd_demo,
                "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,
                "soak": _cmd_soak}[args.command]
-    from spinflip.daemon.sources.base import SourceError
     from spinflip.daemon.run.supervisor import WorkerFailed
+    from spinflip.daemon.sources.base import SourceError
     try:
         return handler(args)
     except (ConfigError, ValueError) as exc:     # bad input: configuration, options, files

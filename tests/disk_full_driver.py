@@ -25,7 +25,8 @@ def wait_for(cond, timeout_s=60.0):
 
 
 def main(work: Path) -> None:
-    from spinflip.daemon.storage import archive
+    from spinflip.daemon.storage.fits_file import read_scan
+    from spinflip.daemon.storage.journal import count_rows
     out = work / "out"
     out.mkdir(exist_ok=True)
     subprocess.run(["mount", "-t", "tmpfs", "-o", "size=2m", "spinflip-test", str(out)],
@@ -40,7 +41,7 @@ def main(work: Path) -> None:
     def rows_on_disk():
         """two rows in the journal"""
         js = list(out.glob("*.journal"))
-        return bool(js) and archive.count_rows(js[0]) >= 2
+        return bool(js) and count_rows(js[0]) >= 2
 
     def said(text):
         def cond():
@@ -70,7 +71,7 @@ def main(work: Path) -> None:
     files = sorted(p.name for p in out.iterdir())
     dates = []
     for f in sorted(out.glob("*.fits")):
-        dates += [str(d) for d in archive.read_scan(f)[1]["DATE-OBS"]]
+        dates += [str(d) for d in read_scan(f)[1]["DATE-OBS"]]
     print(json.dumps({"returncode": proc.returncode, "log": log_path.read_text(),
                       "files": files, "dates": dates, "full_s": t_freed - t_full}))
 

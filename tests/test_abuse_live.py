@@ -29,7 +29,7 @@ import pytest
 import zmq
 
 from abuse_server import status_header
-from spinflip.daemon.live import collect
+from spinflip.daemon.live import collect, spectrum_archive
 from spinflip.daemon.live import control
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.keys import keys_main
@@ -387,7 +387,7 @@ def test_collect_keeps_going_past_hostile_messages(tmp_path):
     a, b = report.stations["A"], report.stations["B"]
     assert a.decode_errors == len(hostile) and b.decode_errors == 0
     assert a.archived == row + 1 and b.archived == row + 1
-    assert len(collect.read_spectra(index_a)) == row + 1
+    assert len(spectrum_archive.read_spectra(index_a)) == row + 1
     assert lines and all(len(f"spinflip collect: {line}") <= 200 for line in lines), lines
 
 

@@ -26,7 +26,11 @@ from astropy.time import Time
 from astropy.wcs import WCS
 
 from spinflip.daemon.storage import archive
-from spinflip.daemon.storage.archive import ScanWriter, read_journal, read_scan, recover
+from spinflip.daemon.storage import journal as journal_format
+from spinflip.daemon.storage.archive import ScanWriter
+from spinflip.daemon.storage.fits_file import read_scan
+from spinflip.daemon.storage.journal import read_journal
+from spinflip.daemon.storage.recovery import recover
 from spinflip.daemon.commands.inspect import format_summary, summarize, velocity_axis_lsrk_m_s
 from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
 
@@ -155,13 +159,14 @@ import os, signal, sys
 from pathlib import Path
 import numpy as np
 from spinflip.daemon.storage import archive
+from spinflip.daemon.storage import journal as journal_format
 {make_row}
 out, n, mode = Path(sys.argv[1]), int(sys.argv[2]), sys.argv[3]
 w = archive.ScanWriter(out, "scan-crash", {header!r}, {nchan})
 for i in range(n):
     w.append(make_row(i, {nchan}))
 if mode == "half":  # die half-way through writing the next record
-    rec = archive._row_record(make_row(n, {nchan}), {nchan})
+    rec = journal_format._row_record(make_row(n, {nchan}), {nchan})
     os.write(w._fd, rec[: len(rec) // 2])
     os.fsync(w._fd)
 if mode == "exit":
@@ -184,7 +189,7 @@ def test_killed_writer_loses_nothing_that_was_appended(tmp_path, mode, caplog):
     n = 7
     journal = run_child(tmp_path, n, mode)
     assert journal.exists() and not (tmp_path / "scan-crash.fits").exists()
-    torn = len(archive._row_record(make_row(n, NCHAN), NCHAN)) // 2 if mode == "half" else 0
+    torn = len(journal_format._row_record(make_row(n, NCHAN), NCHAN)) // 2 if mode == "half" else 0
     contents = read_journal(journal)
     assert len(contents.rows) == n and contents.torn_bytes == torn
     assert archive.count_rows(journal) == n
@@ -209,7 +214,7 @@ def test_killed_before_any_row_leaves_no_file(tmp_path):
 def test_any_cut_inside_the_last_record_is_detected(tmp_path):
     w = write_scan(tmp_path, 3)
     full = w.journal_path.read_bytes()
-    last = len(archive._row_record(make_row(2, NCHAN), NCHAN))
+    last = len(journal_format._row_record(make_row(2, NCHAN), NCHAN))
     w.close()
     j = tmp_path / "cut.journal"
     for cut in [1, 4, 11, 12, 13, last // 2, last - 1]:

@@ -13,6 +13,7 @@ Outside references used below:
 from __future__ import annotations
 
 import argparse
+import inspect
 import json
 import os
 import threading
@@ -22,10 +23,11 @@ import numpy as np
 import pytest
 import zmq
 
+from spinflip.cli import build_parser
 from spinflip.daemon.live import collect
 from spinflip.daemon.live import schema
-from spinflip.daemon.live.collect import (SpectrumArchive, main_collect, parse_station, read_spectra,
-                                     run_collect)
+from spinflip.daemon.live.collect import main_collect, parse_station, run_collect
+from spinflip.daemon.live.spectrum_archive import SpectrumArchive, read_spectra
 
 REST_HZ = 1_420_405_751.768          # HI rest frequency (Hellwig et al. 1970, from memory)
 DAY = "2025-03-01"
@@ -390,7 +392,7 @@ def test_main_collect_runs_for_its_duration_and_reports(tmp_path, capsys):
         silent, endpoint = bound_xpub(ctx)
         args = argparse.Namespace(stations=[f"quiet={endpoint}"], relay=None,
                                   archive=str(tmp_path / "arch"), keys=None, duration=0.3)
-        assert main_collect(args) == 0
+        assert main_collect(**vars(args)) == 0
     finally:
         silent.close()
         ctx.term()
@@ -403,16 +405,18 @@ def test_main_collect_runs_for_its_duration_and_reports(tmp_path, capsys):
 def test_main_collect_bad_input_exits_2_with_one_line(capsys):
     args = argparse.Namespace(stations=["dish1=tcp://h:1", "oops"], relay=None, archive=None,
                               keys=None, duration=None)
-    assert main_collect(args) == 2
+    assert main_collect(**vars(args)) == 2
     err = capsys.readouterr().err
     assert err.count("\n") == 1 and err.startswith("spinflip collect: station 'oops'")
 
 
-def test_add_collect_arguments_matches_main_collect():
-    parser = argparse.ArgumentParser()
-    collect.add_collect_arguments(parser)
-    args = parser.parse_args(["a=tcp://h:1", "b=ipc:///x", "--relay", "tcp://127.0.0.1:5631",
-                              "--archive", "D", "--keys", "K", "--duration", "2.5"])
+def test_cli_collect_options_match_main_collect():
+    """The one command line's collect options are main_collect's parameters, by name."""
+    args = build_parser().parse_args(["collect", "a=tcp://h:1", "b=ipc:///x", "--relay",
+                                      "tcp://127.0.0.1:5631", "--archive", "D", "--keys", "K",
+                                      "--duration", "2.5"])
+    assert set(inspect.signature(main_collect).parameters) == \
+        {"stations", "relay", "archive", "keys", "duration"}
     assert (args.stations, args.relay, args.archive, args.keys, args.duration) == \
         (["a=tcp://h:1", "b=ipc:///x"], "tcp://127.0.0.1:5631", "D", "K", 2.5)
 

@@ -27,16 +27,15 @@ import numpy as np
 import pytest
 from rich.console import Console
 
-from spinflip.daemon.commands import doctor
+from spinflip.daemon.commands import doctor, station_probes
 from spinflip.daemon.commands.doctor import (
     Check,
-    ClockState,
     Roots,
     archive_rate_bytes_s,
     doctor_main,
-    find_dongles,
     run_checks,
 )
+from spinflip.daemon.commands.station_probes import ClockState, find_dongles
 
 SERIAL = "HF3-0001"
 
@@ -177,7 +176,7 @@ def test_dongle_ids_from_sysfs(tmp_path):
     assert n_usb == 3                                          # interfaces are not devices
     assert [(d.vendor, d.product, d.busnum, d.devnum, d.serial) for d in dongles] == [
         ("0bda", "2838", 2, 5, "00000001"), ("0bda", "2832", 3, 17, None)]
-    assert ("0bda", "2832") in doctor.RTL2832U_USB_IDS and ("0bda", "2838") in doctor.RTL2832U_USB_IDS
+    assert ("0bda", "2832") in station_probes.RTL2832U_USB_IDS and ("0bda", "2838") in station_probes.RTL2832U_USB_IDS
 
 
 def test_configured_serial_or_index_not_visible(tmp_path):
@@ -265,8 +264,8 @@ def test_kernel_clock_state_on_this_machine():
     # struct timex is 208 bytes on LP64 Linux (glibc/musl <sys/timex.h>); ours may be larger
     # (spare room), never smaller, or the kernel would write past it.
     if ctypes.sizeof(ctypes.c_long) == 8:
-        assert ctypes.sizeof(doctor._Timex) >= 208
-    state = doctor.kernel_clock_state()
+        assert ctypes.sizeof(station_probes._Timex) >= 208
+    state = station_probes.kernel_clock_state()
     assert state.synced in (True, False, None)
     if state.detail.startswith("kernel adjtimex"):
         assert state.synced is not None
@@ -425,10 +424,10 @@ def test_port_held_by_our_daemon_only_warns(tmp_path, taken_port):
 
 
 def test_spinflip_daemon_argv():
-    assert doctor._is_spinflip_daemon(["/opt/spinflip/bin/python", "/opt/spinflip/bin/spinflip",
+    assert station_probes._is_spinflip_daemon(["/opt/spinflip/bin/python", "/opt/spinflip/bin/spinflip",
                                        "run", "--config", "x.toml"])
-    assert doctor._is_spinflip_daemon(["python", "-m", "spinflip.cli", "demo"])
-    assert not doctor._is_spinflip_daemon(["python", "-m", "pytest", "/home/obs/spinflip"])
+    assert station_probes._is_spinflip_daemon(["python", "-m", "spinflip.cli", "demo"])
+    assert not station_probes._is_spinflip_daemon(["python", "-m", "pytest", "/home/obs/spinflip"])
 
 
 def test_port_endpoints_not_bindable(tmp_path):

@@ -24,6 +24,7 @@ from astropy.time import Time
 
 from cli_runner import live_config
 from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.journal import count_rows
 from spinflip.daemon import config
 from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.sources.sample_clock import SampleClock
@@ -72,7 +73,7 @@ def test_notify_ready_watchdog_and_sigterm_keeps_the_integration_in_progress(tmp
             except socket.timeout:
                 pass
             js = list(out.glob("*.journal"))
-            if js and archive.count_rows(js[0]) >= 1 and journal is None:
+            if js and count_rows(js[0]) >= 1 and journal is None:
                 journal, t_row = js[0], time.monotonic()
             if journal is not None and time.monotonic() - t_row > 1.0:
                 break                      # about half-way through the second integration
@@ -182,13 +183,13 @@ def test_store_holds_rows_while_the_disk_refuses_then_writes_them_in_order(tmp_p
     """ENOSPC (errno(3)) on the journal append: rows wait in memory, an error event says so,
     writing resumes by itself and the FITS file holds every row in order."""
     full = {"on": False}
-    real_write_all = archive._write_all
+    real_write_all = archive.write_all
 
     def write_all(fd, data):
         if full["on"]:
             raise OSError(errno.ENOSPC, "No space left on device")
         real_write_all(fd, data)
-    monkeypatch.setattr(archive, "_write_all", write_all)
+    monkeypatch.setattr(archive, "write_all", write_all)
     events = []
     store = ScanStore(tmp_path, 8, None, lambda sev, text: events.append((sev, text)),
                       hold_bytes=10_000_000, retry_s=0.05)
@@ -221,7 +222,7 @@ def test_store_bounds_its_memory_and_says_what_it_dropped(tmp_path, monkeypatch)
     store.start()
     store.put(OpenScan("scan-b", _HEADER))
     _wait(lambda: store.scan_name is not None)
-    monkeypatch.setattr(archive, "_write_all", write_all)
+    monkeypatch.setattr(archive, "write_all", write_all)
     for i in range(8):
         store.put(_row(i))
     _wait(lambda: store.dropped_rows + store.held_rows == 8)

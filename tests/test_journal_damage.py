@@ -25,9 +25,12 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from cli_runner import run_cli
-from spinflip.daemon.storage import archive
+from spinflip.daemon.storage import archive, recovery
 from spinflip.daemon import config
-from spinflip.daemon.storage.archive import ScanWriter, read_journal, read_scan, recover
+from spinflip.daemon.storage.archive import ScanWriter
+from spinflip.daemon.storage.fits_file import read_scan
+from spinflip.daemon.storage.journal import read_journal
+from spinflip.daemon.storage.recovery import recover
 from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.storage.writer import ScanStore
 from test_archive import HEADER, NCHAN, make_row
@@ -348,7 +351,7 @@ def test_unreadable_and_unrenamable_is_said_once_and_passed_over(tmp_path, monke
     monkeypatch.setattr(archive.os, "rename", rename)
     said, report = reporter()
     assert recover(tmp_path, report=report) == []
-    assert archive.finalise_journal(odd, report=report) is None   # the store's retry path
+    assert recovery.finalise_journal(odd, report=report) is None   # the store's retry path
     assert recover(tmp_path, report=report) == []
     (sev, text), = said
     assert sev == "error" and "nor rename it" in text and str(odd) in text

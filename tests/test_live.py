@@ -343,7 +343,7 @@ def test_curve_secured_daemon_serves_only_listed_clients(tmp_path):
 
 def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
     # two daemons pointing at different Galactic longitudes; collect relays and archives both
-    from spinflip.daemon.live.collect import read_spectra
+    from spinflip.daemon.live.spectrum_archive import read_spectra
     procs, stations = [], []
     for name, lon in (("north", 30.0), ("south", 90.0)):
         ports = {"data": free_loopback_port(), "control": free_loopback_port()}

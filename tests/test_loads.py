@@ -21,23 +21,25 @@ from astropy.io import fits
 import spinflip
 from spinflip.daemon.calibration import loads
 from spinflip.daemon.calibration.loads import (
-    LoadsError,
-    LoadsProcedure,
-    check_load_temperatures,
     check_record_age,
     check_record_matches,
-    gain_counts_per_k,
     header_cards,
     latest_record,
     load_record,
     make_record,
+    save_record,
+)
+from spinflip.daemon.calibration.y_factor import (
+    LoadsError,
+    check_load_temperatures,
+    gain_counts_per_k,
     noise_figure_db,
     noise_source_k_from_loads,
     noise_temperature_k,
     receiver_temperature_k,
-    save_record,
     y_factor,
 )
+from spinflip.daemon.commands.loads_session import LoadsProcedure
 
 #: 2026-12-02T15:30:00 UTC as POSIX seconds (checked against datetime in test_record_name_and_time).
 T_2026_12_02_1530_S = 1796225400.0

@@ -1,7 +1,7 @@
 """The terminal UI's state and panels (tui/state.py, tui/panels.py), rendered to plain text.
 
 Messages are made with the wire format's own ``encode`` and read back with ``decode``
-(daemon/live/schema.py), as a subscriber would see them. Panels and the screen are printed on
+(daemon/live/schema/), as a subscriber would see them. Panels and the screen are printed on
 ``rich.console.Console(record=True, width=W, height=H, color_system=None)`` and read back
 with ``export_text``.
 

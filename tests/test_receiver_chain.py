@@ -28,16 +28,18 @@ from rich.console import Console
 
 from spinflip.daemon.commands import receiver_chain as rc
 from spinflip.daemon.commands.chain_table import chain_main, render
-from spinflip.daemon.commands.receiver_chain import (
-    ProfileError,
+from spinflip.daemon.calibration.cascade import (
     beamwidth_deg,
-    chain_budget,
     friis_cascade_k,
-    load_profile,
     noise_power_dbm,
     passive_noise_temp_k,
-    profile_from_dict,
     sensitivity_k,
+)
+from spinflip.daemon.commands.receiver_chain import (
+    ProfileError,
+    chain_budget,
+    load_profile,
+    profile_from_dict,
     shipped_profiles,
 )
 

@@ -172,12 +172,12 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     proc = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "run", "--config",
                              str(cfg), "--out", str(out)],
                             stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-    from spinflip.daemon.storage import archive
+    from spinflip.daemon.storage.journal import count_rows
     journal = None
     deadline = time.monotonic() + 60
     while time.monotonic() < deadline:       # real-time pacing: wait for three finished rows
         js = list(out.glob("*.journal"))
-        if js and archive.count_rows(js[0]) >= 3:
+        if js and count_rows(js[0]) >= 3:
             journal = js[0]
             break
         time.sleep(0.1)
@@ -186,7 +186,7 @@ def test_kill_9_then_restart_recovers_every_finished_integration(tmp_path):
     os.kill(proc.pid, signal.SIGKILL)
     proc.wait()
     assert not list(out.glob("*.fits"))
-    n_rows_in_journal = archive.count_rows(journal)
+    n_rows_in_journal = count_rows(journal)
     r = _run(["run", "--config", str(cfg), "--fast", "--duration", "2", "--out", str(out)])
     assert r.returncode == 0, r.stderr
     assert "recovered" in r.stderr

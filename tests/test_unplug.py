@@ -17,7 +17,7 @@ from astropy.io import fits
 
 from cli_runner import live_config
 from rtlsdr_emulator import emulator_env, fakertl_lib, set_control  # noqa: F401  (fixture)
-from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.journal import count_rows
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.ports import free_loopback_port
 
@@ -59,7 +59,7 @@ def _wait(cond, what, timeout_s=40.0):
 
 def _journal_rows(out, skip=()):
     js = [j for j in out.glob("*.journal") if j.name not in skip]
-    return (js[0], archive.count_rows(js[0])) if js else (None, 0)
+    return (js[0], count_rows(js[0])) if js else (None, 0)
 
 
 def test_unplugged_dongle_the_daemon_stays_up_and_resumes_a_new_scan(tmp_path, fakertl_lib):  # noqa: F811

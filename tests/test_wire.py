@@ -1,4 +1,4 @@
-"""The ZeroMQ wire schema (daemon/live/schema.py): round trips, a schema-only subscriber, refusals.
+"""The ZeroMQ wire schema (daemon/live/schema/): round trips, a schema-only subscriber, refusals.
 
 Outside references used below:
 - Python's ``struct`` module (format characters "<f", "<d", "<q", "B": IEEE 754 float32 and

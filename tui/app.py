@@ -47,7 +47,6 @@ rich documentation: ``rich.live.Live`` (``screen=True``: alternate screen).
 
 from __future__ import annotations
 
-import argparse
 import contextlib
 import os
 import select
@@ -58,16 +57,22 @@ import sys
 import tempfile
 import threading
 import time
+from collections.abc import Callable
 from pathlib import Path
-from typing import Callable
 
 import zmq
 from rich.text import Text
 from zmq.utils.monitor import recv_monitor_message
 
+from spinflip.daemon.config import DEFAULT_CONTROL_ENDPOINT, DEFAULT_DATA_ENDPOINT
+from spinflip.daemon.error_line import one_line
 from spinflip.daemon.live import schema
-from spinflip.daemon.live.control import DEFAULT_TIMEOUT_S, ControlError, format_result, request
-
+from spinflip.daemon.live.control import (
+    DEFAULT_TIMEOUT_S,
+    ControlError,
+    format_result,
+    request,
+)
 from spinflip.daemon.live.ports import free_loopback_port
 
 from . import panels
@@ -79,10 +84,6 @@ try:  # POSIX terminals
 except ImportError:  # pragma: no cover - non-POSIX
     termios = tty = None
 
-#: Default data socket of a daemon on this computer (config ``publish.data``).
-DEFAULT_DATA_ENDPOINT = "tcp://127.0.0.1:5621"
-#: Default control socket of a daemon on this computer (config ``publish.control``).
-DEFAULT_CONTROL_ENDPOINT = "tcp://127.0.0.1:5622"
 #: Time between two redraws of the screen, s (about 4 per second).
 REFRESH_S = 0.25
 #: Longest wait for a command's reply, s.
@@ -125,14 +126,9 @@ KEY_AXIS = "a"
 KEY_QUIT = "q"
 
 
-def _one_line(text: str, limit: int = REPLY_MAX_CHARS) -> str:
-    """``text`` on one line, at most ``limit`` characters (an ellipsis marks a cut)."""
-    flat = " ".join(str(text).split())
-    return flat if len(flat) <= limit else flat[:limit - 1] + "…"
-
-
-def _utc_now_iso() -> str:
-    return schema.now_utc_iso()
+def _one_line(text: str) -> str:
+    """``text`` on one line, at most :data:`REPLY_MAX_CHARS` characters (``…`` marks a cut)."""
+    return one_line(text, REPLY_MAX_CHARS, ellipsis="…")
 
 
 # --------------------------------------------------------------------------------------------
@@ -279,7 +275,7 @@ class Feed(threading.Thread):
         if n == 1 or (n % 10 == 0 and str(n).rstrip("0") == "1"):   # 1, 10, 100, ...
             with self.lock:
                 self.state.events.append(
-                    (_utc_now_iso(), "warning",
+                    (schema.now_utc_iso(), "warning",
                      f"{n} bad message{'s' if n > 1 else ''} so far: {self.last_error}"))
 
     def _monitor_events(self, monitor) -> None:
@@ -299,7 +295,7 @@ class Feed(threading.Thread):
                     if not self._refusal_reported:   # once, not at every retry
                         self._refusal_reported = True
                         self.state.events.append(
-                            (_utc_now_iso(), "error",
+                            (schema.now_utc_iso(), "error",
                              f"the daemon at {self.endpoint} refused the connection: is this "
                              f"client on its allow-list, and is server.key the daemon's?"))
 
@@ -581,7 +577,7 @@ class WatchSession:
                             if message:
                                 with self.lock:
                                     self.state.reply = _one_line(message)
-                                    self.state.events.append((_utc_now_iso(), "info",
+                                    self.state.events.append((schema.now_utc_iso(), "info",
                                                               _one_line(message)))
                                 finish_at_s = now_s + FINISHED_SHOW_S
                         if finish_at_s is not None and now_s >= finish_at_s:
@@ -740,37 +736,6 @@ def demo_main(seconds: float = 60, out_dir="spinflip-data", fast: bool = False,
         shutil.rmtree(work, ignore_errors=True)
 
 
-def build_parser() -> argparse.ArgumentParser:
-    """``python -m spinflip.tui.app watch|demo ...`` (the same options as ``spinflip``)."""
-    p = argparse.ArgumentParser(prog="python -m spinflip.tui.app",
-                                description="spinflip's terminal UI")
-    sub = p.add_subparsers(dest="command", required=True)
-    w = sub.add_parser("watch", help="live screen of a running daemon")
-    w.add_argument("--connect", metavar="ENDPOINT", default=DEFAULT_DATA_ENDPOINT,
-                   help=f"the daemon's data socket (default {DEFAULT_DATA_ENDPOINT})")
-    w.add_argument("--control", metavar="ENDPOINT", default=DEFAULT_CONTROL_ENDPOINT,
-                   help=f"the daemon's control socket (default {DEFAULT_CONTROL_ENDPOINT})")
-    w.add_argument("--keys", metavar="DIR",
-                   help="client CURVE keys (spinflip keys DIR --client NAME)")
-    d = sub.add_parser("demo", help="observe the simulated sky for a while and watch it")
-    d.add_argument("--seconds", type=float, default=60.0, metavar="S",
-                   help="observing time in seconds (default 60)")
-    d.add_argument("--out", metavar="DIR", default="spinflip-data",
-                   help="output folder (default spinflip-data)")
-    d.add_argument("--fast", action="store_true", help="simulated time faster than real time")
-    return p
-
-
-def main(argv=None) -> int:
-    args = build_parser().parse_args(argv)
-    try:
-        if args.command == "watch":
-            return watch_main(args.connect, args.control, args.keys)
-        return demo_main(args.seconds, args.out, fast=args.fast)
-    except ValueError as exc:
-        print(f"spinflip {args.command}: {exc}", file=sys.stderr)
-        return 2
-
-
-if __name__ == "__main__":
+if __name__ == "__main__":   # ``python -m spinflip.tui.app watch|demo ...``: the one command line
+    from spinflip.cli import main
     sys.exit(main())

@@ -1,54 +1,16 @@
-"""Hot/cold-load (Y-factor) calibration of the receiver: formulas, record, guided procedure.
+"""The hot/cold-load calibration record: one JSON file per calibration, and its checks.
 
-Two loads of known brightness temperature fill the beam of the feed in turn: a hot load (an
-absorber at ambient temperature covering the feed, or the ground) and a cold load (the cold
-sky near the zenith, a few K). A linear receiver of power gain G (counts per K) and noise
-temperature Trx then delivers the band-averaged powers
+A calibration (:class:`LoadsRecord`, made by :func:`make_record` from the powers measured on
+the loads and the formulas of :mod:`spinflip.daemon.calibration.y_factor`) is kept as one JSON
+file (:func:`save_record`, :func:`load_record`, :func:`latest_record`), checked before use
+(:func:`check_record_age`, :func:`check_record_matches`) and cited in FITS headers
+(:func:`header_cards`). The guided procedure that measures the powers is
+:class:`spinflip.daemon.commands.loads_session.LoadsProcedure`.
 
-    P_hot  = G (T_hot  + Trx)
-    P_cold = G (T_cold + Trx)
-
-and, with the Y factor Y = P_hot / P_cold,
-
-    Trx    = (T_hot - Y T_cold) / (Y - 1)
-    G      = (P_hot - P_cold) / (T_hot - T_cold)          counts per K
-    Tsys   = Trx + T_cold                                 on the cold sky
-
-A noise source switched on while the feed sees the cold load adds its excess temperature T_cal:
-P_cold+cal = G (T_cold + Trx + T_cal), so T_cal = (P_cold+cal - P_cold) / G, which later scans
-use to calibrate without the loads.
-
-Physical limits: 1 < Y < T_hot / T_cold. Y <= 1 means the hot load did not raise the power;
-Y >= T_hot / T_cold would make Trx <= 0 K (the cold load saw more than T_cold, or the load
-temperatures are wrong). The method assumes the receiver is linear from P_cold to P_hot: an
-8-bit dongle that clips under the hot load under-reports P_hot, which lowers Y and raises Trx.
-
-Noise figure (IEEE standard definition, reference temperature T0 = 290 K):
-F = 1 + T / T0, NF = 10 log10(F) dB.
-
-Units: powers in counts (band-averaged power in the caller's scale, the same for every load),
-temperatures in K, frequencies in Hz, times in s, times of day in UTC.
-
-The parts:
-
-- formulas: :func:`y_factor`, :func:`receiver_temperature_k`, :func:`system_temperature_k`,
-  :func:`gain_counts_per_k`, :func:`noise_source_k_from_loads`, :func:`noise_temperature_k`,
-  :func:`noise_figure_db`, :func:`check_load_temperatures`;
-- the calibration record :class:`LoadsRecord` (:func:`make_record`), kept as one JSON file per
-  calibration (:func:`save_record`, :func:`load_record`, :func:`latest_record`), checked before
-  use (:func:`check_record_age`, :func:`check_record_matches`) and cited in FITS headers
-  (:func:`header_cards`);
-- the guided procedure :class:`LoadsProcedure`, independent of where the samples come from.
+Units: powers in counts, temperatures in K, frequencies in Hz, times in s, times of day in UTC.
 
 References
 ----------
-Friis, H. T. 1944, Proc. IRE 32, 419 (noise figure of a receiver; from memory).
-IRE Standards on Methods of Measuring Noise in Linear Twoports, 1959, Proc. IRE 48, 60 (1960):
-noise temperature and noise figure, reference temperature T0 = 290 K (from memory).
-Agilent Technologies, Application Note 57-1, Fundamentals of RF and Microwave Noise Figure
-Measurements (the Y-factor hot/cold method; from memory).
-Wilson, T. L., Rohlfs, K. & Huttemeister, S., Tools of Radio Astronomy (receiver temperature
-from hot and cold loads).
 Pence, W. D. et al. 2010, A&A 524, A42 (FITS standard 3.0: keywords of at most 8 characters,
 string values of printable ASCII).
 """
@@ -58,26 +20,24 @@ from __future__ import annotations
 import dataclasses
 import datetime as _dt
 import json
-import math
-import numbers
 import os
-import time
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 from spinflip import __version__
-from spinflip.daemon.storage.archive import _fsync_dir
+from spinflip.daemon.calibration.y_factor import (
+    LoadsError,
+    _finite,
+    check_load_temperatures,
+    gain_counts_per_k,
+    noise_source_k_from_loads,
+    receiver_temperature_k,
+    system_temperature_k,
+    y_factor,
+)
+from spinflip.daemon.storage.durable import fsync_dir
+from spinflip.daemon.utc import utc_iso
 
-
-class LoadsError(ValueError):
-    """A hot/cold-load measurement, record or setting that cannot be used (one-line message)."""
-
-
-#: Reference temperature of the noise figure, K (IEEE / IRE standard definition).
-T0_K = 290.0
-#: Highest hot-load temperature accepted, K (an absorber at ambient temperature, or the ground).
-MAX_HOT_LOAD_K = 400.0
 #: A record measured at a centre frequency further than this from the current one is refused, Hz.
 MAX_CENTER_FREQ_SHIFT_HZ = 10e6
 #: Suggested default for the configuration key ``calibration.max_record_age_s``, s (6 h).
@@ -90,275 +50,8 @@ _SAMPLE_RATE_REL_TOL = 1e-3
 _CLOCK_SLACK_S = 60.0
 #: Version of the JSON record layout.
 RECORD_FORMAT = 1
-#: Measurements, in the order the procedure makes them.
-LOADS = ("hot", "cold", "cold+cal")
 
 
-# ----------------------------------------------------------------------------------------------
-# formulas
-# ----------------------------------------------------------------------------------------------
-def _finite(value, what: str) -> float:
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise LoadsError(f"{what} = {value!r}: expected a number")
-    v = float(value)
-    if not math.isfinite(v):
-        raise LoadsError(f"{what} = {v!r}: expected a finite number")
-    return v
-
-
-def _power(value, what: str) -> float:
-    v = _finite(value, what)
-    if v <= 0.0:
-        raise LoadsError(f"{what} = {v:g} counts: expected above 0")
-    return v
-
-
-def check_load_temperatures(t_hot_k: float, t_cold_k: float) -> tuple[float, float]:
-    """Check the two load temperatures; return them as floats.
-
-    Parameters
-    ----------
-    t_hot_k : float
-        Hot-load brightness temperature, K: above 0 and at most :data:`MAX_HOT_LOAD_K`.
-    t_cold_k : float
-        Cold-load brightness temperature, K: above 0 and below ``t_hot_k``.
-
-    Returns
-    -------
-    (float, float)
-        ``t_hot_k``, ``t_cold_k``.
-
-    Raises
-    ------
-    LoadsError
-        One line naming the temperature, its value and what is allowed.
-    """
-    th = _finite(t_hot_k, "hot load temperature t_hot_k")
-    tc = _finite(t_cold_k, "cold load temperature t_cold_k")
-    if th <= 0.0:
-        raise LoadsError(f"hot load temperature t_hot_k = {th:g} K: expected above 0 K")
-    if th > MAX_HOT_LOAD_K:
-        raise LoadsError(f"hot load temperature t_hot_k = {th:g} K: expected at most "
-                         f"{MAX_HOT_LOAD_K:g} K (an absorber at ambient temperature)")
-    if tc <= 0.0:
-        raise LoadsError(f"cold load temperature t_cold_k = {tc:g} K: expected above 0 K")
-    if tc >= th:
-        raise LoadsError(f"cold load temperature t_cold_k = {tc:g} K is not below the hot load "
-                         f"t_hot_k = {th:g} K: expected t_cold_k < t_hot_k")
-    return th, tc
-
-
-def y_factor(p_hot: float, p_cold: float) -> float:
-    """Y factor, the ratio of the band-averaged powers on the hot and the cold load.
-
-    Parameters
-    ----------
-    p_hot, p_cold : float
-        Band-averaged power with the hot and with the cold load on the feed, counts (> 0).
-
-    Returns
-    -------
-    float
-        Y = P_hot / P_cold (dimensionless).
-
-    Notes
-    -----
-    With a linear receiver P = G (T_load + Trx), so Y = (T_hot + Trx) / (T_cold + Trx).
-
-    References
-    ----------
-    Agilent Application Note 57-1 (Y-factor method; from memory).
-    """
-    return _power(p_hot, "hot-load power p_hot") / _power(p_cold, "cold-load power p_cold")
-
-
-def receiver_temperature_k(y: float, t_hot_k: float, t_cold_k: float) -> float:
-    """Receiver noise temperature from the Y factor of two loads.
-
-    Parameters
-    ----------
-    y : float
-        Y = P_hot / P_cold; must satisfy 1 < Y < t_hot_k / t_cold_k.
-    t_hot_k, t_cold_k : float
-        Load temperatures, K (see :func:`check_load_temperatures`).
-
-    Returns
-    -------
-    float
-        Trx = (T_hot - Y T_cold) / (Y - 1), K (> 0).
-
-    Raises
-    ------
-    LoadsError
-        Y <= 1 (the hot load did not raise the power), Y >= T_hot / T_cold (Trx would not be
-        positive), or bad load temperatures.
-
-    Notes
-    -----
-    Solve Y (T_cold + Trx) = T_hot + Trx for Trx.
-
-    References
-    ----------
-    Agilent Application Note 57-1 (from memory); Wilson, Rohlfs & Huttemeister, Tools of Radio
-    Astronomy.
-    """
-    th, tc = check_load_temperatures(t_hot_k, t_cold_k)
-    yv = _finite(y, "Y factor")
-    if yv <= 1.0:
-        raise LoadsError(f"Y = {yv:.4g} is not above 1: the hot load did not raise the power; "
-                         "check that the absorber covers the feed and that the gain is not "
-                         "clipping")
-    if yv >= th / tc:
-        raise LoadsError(f"Y = {yv:.4g} is not below T_hot/T_cold = {th / tc:.4g}: that would "
-                         "make Trx <= 0 K; check the load temperatures and that the cold load "
-                         "saw only the cold sky")
-    return (th - yv * tc) / (yv - 1.0)
-
-
-def system_temperature_k(trx_k: float, t_load_k: float) -> float:
-    """System temperature with a load on the feed: Tsys = Trx + T_load, K.
-
-    Parameters
-    ----------
-    trx_k : float
-        Receiver noise temperature, K.
-    t_load_k : float
-        Brightness temperature the feed sees, K (the cold sky for the cold load).
-
-    Returns
-    -------
-    float
-        Tsys, K.
-
-    References
-    ----------
-    Wilson, Rohlfs & Huttemeister, Tools of Radio Astronomy (system temperature).
-    """
-    return _finite(trx_k, "receiver temperature trx_k") + _finite(t_load_k, "load temperature")
-
-
-def gain_counts_per_k(p_hot: float, p_cold: float, t_hot_k: float, t_cold_k: float) -> float:
-    """Receiver power gain from two loads, counts per K.
-
-    Parameters
-    ----------
-    p_hot, p_cold : float
-        Band-averaged powers on the hot and the cold load, counts (> 0).
-    t_hot_k, t_cold_k : float
-        Load temperatures, K.
-
-    Returns
-    -------
-    float
-        G = (P_hot - P_cold) / (T_hot - T_cold), counts per K (> 0).
-
-    Raises
-    ------
-    LoadsError
-        P_hot <= P_cold, non-positive powers or bad load temperatures.
-
-    Notes
-    -----
-    Difference of P = G (T_load + Trx) for the two loads; Trx cancels.
-    """
-    th, tc = check_load_temperatures(t_hot_k, t_cold_k)
-    ph = _power(p_hot, "hot-load power p_hot")
-    pc = _power(p_cold, "cold-load power p_cold")
-    if ph <= pc:
-        raise LoadsError(f"hot-load power {ph:g} counts is not above the cold-load power "
-                         f"{pc:g} counts: check that the absorber covers the feed")
-    return (ph - pc) / (th - tc)
-
-
-def noise_source_k_from_loads(p_cold_cal: float, p_cold: float, gain_counts_per_k: float) -> float:
-    """Excess temperature of a noise source measured on the cold load, K.
-
-    Parameters
-    ----------
-    p_cold_cal : float
-        Band-averaged power on the cold load with the noise source on, counts.
-    p_cold : float
-        The same with the noise source off, counts.
-    gain_counts_per_k : float
-        Receiver gain G from :func:`gain_counts_per_k`, counts per K.
-
-    Returns
-    -------
-    float
-        T_cal = (P_cold+cal - P_cold) / G, K (> 0).
-
-    Raises
-    ------
-    LoadsError
-        The noise source did not raise the power, or a non-positive input.
-
-    Notes
-    -----
-    P_cold+cal = G (T_cold + Trx + T_cal) minus P_cold = G (T_cold + Trx).
-    """
-    pcc = _power(p_cold_cal, "cold-load + noise source power p_cold_cal")
-    pc = _power(p_cold, "cold-load power p_cold")
-    g = _finite(gain_counts_per_k, "gain_counts_per_k")
-    if g <= 0.0:
-        raise LoadsError(f"gain_counts_per_k = {g:g}: expected above 0 counts per K")
-    if pcc <= pc:
-        raise LoadsError(f"power with the noise source on ({pcc:g} counts) is not above the power "
-                         f"with it off ({pc:g} counts): check that the noise source is connected "
-                         "and switches")
-    return (pcc - pc) / g
-
-
-def noise_temperature_k(noise_figure_db: float) -> float:
-    """Noise temperature of a noise figure: T = T0 (F - 1), F = 10^(NF/10), T0 = 290 K.
-
-    Parameters
-    ----------
-    noise_figure_db : float
-        Noise figure NF, dB (>= 0).
-
-    Returns
-    -------
-    float
-        Noise temperature, K.
-
-    References
-    ----------
-    IRE Standards on Methods of Measuring Noise in Linear Twoports, Proc. IRE 48, 60 (1960);
-    Friis 1944 (both from memory).
-    """
-    nf = _finite(noise_figure_db, "noise figure")
-    if nf < 0.0:
-        raise LoadsError(f"noise figure = {nf:g} dB: expected at least 0 dB (F >= 1)")
-    return T0_K * (10.0 ** (nf / 10.0) - 1.0)
-
-
-def noise_figure_db(t_k: float) -> float:
-    """Noise figure of a noise temperature: NF = 10 log10(1 + T / T0) dB, T0 = 290 K.
-
-    Parameters
-    ----------
-    t_k : float
-        Noise temperature, K (>= 0).
-
-    Returns
-    -------
-    float
-        Noise figure, dB; the inverse of :func:`noise_temperature_k`.
-
-    References
-    ----------
-    IRE Standards on Methods of Measuring Noise in Linear Twoports, Proc. IRE 48, 60 (1960)
-    (from memory).
-    """
-    t = _finite(t_k, "noise temperature")
-    if t < 0.0:
-        raise LoadsError(f"noise temperature = {t:g} K: expected at least 0 K")
-    return 10.0 * math.log10(1.0 + t / T0_K)
-
-
-# ----------------------------------------------------------------------------------------------
-# the calibration record
-# ----------------------------------------------------------------------------------------------
 @dataclass(frozen=True)
 class LoadsRecord:
     """One hot/cold-load calibration: what was measured, the results and the receiver settings.
@@ -439,16 +132,11 @@ _POSITIVE = {"p_hot_counts", "p_cold_counts", "trx_k", "tsys_cold_k", "gain_coun
 _MAX_TEXT = 68
 
 
-def _utc_iso(time_unix_s: float) -> str:
-    t = _dt.datetime.fromtimestamp(time_unix_s, _dt.timezone.utc).replace(tzinfo=None)
-    return t.isoformat(timespec="seconds")
-
-
 def _parse_utc_s(text: str) -> float:
     """POSIX seconds of a UTC ISO time (no offset: UTC), or ValueError."""
     t = _dt.datetime.fromisoformat(text)
     if t.tzinfo is None:
-        t = t.replace(tzinfo=_dt.timezone.utc)
+        t = t.replace(tzinfo=_dt.UTC)
     return t.timestamp()
 
 
@@ -463,12 +151,7 @@ def _typed(key: str, value, kind: type, where: str):
             raise LoadsError(f"{where}: key {key!r} = {value!r}: expected printable ASCII text "
                              f"of 1 to {_MAX_TEXT} characters")
         return value
-    if isinstance(value, bool) or not isinstance(value, numbers.Real):
-        raise LoadsError(f"{where}: key {key!r} = {value!r}: expected a number")
-    v = float(value)
-    if not math.isfinite(v):
-        raise LoadsError(f"{where}: key {key!r} = {v!r}: expected a finite number")
-    return v
+    return _finite(value, f"{where}: key {key!r}")
 
 
 def check_meta(meta: dict, where: str = "meta") -> dict:
@@ -555,9 +238,9 @@ def make_record(meta: dict, *, p_hot_counts: float, p_cold_counts: float, t_hot_
     if p_cold_cal_counts is not None:
         t_cal = noise_source_k_from_loads(p_cold_cal_counts, p_cold_counts, gain)
         p_cold_cal_counts = float(p_cold_cal_counts)
-    stamp = _dt.datetime.fromtimestamp(t, _dt.timezone.utc).strftime("%Y%m%dT%H%M%S")
+    stamp = _dt.datetime.fromtimestamp(t, _dt.UTC).strftime("%Y%m%dT%H%M%S")
     return LoadsRecord(
-        name=f"loads-{stamp}", time_utc=_utc_iso(t), t_hot_k=th, t_cold_k=tc,
+        name=f"loads-{stamp}", time_utc=utc_iso(t), t_hot_k=th, t_cold_k=tc,
         p_hot_counts=float(p_hot_counts), p_cold_counts=float(p_cold_counts), y=y, trx_k=trx,
         tsys_cold_k=system_temperature_k(trx, tc), gain_counts_per_k=gain,
         gain_setting_db=m["gain_setting_db"], center_freq_hz=m["center_freq_hz"],
@@ -643,7 +326,7 @@ def save_record(record: LoadsRecord, folder) -> Path:
     folder = Path(folder)
     if not folder.is_dir():
         folder.mkdir(parents=True, exist_ok=True)
-        _fsync_dir(folder.parent)
+        fsync_dir(folder.parent)
     final = folder / f"{record.name}.json"
     if final.exists():
         raise LoadsError(f"calibration record {final} exists already; it is not overwritten")
@@ -661,7 +344,7 @@ def save_record(record: LoadsRecord, folder) -> Path:
         except OSError:
             pass
         raise
-    _fsync_dir(folder)
+    fsync_dir(folder)
     return final
 
 
@@ -860,141 +543,3 @@ def header_cards(record: LoadsRecord) -> dict:
     if record.noise_source_k is not None:
         cards["TCAL"] = float(record.noise_source_k)
     return cards
-
-
-# ----------------------------------------------------------------------------------------------
-# the guided procedure
-# ----------------------------------------------------------------------------------------------
-@dataclass(frozen=True)
-class Step:
-    """One step of the procedure, as the observer sees it.
-
-    Attributes
-    ----------
-    number, total : int
-        This is step ``number`` of ``total`` (from 1).
-    load : str
-        What is measured: "hot", "cold" or "cold+cal" (see :data:`LOADS`).
-    title : str
-        Short title, e.g. "Hot load".
-    instruction : str
-        One sentence for the observer, e.g. "Step 1 of 3: cover the feed with the absorber
-        (hot load, 290.0 K), then press Enter".
-    """
-
-    number: int
-    total: int
-    load: str
-    title: str
-    instruction: str
-
-
-class LoadsProcedure:
-    """Guided hot/cold-load calibration, independent of where the samples come from.
-
-    Parameters
-    ----------
-    measure : callable ``(load: str, seconds: float) -> float``
-        Band-averaged power, counts, of ``seconds`` of samples for ``load`` = "hot", "cold" or
-        "cold+cal" (the load is in front of the feed and the noise source set when it is
-        called).
-    prompt : callable ``(step: Step) -> None``
-        Shows the step to the observer and returns when they say go (Enter on a terminal).
-        Raising ``KeyboardInterrupt`` cancels the procedure.
-    t_hot_k, t_cold_k : float
-        Load temperatures, K (see :func:`check_load_temperatures`).
-    seconds : float
-        Integration time on each load, s (> 0).
-    set_noise_source : callable ``(on: bool) -> None`` or None
-        Switches the noise source; None: the telescope has none (no "cold+cal" step).
-    clock : callable ``() -> float``
-        Current time, POSIX s (the simulator passes its simulated clock).
-    go_action : str
-        What the observer does to go on, as said in the instructions.
-
-    Notes
-    -----
-    :meth:`run` switches the noise source off before the first measurement and again when it
-    ends, whether it succeeds, fails or is cancelled. It writes nothing: the caller saves the
-    returned record (:func:`save_record`), so a failed or cancelled run leaves no record.
-    """
-
-    def __init__(self, measure: Callable[[str, float], float], prompt: Callable[[Step], None], *,
-                 t_hot_k: float, t_cold_k: float, seconds: float,
-                 set_noise_source: Callable[[bool], None] | None = None,
-                 clock: Callable[[], float] = time.time, go_action: str = "press Enter"):
-        self.t_hot_k, self.t_cold_k = check_load_temperatures(t_hot_k, t_cold_k)
-        s = _finite(seconds, "seconds per load")
-        if s <= 0.0:
-            raise LoadsError(f"seconds per load = {s:g} s: expected above 0 s")
-        self.seconds = s
-        self._measure = measure
-        self._prompt = prompt
-        self._set_noise_source = set_noise_source
-        self._clock = clock
-        self._go = go_action
-
-    def steps(self) -> list[Step]:
-        """The steps in the order :meth:`run` performs them."""
-        loads = LOADS if self._set_noise_source is not None else LOADS[:2]
-        n = len(loads)
-        text = {
-            "hot": ("Hot load", "cover the feed with the absorber "
-                    f"(hot load, {self.t_hot_k:.1f} K)"),
-            "cold": ("Cold load", "remove the absorber and point the feed at the cold sky near "
-                     f"the zenith (cold load, {self.t_cold_k:.1f} K)"),
-            "cold+cal": ("Cold load + noise source", "keep the feed on the cold sky for a "
-                         "measurement with the noise source on"),
-        }
-        return [Step(i, n, load, text[load][0],
-                     f"Step {i} of {n}: {text[load][1]}, then {self._go}")
-                for i, load in enumerate(loads, start=1)]
-
-    def _noise_source(self, on: bool) -> None:
-        if self._set_noise_source is not None:
-            self._set_noise_source(on)
-
-    def run(self, meta: dict) -> LoadsRecord:
-        """Perform the steps in order and compute the calibration record.
-
-        Parameters
-        ----------
-        meta : dict
-            Receiver settings and where (:data:`META_KEYS`: gain_setting_db, center_freq_hz,
-            sample_rate_hz, telescope, site_name); checked before the first prompt.
-
-        Returns
-        -------
-        LoadsRecord
-            Not saved (see :func:`save_record`).
-
-        Raises
-        ------
-        LoadsError
-            Bad ``meta``, a non-finite or non-positive power (naming the step), or a failed
-            check of the formulas (Y <= 1, noise source without effect, ...).
-        KeyboardInterrupt
-            The observer cancelled at a prompt; nothing is returned.
-        """
-        m = check_meta(meta, "loads procedure meta")
-        powers: dict[str, float] = {}
-        try:
-            self._noise_source(False)
-            for step in self.steps():
-                self._prompt(step)
-                if step.load == "cold+cal":
-                    self._noise_source(True)
-                p = self._measure(step.load, self.seconds)
-                if step.load == "cold+cal":
-                    self._noise_source(False)
-                what = f"step {step.number} of {step.total} ({step.title.lower()})"
-                try:
-                    powers[step.load] = _power(p, f"{what}: band-averaged power")
-                except LoadsError as exc:
-                    raise LoadsError(f"{exc}; check that the receiver delivers samples") from None
-        finally:
-            self._noise_source(False)
-        return make_record(m, p_hot_counts=powers["hot"], p_cold_counts=powers["cold"],
-                           p_cold_cal_counts=powers.get("cold+cal"), t_hot_k=self.t_hot_k,
-                           t_cold_k=self.t_cold_k, time_per_load_s=self.seconds,
-                           time_unix_s=self._clock())

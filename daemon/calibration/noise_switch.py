@@ -41,8 +41,14 @@ import subprocess
 import threading
 from typing import Any
 
+from spinflip.daemon.calibration.gpio_cdev import (
+    GpioError,
+    GpioOutputLine,
+    IoctlFunc,
+    OpenFunc,
+)
 from spinflip.daemon.config import ConfigError
-from spinflip.daemon.calibration.gpio_cdev import GpioError, GpioOutputLine, IoctlFunc, OpenFunc
+from spinflip.daemon.error_line import one_line
 
 log = logging.getLogger("spinflip.noise_switch")
 
@@ -71,12 +77,6 @@ _REAP_TIMEOUT_S = 2.0
 
 class NoiseSwitchError(RuntimeError):
     """The noise source could not be switched; the message is one line naming switch and cause."""
-
-
-def _one_line(text: str, limit_chars: int) -> str:
-    """``text`` with every run of whitespace made one space, cut to ``limit_chars``."""
-    flat = " ".join(str(text).split())
-    return flat if len(flat) <= limit_chars else flat[: limit_chars - 3] + "..."
 
 
 def _fits_text(text: str) -> str:
@@ -167,7 +167,7 @@ class CommandNoiseSwitch(NoiseSwitch):
     def _run(self, on: bool) -> None:
         word = "on" if on else "off"
         cmd = self.on_cmd if on else self.off_cmd
-        quoted = _one_line(cmd, _QUOTE_MAX_CHARS)
+        quoted = one_line(cmd, _QUOTE_MAX_CHARS)
         env = dict(os.environ, SPINFLIP_CAL=word)
         try:
             # own session = own process group, so a timeout kills the shell and its children
@@ -186,7 +186,7 @@ class CommandNoiseSwitch(NoiseSwitch):
                               "was killed") from None
         if proc.returncode != 0:
             lines = [ln.strip() for ln in (err or "").splitlines() if ln.strip()]
-            last = _one_line(lines[-1], 120) if lines else "(nothing on stderr)"
+            last = one_line(lines[-1], 120) if lines else "(nothing on stderr)"
             if proc.returncode < 0:
                 how = f"was killed by signal {-proc.returncode}"
             else:

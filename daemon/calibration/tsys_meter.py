@@ -45,6 +45,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.dsp.channel_grid import lo_mask
 from spinflip.daemon.dsp.block import Block
@@ -87,7 +88,7 @@ def line_free_channels(tsys_chan_k: np.ndarray, usable: np.ndarray) -> np.ndarra
         if vals.size < 8:
             break
         med = np.median(vals)
-        sigma = 1.4826 * np.median(np.abs(vals - med))
+        sigma = median_abs_deviation(vals, scale="normal")   # 1.4826 MAD
         new = good & (sm <= med + _CLIP_SIGMA * sigma)
         if np.array_equal(new, keep):
             break
@@ -157,7 +158,7 @@ class TsysMeasurement:
 @dataclass
 class _Cycle:
     number: int
-    cal: bool | None
+    noise_source_on: bool | None   # its state over the whole cycle; None: mixed or unknown
     s1: dict = field(default_factory=dict)    # phase -> sum of power spectra
     m: dict = field(default_factory=dict)     # phase -> number of spectra
     t_first_s: float = 0.0
@@ -214,8 +215,8 @@ class TsysMeter:
         if self._cycle is None:
             self._cycle = _Cycle(number, block.cal_on, t_first_s=block.t0_unix_s)
         c = self._cycle
-        if block.cal_on != c.cal:
-            c.cal = None          # a cycle with mixed or unknown states is no use
+        if block.cal_on != c.noise_source_on:
+            c.noise_source_on = None   # a cycle with mixed or unknown states is no use
         if np.any(np.asarray(m) > 0):
             c.s1[block.phase] = c.s1.get(block.phase, 0.0) + s1
             c.m[block.phase] = c.m.get(block.phase, 0) + np.asarray(m, dtype=float)
@@ -227,7 +228,7 @@ class TsysMeter:
     def _close(self) -> TsysMeasurement | None:
         c, self._cycle = self._cycle, None
         assert c is not None                    # add() closes only an open cycle
-        if c.cal is None:                       # the switch failed: drop the firing
+        if c.noise_source_on is None:           # the switch failed: drop the firing
             fault = bool(self._on) or not self._fault
             self._fault = True
             self._on, self._off_before = [], None
@@ -236,7 +237,7 @@ class TsysMeter:
                                        "noise source state unknown (its switch failed): "
                                        "no system temperature from this firing")
             return None
-        if c.cal:
+        if c.noise_source_on:
             self._on.append(c)
             return None
         self._fault = False

@@ -16,11 +16,19 @@ from pathlib import Path
 
 import numpy as np
 
-from spinflip.daemon.storage.archive import EXTNAME, REQUIRED_ROW_KEYS, RFI_EXTNAME, TSYS_EXTNAME
 from spinflip.daemon.products.scan_average import EXTNAME as PRODUCT_EXTNAME
 from spinflip.daemon.sky.hi_line import C_M_S
-from spinflip.daemon.sky.spectral_axis import (frequency_axis_hz, scan_average_lsrk,  # noqa: F401 (re-exported)
-                            velocity_axis_lsrk_m_s)
+from spinflip.daemon.sky.spectral_axis import (  # noqa: F401 (re-exported)
+    frequency_axis_hz,
+    scan_average_lsrk,
+    velocity_axis_lsrk_m_s,
+)
+from spinflip.daemon.storage.columns import (
+    EXTNAME,
+    REQUIRED_ROW_KEYS,
+    RFI_EXTNAME,
+    TSYS_EXTNAME,
+)
 
 
 def _circular_mean_deg(angles_deg: np.ndarray) -> float:

@@ -163,7 +163,7 @@ def run_soak(seconds: float = 600.0, integration_s: float = 5.0,
             stop.set()
             for s in subs:
                 s.join(timeout=5)
-        from spinflip.daemon.storage.archive import read_scan
+        from spinflip.daemon.storage.fits_file import read_scan
         rows = 0
         for f in sorted(out.glob("*.fits")):
             rows += len(read_scan(f)[1])

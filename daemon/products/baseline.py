@@ -52,14 +52,12 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 from numpy.polynomial import Polynomial
+from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
 
 #: Highest polynomial order accepted.
 MAX_ORDER = 8
-
-#: MAD -> Gaussian sigma, 1 / Phi^-1(3/4) (Rousseeuw & Croux 1993, from memory).
-MAD_TO_SIGMA = 1.4826
 
 _SCALED_WINDOW = (-1.0, 1.0)
 
@@ -204,7 +202,7 @@ def fit_baseline(data_k: npt.ArrayLike, flagged: npt.ArrayLike, x: npt.ArrayLike
             break
         resid_k = data - poly(xs)
         m_k = np.median(resid_k[keep])
-        sigma_k = MAD_TO_SIGMA * np.median(np.abs(resid_k[keep] - m_k))
+        sigma_k = median_abs_deviation(resid_k[keep], scale="normal")   # 1.4826 MAD
         if sigma_k <= sigma_floor_k:
             converged = True
             break

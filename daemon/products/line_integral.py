@@ -22,11 +22,8 @@ from typing import NamedTuple
 import numpy as np
 import numpy.typing as npt
 
+from spinflip.daemon.sky.hi_line import HI_COLUMN_PER_K_KM_S_CM2
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
-
-#: Column density per unit line integral, cm^-2 per (K km/s), optically thin
-#: (Dickey & Lockman 1990).
-HI_COLUMN_PER_K_KM_S_CM2 = 1.823e18
 
 #: Radiometer-equation factor K for a total-power measurement (Wilson, Rohlfs & Huttemeister).
 K_TOTAL_POWER = 1.0

@@ -43,6 +43,7 @@ from collections import deque
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
+from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.dsp.channel_grid import lo_mask
 
@@ -72,7 +73,7 @@ def carrier_ratio(p: np.ndarray, usable: np.ndarray) -> tuple[np.ndarray, float]
     if vals.size < 8:
         return r, float("inf")
     med = np.median(vals)
-    return r - med, 1.4826 * float(np.median(np.abs(vals - med)))
+    return r - med, float(median_abs_deviation(vals, scale="normal"))   # 1.4826 MAD
 
 
 def _grow(seed: np.ndarray, weak: np.ndarray) -> np.ndarray:

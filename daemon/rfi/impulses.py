@@ -30,8 +30,8 @@ from __future__ import annotations
 from collections.abc import Hashable
 
 import numpy as np
+from scipy.stats import median_abs_deviation
 
-_MAD_TO_SIGMA = 1.4826
 _LONG_BURST_RATIO = 1.5
 CHUNK_SAMPLES = 512
 
@@ -102,7 +102,7 @@ class ImpulseBlanker:
                 blank[:] = True
                 return blank, 1                   # the whole block; keep the old level
             self._levels[state] = level
-            sigma = _MAD_TO_SIGMA * float(np.median(np.abs(e - level)))
+            sigma = float(median_abs_deviation(e, scale="normal"))       # 1.4826 MAD
             hit = e > level + self.sigma * sigma if sigma > 0 else np.zeros(e.size, bool)
             if hit.any():
                 idx = np.flatnonzero(hit)

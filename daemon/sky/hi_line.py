@@ -5,6 +5,8 @@ References
 Hellwig, H. et al. 1970, IEEE Trans. Instrum. Meas. 19, 200 (HI hyperfine frequency; value
 quoted from memory).
 Greisen, E. W. et al. 2006, A&A 446, 747 (FITS WCS paper III: radio velocity convention).
+Dickey, J. M. & Lockman, F. J. 1990, ARA&A 28, 215 (N_HI = 1.823e18 int T_B dv, optically
+thin).
 """
 
 import numpy as np
@@ -15,6 +17,10 @@ HI_REST_FREQ_HZ = 1_420_405_751.768
 
 #: Speed of light in vacuum, m/s (exact, SI).
 C_M_S = 299_792_458.0
+
+#: HI column density per unit line integral, cm^-2 per (K km/s), optically thin
+#: (Dickey & Lockman 1990): N_HI = 1.823e18 int T_B dv.
+HI_COLUMN_PER_K_KM_S_CM2 = 1.823e18
 
 
 def radio_velocity_m_s(freq_hz: npt.ArrayLike, rest_hz: float = HI_REST_FREQ_HZ) -> np.ndarray:
