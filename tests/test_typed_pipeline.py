@@ -13,7 +13,7 @@ from spinflip.daemon.rfi.masks import dc_channels, named_channels
 from spinflip.daemon.sky.coordinates import SkyPosition
 from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
 from spinflip.daemon.sources.base import Source
-from spinflip.daemon.storage import archive
+from spinflip.daemon.storage import columns, journal
 from spinflip.daemon.storage.items import CloseScan, OpenScan, item_bytes
 from spinflip.daemon.storage.row_columns import row_columns
 from spinflip.daemon.storage.writer import ScanStore
@@ -51,13 +51,13 @@ def _row(nchan: int = 16) -> Row:
 
 def test_a_row_becomes_every_column_of_the_file_contract():
     cols = row_columns(_row())
-    assert set(archive.REQUIRED_ROW_KEYS) <= set(cols)
+    assert set(columns.REQUIRED_ROW_KEYS) <= set(cols)
     assert {"CRVAL1A", "CDELT1A", "CRPIX1A", "TSYSAGE", "LOSTSAMP", "BLANKSMP", "CALSTATE",
             "CALTIME", "UNKNTIME", "FOLDED", "CHANEXP", "FLAGTIME", "FLAGFREQ", "RFIFRAC",
             "UNCOVFR", "SKFRAC", "NIMPULSE", "NCARRIER"} <= set(cols)
     assert cols["ELEVATIO"] == 40.0 and cols["AZIMUTH"] == 170.0 and cols["GLON"] == 30.0
     assert cols["CALSTATE"] == 1 and cols["FOLDED"] == 1 and cols["CRPIX1A"] == cols["CRPIX1"]
-    archive._row_record(cols, 16)          # the journal accepts it as it is
+    journal._row_record(cols, 16)          # the journal accepts it as it is
 
 
 def test_the_writer_takes_typed_items_only(tmp_path):
