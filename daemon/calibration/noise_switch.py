@@ -121,7 +121,7 @@ class NoiseSwitch:
     def _error(self, what: str) -> NoiseSwitchError:
         return NoiseSwitchError(f"noise switch {self.describe()}: {what}")
 
-    def __enter__(self) -> "NoiseSwitch":
+    def __enter__(self) -> NoiseSwitch:
         self.open()
         return self
 
