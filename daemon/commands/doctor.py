@@ -38,9 +38,9 @@ import os
 import socket
 import stat
 import sys
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Callable
 
 from spinflip.daemon import config as config_mod
 from spinflip.daemon.commands.station_probes import (

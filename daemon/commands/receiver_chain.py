@@ -469,10 +469,11 @@ def chain_budget(profile: Profile) -> Budget:
     gains = [db_to_linear(s.gain_db) if s.gain_db is not None else 1.0 for s in stages]
     cascade = friis_cascade_k([s.noise_temp_k for s in stages], gains)
     rows = tuple(StageRow(s, c, linear_to_db(g) if s.kind != "dongle" else None)
-                 for s, c, g in zip(stages, cascade.contributions_k, cascade.cumulative_gains))
+                 for s, c, g in zip(stages, cascade.contributions_k, cascade.cumulative_gains,
+                                    strict=True))
 
     loss_ahead_k = 0.0
-    for s, c in zip(stages, cascade.contributions_k):
+    for s, c in zip(stages, cascade.contributions_k, strict=True):
         if s.kind != "passive":
             break
         loss_ahead_k += c

@@ -85,6 +85,7 @@ class _Subscriber(threading.Thread):
 
     def run(self) -> None:
         import zmq
+
         from spinflip.daemon.live import schema
         sub: zmq.Socket = zmq.Context.instance().socket(zmq.SUB)
         sub.setsockopt(zmq.MAXMSGSIZE, schema.MAX_FRAME_BYTES)
