@@ -177,8 +177,8 @@ def _report_saved(result, out_dir) -> None:
 def _cmd_loads(args) -> int:
     from spinflip.daemon import config as config_mod
     from spinflip.daemon.calibration import loads as loads_mod
-    from spinflip.daemon.commands.loads_session import LoadsSession
     from spinflip.daemon.calibration.tsys_plan import records_dir
+    from spinflip.daemon.commands.loads_session import LoadsSession
     from spinflip.daemon.sources.base import parse_source_option
     cfg = config_mod.load(args.config)
     over: dict = {}

@@ -4,7 +4,15 @@ then one peer sends a 16 MiB subscription. Loopback and free ports only; about 2
 
     .venv/bin/python scripts/abuse_rss.py
 """
-import os, socket, struct, subprocess, sys, tempfile, time
+import os
+import socket
+import struct
+import subprocess
+import sys
+import tempfile
+import time
+
+
 def free():
     s = socket.socket(); s.bind(("127.0.0.1", 0)); p = s.getsockname()[1]; s.close(); return p
 def rss(pid):

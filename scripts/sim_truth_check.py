@@ -21,8 +21,8 @@ from astropy.io import fits
 from astropy.time import Time
 
 from spinflip.daemon.sky import coordinates
-from spinflip.daemon.sources.galaxy import ModelGalaxy
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sources.galaxy import ModelGalaxy
 
 
 def main() -> None:

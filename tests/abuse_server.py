@@ -34,8 +34,9 @@ def status_header(n: int) -> dict:
 def main() -> int:
     security = None
     if len(sys.argv) == 3 and sys.argv[1] == "--keys":
-        from spinflip.daemon.live.keys import ServerSecurity
         import zmq
+
+        from spinflip.daemon.live.keys import ServerSecurity
         security = ServerSecurity.from_config({"keys": sys.argv[2]})
         security.start(zmq.Context.instance())
     calls: dict = {}

@@ -5,8 +5,8 @@ import sys
 
 import numpy as np
 
-from spinflip.daemon.sources.galaxy import ModelGalaxy
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sources.galaxy import ModelGalaxy
 
 
 def run_cli(args, cwd=None, timeout=180, stdin=None):

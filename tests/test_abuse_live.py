@@ -27,11 +27,9 @@ from pathlib import Path
 import numpy as np
 import pytest
 import zmq
-
 from abuse_server import status_header
-from spinflip.daemon.live import collect, spectrum_archive
-from spinflip.daemon.live import control
-from spinflip.daemon.live import schema
+
+from spinflip.daemon.live import collect, control, schema, spectrum_archive
 from spinflip.daemon.live.keys import keys_main
 from spinflip.daemon.live.publisher import Publisher
 from spinflip.tui.state import ViewState
@@ -116,7 +114,7 @@ def _closed_by_peer(sock: socket.socket, wait_s: float) -> bool:
         return True
     except ConnectionResetError:
         return True
-    except (socket.timeout, OSError):
+    except (TimeoutError, OSError):
         return False
 
 

@@ -25,14 +25,14 @@ from astropy.io import fits
 from astropy.time import Time
 from astropy.wcs import WCS
 
+from spinflip.daemon.commands.inspect import format_summary, summarize, velocity_axis_lsrk_m_s
+from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
 from spinflip.daemon.storage import archive
 from spinflip.daemon.storage import journal as journal_format
 from spinflip.daemon.storage.archive import ScanWriter
 from spinflip.daemon.storage.fits_file import read_scan
 from spinflip.daemon.storage.journal import read_journal
 from spinflip.daemon.storage.recovery import recover
-from spinflip.daemon.commands.inspect import format_summary, summarize, velocity_axis_lsrk_m_s
-from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
 
 NCHAN = 64
 HEADER = {"SITELAT": 47.25, "SITELONG": 9.5, "SITEELEV": 610.0, "TELESCOP": "Hilltop 3m dish",

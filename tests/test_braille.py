@@ -8,8 +8,7 @@ import pytest
 from rich.cells import cell_len
 from rich.console import Console
 
-from spinflip.tui.braille import (BrailleCanvas, Series, nice_ticks, plot, segment_pairs,
-                                  tick_labels)
+from spinflip.tui.braille import BrailleCanvas, Series, nice_ticks, plot, segment_pairs, tick_labels
 
 # Unicode Braille Patterns: dot number at each (x, y) position of a cell; dots 1, 2, 3, 7 down
 # the left column, 4, 5, 6, 8 down the right (the Unicode standard; from memory).

@@ -3,8 +3,8 @@
 import numpy as np
 import pytest
 
-from spinflip.daemon.dsp.block import REF, SIG
 from spinflip.daemon.calibration.kelvin import calibrate
+from spinflip.daemon.dsp.block import REF, SIG
 from spinflip.daemon.dsp.spectrometer import Integration, PhaseSums
 
 

@@ -13,10 +13,10 @@ from astropy import units as u
 from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 from astropy.io import fits
 from astropy.time import Time
-
 from cli_runner import model_line, run_cli, true_tsys_k, write_config
-from spinflip.daemon.sky import coordinates
+
 from spinflip.daemon.dsp.channelizer import make_channelizer
+from spinflip.daemon.sky import coordinates
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sky.spectral_axis import velocity_axis_lsrk_m_s
 
@@ -263,8 +263,9 @@ def test_column_density_against_the_model_column(thin):
     # N(HI) = 1.823e18 int T_B dv, optically thin (Dickey & Lockman 1990), against the model's
     # true (beam-averaged) column. With a peak optical depth of ~0.1 the thin formula reads a
     # few per cent low; the model's own T_B integral gives the size of that effect.
-    from spinflip.daemon.sources.galaxy import ModelGalaxy, beam_directions
     from cli_runner import beam_fwhm_deg
+
+    from spinflip.daemon.sources.galaxy import ModelGalaxy, beam_directions
     path, _ = thin
     _, _, _, ah, _ = _table(path)
     g = ModelGalaxy()

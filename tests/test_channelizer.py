@@ -5,8 +5,12 @@ import pytest
 import scipy.signal
 
 from spinflip.daemon.commands.bench import radiometer_efficiency, run_bench
-from spinflip.daemon.dsp.channelizer import (Channelizer, StreamingChannelizer,
-                                         make_channelizer, power_sums)
+from spinflip.daemon.dsp.channelizer import (
+    Channelizer,
+    StreamingChannelizer,
+    make_channelizer,
+    power_sums,
+)
 
 N = 256
 FS = 2.4e6

@@ -24,8 +24,7 @@ import pytest
 import zmq
 
 from spinflip.cli import build_parser
-from spinflip.daemon.live import collect
-from spinflip.daemon.live import schema
+from spinflip.daemon.live import collect, schema
 from spinflip.daemon.live.collect import main_collect, parse_station, run_collect
 from spinflip.daemon.live.spectrum_archive import SpectrumArchive, read_spectra
 

@@ -20,8 +20,16 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from spinflip.daemon.live import control
-from spinflip.daemon.live.control import (COMMANDS, MAX_REQUEST_BYTES, CommandError, ControlError,
-                                     ControlServer, ctl_main, request, validate_request)
+from spinflip.daemon.live.control import (
+    COMMANDS,
+    MAX_REQUEST_BYTES,
+    CommandError,
+    ControlError,
+    ControlServer,
+    ctl_main,
+    request,
+    validate_request,
+)
 
 #: Longest a test waits for one reply before calling the server hung, ms (not a timing check).
 _HANG_MS = 5000

@@ -21,17 +21,17 @@ import numpy as np
 import pytest
 from astropy.io import fits
 from astropy.time import Time
-
 from cli_runner import live_config
-from spinflip.daemon.storage import archive
-from spinflip.daemon.storage.journal import count_rows
+
 from spinflip.daemon import config
-from spinflip.daemon.run.observation import Daemon
-from spinflip.daemon.sources.sample_clock import SampleClock
-from spinflip.daemon.storage.writer import ScanStore
-from spinflip.daemon.storage.items import OpenScan
 from spinflip.daemon.products.row import Row
+from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.sky.coordinates import SkyPosition
+from spinflip.daemon.sources.sample_clock import SampleClock
+from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.items import OpenScan
+from spinflip.daemon.storage.journal import count_rows
+from spinflip.daemon.storage.writer import ScanStore
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -70,7 +70,7 @@ def test_notify_ready_watchdog_and_sigterm_keeps_the_integration_in_progress(tmp
         while time.monotonic() < deadline:
             try:
                 got.append((time.monotonic(), sock.recv(4096).decode()))
-            except socket.timeout:
+            except TimeoutError:
                 pass
             js = list(out.glob("*.journal"))
             if js and count_rows(js[0]) >= 1 and journal is None:
@@ -83,7 +83,7 @@ def test_notify_ready_watchdog_and_sigterm_keeps_the_integration_in_progress(tmp
         while proc.poll() is None and time.monotonic() - t_term < _unit_stop_timeout_s():
             try:
                 got.append((time.monotonic(), sock.recv(4096).decode()))
-            except socket.timeout:
+            except TimeoutError:
                 pass
         t_gone = time.monotonic()
         stdout, stderr = proc.communicate(timeout=10)

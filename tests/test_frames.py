@@ -6,18 +6,23 @@ import socket
 import urllib.request
 import warnings
 
+import lsrk_lowprec
 import numpy as np
 import pytest
 from astropy import units as u
-from astropy.coordinates import AltAz, EarthLocation, Galactic, ICRS, SkyCoord, SpectralCoord
+from astropy.coordinates import ICRS, AltAz, EarthLocation, Galactic, SkyCoord, SpectralCoord
 from astropy.time import Time
 from astropy.utils import iers
 from astropy.utils.exceptions import AstropyWarning
 from erfa import ErfaWarning
 
-import lsrk_lowprec
 from spinflip.daemon.sky import coordinates
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ, radio_frequency_hz, radio_velocity_m_s
+from spinflip.daemon.sky.hi_line import (
+    C_M_S,
+    HI_REST_FREQ_HZ,
+    radio_frequency_hz,
+    radio_velocity_m_s,
+)
 
 ARCSEC_DEG = 1.0 / 3600.0
 

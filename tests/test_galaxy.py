@@ -14,8 +14,13 @@ import pytest
 from astropy import units as u
 from astropy.coordinates import SkyCoord
 
-from spinflip.daemon.sources.galaxy import (NHI_PER_K_KMS, T_CMB_K, ModelGalaxy, beam_directions,
-                                    rotation_speed_kms)
+from spinflip.daemon.sources.galaxy import (
+    NHI_PER_K_KMS,
+    T_CMB_K,
+    ModelGalaxy,
+    beam_directions,
+    rotation_speed_kms,
+)
 
 V = np.linspace(-400.0, 400.0, 1601)        # 0.5 km/s channels, wide enough for all the gas
 

@@ -21,19 +21,19 @@ import threading
 import numpy as np
 import pytest
 from astropy.io import fits
+from cli_runner import run_cli
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from test_archive import HEADER, NCHAN, make_row
 
-from cli_runner import run_cli
-from spinflip.daemon.storage import archive, recovery
 from spinflip.daemon import config
+from spinflip.daemon.run.observation import Daemon
+from spinflip.daemon.storage import archive, recovery
 from spinflip.daemon.storage.archive import ScanWriter
 from spinflip.daemon.storage.fits_file import read_scan
 from spinflip.daemon.storage.journal import read_journal
 from spinflip.daemon.storage.recovery import recover
-from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.storage.writer import ScanStore
-from test_archive import HEADER, NCHAN, make_row
 
 N_ROWS = 7
 

@@ -14,9 +14,15 @@ import numpy as np
 import pytest
 from scipy.special import erf
 
-from spinflip.daemon.products.line_integral import (HI_COLUMN_PER_K_KM_S_CM2, K_SWITCHED, K_TOTAL_POWER,
-                                           brightness_from_antenna_k, column_density_cm2,
-                                           integrated_intensity_k_km_s, radiometer_noise_k)
+from spinflip.daemon.products.line_integral import (
+    HI_COLUMN_PER_K_KM_S_CM2,
+    K_SWITCHED,
+    K_TOTAL_POWER,
+    brightness_from_antenna_k,
+    column_density_cm2,
+    integrated_intensity_k_km_s,
+    radiometer_noise_k,
+)
 
 V_KM_S = np.arange(-100.0, 100.0 + 0.5, 1.0)          # 1 km/s channels
 T0_K, V0_KM_S, SIGMA_KM_S = 5.0, 3.3, 6.0

@@ -19,10 +19,10 @@ import time
 import numpy as np
 import pytest
 import zmq
+from cli_runner import run_cli, write_config
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cli_runner import run_cli, write_config
 from spinflip.daemon.live.ports import free_loopback_port
 
 DTYPES = {"<f4": "<f4", "<f8": "<f8", "<i8": "<i8", "|u1": "u1"}
@@ -212,8 +212,8 @@ def test_still_publishing_and_observing_after_the_fuzzing(daemon):
 def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch):
     # in this process, simulated time as fast as the CPU allows: 25 s of sky in a few seconds
     from spinflip.daemon import config
-    from spinflip.daemon.run import observation
     from spinflip.daemon.live import publisher
+    from spinflip.daemon.run import observation
     monkeypatch.setattr(publisher, "_SNDHWM", 4)      # small queues, so that a stall shows
     monkeypatch.setattr(publisher, "_SNDBUF", 8192)   # within a 15 s stall
     port = free_loopback_port()

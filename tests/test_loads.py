@@ -137,8 +137,8 @@ def test_noise_temperature_from_noise_figure():
 # the record
 # ---------------------------------------------------------------------------------------------
 def test_record_name_and_time():
-    assert dt.datetime.fromtimestamp(T_2026_12_02_1530_S, dt.timezone.utc) == \
-        dt.datetime(2026, 12, 2, 15, 30, tzinfo=dt.timezone.utc)
+    assert dt.datetime.fromtimestamp(T_2026_12_02_1530_S, dt.UTC) == \
+        dt.datetime(2026, 12, 2, 15, 30, tzinfo=dt.UTC)
     r = _record()
     assert r.name == "loads-20261202T153000" and r.time_utc == "2026-12-02T15:30:00"
     assert r.time_unix_s == T_2026_12_02_1530_S

@@ -5,8 +5,8 @@ import time
 import numpy as np
 import pytest
 from astropy.io import fits
-
 from cli_runner import run_cli, write_config
+
 from spinflip.daemon.calibration import loads
 
 # spillover 0 and a cold sky equal to calibration.t_cold_k make the simulator's receiver the

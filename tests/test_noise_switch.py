@@ -10,8 +10,8 @@ import grp
 import logging
 import os
 import shlex
-import time
 import struct
+import time
 
 import pytest
 

@@ -5,8 +5,8 @@ from astropy import units as u
 from astropy.coordinates import AltAz, SkyCoord
 from astropy.io import fits
 from astropy.time import Time
-
 from cli_runner import run_cli, write_config
+
 from spinflip.daemon.sky import coordinates
 
 START = "2026-03-01T04:00:00"

@@ -26,8 +26,6 @@ from astropy import constants as const
 from astropy import units as u
 from rich.console import Console
 
-from spinflip.daemon.commands import receiver_chain as rc
-from spinflip.daemon.commands.chain_table import chain_main, render
 from spinflip.daemon.calibration.cascade import (
     beamwidth_deg,
     friis_cascade_k,
@@ -35,6 +33,8 @@ from spinflip.daemon.calibration.cascade import (
     passive_noise_temp_k,
     sensitivity_k,
 )
+from spinflip.daemon.commands import receiver_chain as rc
+from spinflip.daemon.commands.chain_table import chain_main, render
 from spinflip.daemon.commands.receiver_chain import (
     ProfileError,
     chain_budget,

@@ -22,11 +22,11 @@ import json
 import numpy as np
 import pytest
 from astropy.io import fits
-
 from cli_runner import run_cli, write_config
+
 from spinflip.daemon import config
-from spinflip.daemon.run import observation
 from spinflip.daemon.live import schema
+from spinflip.daemon.run import observation
 
 DURATION_S = 120.0
 CONFIG = """

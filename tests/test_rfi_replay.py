@@ -11,8 +11,8 @@ import json
 import numpy as np
 import pytest
 from astropy.io import fits
-
 from cli_runner import run_cli, write_config
+
 from spinflip.daemon.dsp.samples import complex_to_u8
 
 FS = 2.4e6

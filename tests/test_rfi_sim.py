@@ -13,8 +13,8 @@ from astropy.io import fits
 
 from spinflip.daemon import config
 from spinflip.daemon.run import observation
-from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.daemon.sky.hi_line import radio_velocity_m_s
+from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.daemon.sources.sim import RFI_BURSTS, RFI_CARRIERS
 
 DURATION_S = 40.0

@@ -11,9 +11,9 @@ import time
 import numpy as np
 
 from spinflip.daemon import config
-from spinflip.daemon.sources import dongle
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.calibration.noise_switch import make_noise_switch
+from spinflip.daemon.sources import dongle
 
 
 class _FakeRtlSdr:

@@ -11,12 +11,12 @@ import time
 
 import numpy as np
 import pytest
-
 from rtlsdr_emulator import TONE_HZ, fakertl, fakertl_lib  # noqa: F401  (fixtures)
+
 from spinflip.daemon import config
 from spinflip.daemon.sources import dongle
-from spinflip.daemon.sources.sample_clock import SampleClock
 from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.sample_clock import SampleClock
 
 FS_HZ = 1.024e6          # a rate the RTL2832U supports exactly (librtlsdr's resampler ratio)
 BLOCK_SAMPLES = 16384    # the smallest block the configuration allows

@@ -3,9 +3,9 @@
 import numpy as np
 import pytest
 
-from spinflip.daemon.sky.kinematics import circular_velocity_lsr_km_s, expected_velocity_range_km_s
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.products.scan_average import scan_products
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sky.kinematics import circular_velocity_lsr_km_s, expected_velocity_range_km_s
 
 NCHAN = 1024
 CDELT = 2.4e6 / NCHAN

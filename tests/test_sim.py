@@ -5,8 +5,8 @@ from astropy import units as u
 from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 
 from spinflip.daemon import config
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.dsp.samples import u8_to_complex
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sources.sim import SimSource
 
 

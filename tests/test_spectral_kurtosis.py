@@ -10,8 +10,13 @@ import pytest
 import scipy.special
 
 from spinflip.daemon.dsp.channelizer import make_channelizer, power_sums
-from spinflip.daemon.rfi.spectral_kurtosis import (sk_estimator, sk_flags, sk_fourth_moment,
-                                               sk_moments, sk_thresholds)
+from spinflip.daemon.rfi.spectral_kurtosis import (
+    sk_estimator,
+    sk_flags,
+    sk_fourth_moment,
+    sk_moments,
+    sk_thresholds,
+)
 
 NCHAN = 256
 #: Monte Carlo trials of SK per M (each trial: M exponential powers). 4 binomial sigma at

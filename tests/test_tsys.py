@@ -4,11 +4,15 @@ import numpy as np
 import pytest
 
 from spinflip.daemon import config
-from spinflip.daemon.dsp.block import REF, SIG, Block
 from spinflip.daemon.calibration.noise_source import CalControl
+from spinflip.daemon.calibration.tsys_meter import (
+    TsysMeter,
+    line_free_channels,
+    tsys_from_on_off,
+    usable_channels,
+)
+from spinflip.daemon.dsp.block import REF, SIG, Block
 from spinflip.daemon.dsp.switching import Schedule
-from spinflip.daemon.calibration.tsys_meter import (TsysMeter, line_free_channels, tsys_from_on_off,
-                                  usable_channels)
 
 NCHAN = 512
 

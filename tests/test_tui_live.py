@@ -38,9 +38,9 @@ import uuid
 
 import pytest
 import zmq
+from cli_runner import write_config
 from rich.console import Console
 
-from cli_runner import write_config
 from spinflip.daemon.live import schema
 from spinflip.tui.app import Keyboard, WatchSession, free_loopback_port
 

@@ -5,6 +5,7 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+
 from spinflip.daemon import config
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
 from spinflip.daemon.products.row import Row

@@ -14,12 +14,12 @@ import time
 
 import zmq
 from astropy.io import fits
-
 from cli_runner import live_config
 from rtlsdr_emulator import emulator_env, fakertl_lib, set_control  # noqa: F401  (fixture)
-from spinflip.daemon.storage.journal import count_rows
+
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.ports import free_loopback_port
+from spinflip.daemon.storage.journal import count_rows
 
 RTLSDR_SOURCE = """kind = "rtlsdr"
 sample_rate = 1.024e6

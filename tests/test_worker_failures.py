@@ -16,13 +16,13 @@ import pytest
 from astropy.io import fits
 
 from spinflip.daemon import config
-from spinflip.daemon.storage.archive import ScanWriter
 from spinflip.daemon.live.control import ControlServer, request
-from spinflip.daemon.run.observation import Daemon
-from spinflip.daemon.live.publisher import Publisher
-from spinflip.daemon.storage.writer import ScanStore
-from spinflip.daemon.run.supervisor import Supervisor, WorkerFailed
 from spinflip.daemon.live.ports import free_loopback_port
+from spinflip.daemon.live.publisher import Publisher
+from spinflip.daemon.run.observation import Daemon
+from spinflip.daemon.run.supervisor import Supervisor, WorkerFailed
+from spinflip.daemon.storage.archive import ScanWriter
+from spinflip.daemon.storage.writer import ScanStore
 
 SECONDS = 12.0
 

@@ -47,8 +47,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from scipy.stats import median_abs_deviation
 
-from spinflip.daemon.dsp.channel_grid import lo_mask
 from spinflip.daemon.dsp.block import Block
+from spinflip.daemon.dsp.channel_grid import lo_mask
 
 _EDGE_FRACTION = 0.10     # band edge not used for the band average, each side
 _SMOOTH_CHANNELS = 9

@@ -61,10 +61,10 @@ import scipy
 import scipy.signal
 
 from spinflip.daemon.dsp.block import Block
-from spinflip.daemon.rfi.carriers import CarrierFinder
 from spinflip.daemon.dsp.channelizer import Channelizer, make_channelizer
 from spinflip.daemon.dsp.samples import complex_to_u8, u8_to_complex
 from spinflip.daemon.dsp.spectrometer import FlagSettings, Spectrometer
+from spinflip.daemon.rfi.carriers import CarrierFinder
 
 #: Reference sample rate for the real-time factor (the usual 8-bit dongle rate), samples/s.
 REAL_TIME_RATE = 2.4e6

@@ -14,6 +14,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from spinflip.daemon.sky.hi_line import radio_velocity_m_s
 
 

@@ -32,8 +32,8 @@ import numpy as np
 
 from spinflip.daemon.dsp.block import REF, SIG, Block
 from spinflip.daemon.dsp.channelizer import make_channelizer
-from spinflip.daemon.rfi.impulses import ImpulseBlanker
 from spinflip.daemon.dsp.samples import u8_to_complex
+from spinflip.daemon.rfi.impulses import ImpulseBlanker
 from spinflip.daemon.rfi.spectral_kurtosis import sk_flags
 
 
@@ -47,7 +47,7 @@ class FlagSettings:
     sk_pfa: float = 0.0013
 
     @classmethod
-    def from_config(cls, rfi: dict) -> "FlagSettings | None":
+    def from_config(cls, rfi: dict) -> FlagSettings | None:
         if not (rfi["impulses"] or rfi["sk"]):
             return None
         return cls(rfi["impulses"], rfi["impulse_sigma"], rfi["sk"], rfi["sk_pfa"])

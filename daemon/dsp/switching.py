@@ -34,7 +34,7 @@ class Schedule:
 
     @classmethod
     def from_config(cls, cfg: dict, block_samples: int | None = None,
-                    noise_source: bool | None = None) -> "Schedule":
+                    noise_source: bool | None = None) -> Schedule:
         """The schedule of a configuration.
 
         ``block_samples`` overrides ``source.block_samples`` (a source may round it);

@@ -12,6 +12,7 @@ from __future__ import annotations
 import datetime as _dt
 
 import numpy as np
+
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.sky.spectral_axis import frequency_axis_hz, velocity_axis_lsrk_m_s
 

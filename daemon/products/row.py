@@ -11,6 +11,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from spinflip.daemon.sky.coordinates import SkyPosition
 from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
 

@@ -31,9 +31,9 @@ from __future__ import annotations
 import numpy as np
 
 from spinflip.daemon.products.baseline import fit_baseline
-from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.daemon.products.line_integral import column_density_cm2, integrated_intensity_k_km_s
 from spinflip.daemon.sky.hi_line import C_M_S
+from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.daemon.sky.spectral_axis import scan_average_lsrk
 
 EXTNAME = "SCAN AVERAGE"

@@ -24,6 +24,7 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
+
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
 from spinflip.daemon.rfi.carriers import CarrierFinder, lo_channels
 from spinflip.daemon.rfi.masks import named_channels

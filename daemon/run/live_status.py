@@ -11,6 +11,7 @@ from typing import TYPE_CHECKING, Any
 
 import numpy as np
 import zmq
+
 from spinflip import __version__
 from spinflip.daemon.calibration.kelvin import fold_covered
 from spinflip.daemon.config import ConfigError

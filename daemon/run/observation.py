@@ -58,6 +58,7 @@ from typing import Any
 
 import numpy as np
 from astropy.time import Time
+
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.calibration.noise_switch import NoiseSwitchError, make_noise_switch
 from spinflip.daemon.calibration.tsys_meter import TsysMeter

@@ -14,6 +14,7 @@ from collections.abc import Callable
 
 import numpy as np
 from astropy.time import Time
+
 from spinflip.daemon.calibration.kelvin import calibrate, fold_spoiled
 from spinflip.daemon.calibration.tsys_plan import TsysPlan, TsysTracker
 from spinflip.daemon.dsp.channel_grid import ChannelGrid

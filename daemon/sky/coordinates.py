@@ -43,8 +43,7 @@ from dataclasses import dataclass
 
 import numpy as np
 from astropy import units as u
-from astropy.coordinates import (AltAz, EarthLocation, Galactic, ICRS,
-                                 LSRK, SkyCoord)
+from astropy.coordinates import ICRS, LSRK, AltAz, EarthLocation, Galactic, SkyCoord
 from astropy.time import Time
 from astropy.utils import iers
 from astropy.utils.exceptions import AstropyWarning

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 from astropy.time import Time
+
 from spinflip.daemon.sky import coordinates
 
 

@@ -60,11 +60,11 @@ from pathlib import Path
 
 import numpy as np
 
-from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.calibration.noise_source import CalControl
-from spinflip.daemon.sources.sample_clock import SampleClock
-from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.switching import Schedule
+from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.sample_clock import SampleClock
 
 _TRANSFER_TARGET_S = 1.0 / 16     # aim for this much signal per USB transfer, s
 _TRANSFER_QUANTUM_BYTES = 16384   # transfer sizes are multiples of this (and so of 512)

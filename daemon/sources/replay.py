@@ -16,8 +16,8 @@ from pathlib import Path
 import numpy as np
 from astropy.time import Time
 
-from spinflip.daemon.dsp.block import SIG, Block
 from spinflip.daemon.config import ConfigError
+from spinflip.daemon.dsp.block import SIG, Block
 from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.sources.base import SourceError
 

@@ -34,15 +34,15 @@ import scipy.fft
 from astropy import units as u
 from astropy.time import Time
 
-from spinflip.daemon.sky import coordinates
-from spinflip.daemon.dsp.block import Block
-from spinflip.daemon.sources.sample_clock import SampleClock
 from spinflip.daemon.calibration.noise_source import CalControl
-from spinflip.daemon.sources.galaxy import ModelGalaxy
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.samples import complex_to_u8
 from spinflip.daemon.dsp.switching import Schedule
+from spinflip.daemon.sky import coordinates
+from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.galaxy import ModelGalaxy
+from spinflip.daemon.sources.sample_clock import SampleClock
 
 _CHUNK = 65536                 # samples per frequency-domain shaping chunk
 _GAIN_REF_DB = 40.2            # gain at which the rms per component is _RMS_REF of full scale

@@ -6,6 +6,7 @@ from __future__ import annotations
 from dataclasses import dataclass
 
 import numpy as np
+
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.rfi.interference import RfiRecord  # made where it is decided
 
