@@ -8,7 +8,7 @@ from __future__ import annotations
 import datetime as _dt
 import math
 from dataclasses import dataclass, field
-from enum import Enum
+from enum import StrEnum
 from typing import Any
 
 import numpy as np
@@ -116,17 +116,15 @@ _FIELDS = {
     "event": {"severity": _STR, "text": _STR},
 }
 
-class State(str, Enum):
-    """The daemon's state, as the status message's ``state`` carries it."""
+class State(StrEnum):
+    """The daemon's state, as the status message's ``state`` carries it (``str(State.IDLE)``
+    and f-strings give the value, ``"idle"``)."""
 
     OBSERVING = "observing"
     PAUSED = "paused"
     IDLE = "idle"
     RECONNECTING = "reconnecting"
     STOPPING = "stopping"
-
-    def __str__(self) -> str:          # in messages and f-strings: the value ("observing")
-        return self.value
 
 
 _CHOICES = {
