@@ -57,8 +57,8 @@ class Spectrum:
     unit: str              # "K" or "count"
     exposure_s: float
     folded: bool
-    chan_exposure_s: np.ndarray | None = None   # float32[nchan], after flagging
-    covered: np.ndarray | None = None   # bool[nchan]: has a fold partner (all, unfolded)
+    chan_exposure_s: np.ndarray   # float32[nchan], after flagging
+    covered: np.ndarray           # bool[nchan]: has a fold partner (all, unfolded)
 
 
 def fold_covered(nchan: int, shift_channels: int) -> np.ndarray:

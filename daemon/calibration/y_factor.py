@@ -56,7 +56,7 @@ T0_K = 290.0
 MAX_HOT_LOAD_K = 400.0
 
 
-def _finite(value, what: str) -> float:
+def _finite(value: object, what: str) -> float:
     if isinstance(value, bool) or not isinstance(value, numbers.Real):
         raise LoadsError(f"{what} = {value!r}: expected a number")
     v = float(value)
@@ -65,7 +65,7 @@ def _finite(value, what: str) -> float:
     return v
 
 
-def _power(value, what: str) -> float:
+def _power(value: object, what: str) -> float:
     v = _finite(value, what)
     if v <= 0.0:
         raise LoadsError(f"{what} = {v:g} counts: expected above 0")

@@ -12,10 +12,15 @@ per run (:meth:`ChannelGrid.from_schedule`) and passed to whatever needs a chann
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
+import numpy.typing as npt
 
 from spinflip.daemon.sky.hi_line import radio_velocity_m_s
+
+if TYPE_CHECKING:
+    from spinflip.daemon.dsp.switching import Schedule
 
 
 @dataclass(frozen=True)
@@ -26,7 +31,7 @@ class ChannelGrid:
     channel_hz: float
 
     @classmethod
-    def from_schedule(cls, nchan: int, schedule) -> ChannelGrid:
+    def from_schedule(cls, nchan: int, schedule: Schedule) -> ChannelGrid:
         """The grid of a switching schedule's spectra (its ``channel_hz``)."""
         return cls(int(nchan), float(schedule.channel_hz))
 
@@ -45,7 +50,7 @@ class ChannelGrid:
         """FITS reference pixel (1-based) of the LO channel: ``nchan // 2 + 1``."""
         return self.lo_index + 1.0
 
-    def sky_hz(self, lo_hz: float, channels=None) -> np.ndarray:
+    def sky_hz(self, lo_hz: float, channels: npt.ArrayLike | None = None) -> np.ndarray:
         """Sky frequency (Hz) of ``channels`` (default: all) in a spectrum taken at ``lo_hz``."""
         k = np.arange(self.nchan) if channels is None else np.asarray(channels)
         return lo_hz + (k - self.lo_index) * self.channel_hz

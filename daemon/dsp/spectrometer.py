@@ -26,6 +26,7 @@ normalised by it. Narrow-band carriers, found per integration, are flagged by th
 
 from __future__ import annotations
 
+from collections.abc import Hashable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -69,16 +70,17 @@ class PhaseSums:
     """Power sums of one switching phase over one integration."""
 
     nchan: int
-    s1: np.ndarray = None
-    s2: np.ndarray = None
-    m: np.ndarray = None       # spectra per channel that went in (after flagging)
-    sk_hits: np.ndarray = None # blocks in which spectral kurtosis removed the channel
+    # zeros[nchan], made by __post_init__
+    s1: np.ndarray = field(init=False)
+    s2: np.ndarray = field(init=False)
+    m: np.ndarray = field(init=False)        # spectra per channel that went in (after flagging)
+    sk_hits: np.ndarray = field(init=False)  # blocks in which spectral kurtosis removed the channel
     blocks: int = 0            # blocks offered
     spectra: int = 0           # spectra offered (before flagging)
     exposure_s: float = 0.0    # observing time offered (spectra * N / fs)
     lo_hz: float = 0.0
 
-    def __post_init__(self):
+    def __post_init__(self) -> None:
         self.s1 = np.zeros(self.nchan)
         self.s2 = np.zeros(self.nchan)
         self.m = np.zeros(self.nchan)
@@ -121,13 +123,13 @@ class Spectrometer:
         self.blanker = (ImpulseBlanker(flagging.impulse_sigma, nchan, self.channelizer.taps)
                         if flagging is not None and flagging.impulses else None)
         self.current = self._new()
-        self._last_lo = None
-        self._last_cal = None
+        self._last_lo: float | None = None
+        self._last_cal: bool | None = None
 
     def _new(self) -> Integration:
         return Integration(sums={SIG: PhaseSums(self.nchan), REF: PhaseSums(self.nchan)})
 
-    def add(self, block: Block):
+    def add(self, block: Block) -> tuple[np.ndarray, np.ndarray]:
         """Channelize one block; noise-source-off blocks go into the current integration.
 
         Returns
@@ -175,8 +177,10 @@ class Spectrometer:
         ph.lo_hz = block.lo_hz
         return s1, m
 
-    def _flagged_sums(self, x: np.ndarray, state, tally: BlockFlags):
+    def _flagged_sums(self, x: np.ndarray, state: Hashable, tally: BlockFlags
+                      ) -> tuple[np.ndarray, np.ndarray, np.ndarray, int, np.ndarray | None]:
         """S1, S2 and per-channel counts of a block without the spectra and cells flagged."""
+        assert self.flagging is not None, "only called with flagging configured (see add)"
         history = getattr(self.channelizer, "pending_samples", 0)
         spectra = self.channelizer.spectra_for(x.size)
         tally.blocks += 1

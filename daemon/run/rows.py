@@ -13,11 +13,14 @@ from __future__ import annotations
 from collections.abc import Callable
 
 import numpy as np
+from astropy.coordinates import EarthLocation
 from astropy.time import Time
 
 from spinflip.daemon.calibration.kelvin import calibrate, fold_spoiled
 from spinflip.daemon.calibration.tsys_plan import TsysPlan, TsysTracker
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
+from spinflip.daemon.dsp.spectrometer import Integration
+from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.rfi.interference import Interference, RfiRecord
 from spinflip.daemon.rfi.masks import dc_channels
@@ -28,14 +31,14 @@ from spinflip.daemon.sky.pointing import Pointing
 from spinflip.daemon.sky.spectral_axis import velocity_wcs_m_s
 
 
-def emission_mask(grid: ChannelGrid, lo_hz: float, pointing: Pointing, location,
+def emission_mask(grid: ChannelGrid, lo_hz: float, pointing: Pointing, location: EarthLocation,
                   t_unix_s: float) -> np.ndarray:
     """bool[nchan]: channels of a spectrum at ``lo_hz`` where HI toward ``pointing`` may appear
     (:func:`spinflip.daemon.sky.kinematics.expected_velocity_range_km_s`, LSRK)."""
     t = Time(t_unix_s, format="unix", scale="utc")
     coord = pointing(t)
     pos = coordinates.sky_position(coord, location, t)
-    vframe = coordinates.vframe_lsrk_m_s(coord, location, t)
+    vframe = float(coordinates.vframe_lsrk_m_s(coord, location, t))   # one time: a float
     v_lo, v_hi = expected_velocity_range_km_s(pos.glon_deg, pos.glat_deg)
     v = grid.radio_velocity_km_s(lo_hz, vframe)
     return (v >= v_lo) & (v <= v_hi)
@@ -55,8 +58,9 @@ class RowMaker:
     warn_once : callable(key, severity, text): an event said once per key
     """
 
-    def __init__(self, cfg: dict, grid: ChannelGrid, schedule, location, tsys: TsysTracker,
-                 interference: Interference, warn_once: Callable[[str, str, str], None]):
+    def __init__(self, cfg: dict, grid: ChannelGrid, schedule: Schedule,
+                 location: EarthLocation, tsys: TsysTracker, interference: Interference,
+                 warn_once: Callable[[str, str, str], None]):
         self.cfg = cfg
         self.grid = grid
         self.schedule = schedule
@@ -65,13 +69,14 @@ class RowMaker:
         self.interference = interference
         self.warn_once = warn_once
 
-    def make(self, integ, pointing: Pointing) -> tuple[Row, list[RfiRecord]]:
+    def make(self, integ: Integration, pointing: Pointing) -> tuple[Row, list[RfiRecord]]:
         """The row of a finished integration, and the interference log records that go with it."""
         cfg, sch, grid = self.cfg, self.schedule, self.grid
         nchan = grid.nchan
         switched = sch.mode == "frequency"
         tsys, age, trusted = self.tsys.tsys_for(integ.t_last_s)
         scale_k = tsys if np.isfinite(tsys) else cfg["calibration"]["tsys_k"]
+        assert integ.t_first_s is not None, "a finished integration holds at least one block"
         t_mid = Time((integ.t_first_s + integ.t_last_s) / 2, format="unix", scale="utc")
         date_obs = t_mid.isot
         verdict = self.interference.assess(integ, float(t_mid.unix), date_obs)
@@ -80,7 +85,7 @@ class RowMaker:
                          False, cfg["calibration"]["main_beam_efficiency"], bad=bad)
         coord = pointing(t_mid)
         pos = coordinates.sky_position(coord, self.location, t_mid)
-        vframe = coordinates.vframe_lsrk_m_s(coord, self.location, t_mid)
+        vframe = float(coordinates.vframe_lsrk_m_s(coord, self.location, t_mid))  # one time
         flagged = spec.flagged
         if spec.unit == "K" and not trusted:
             flagged = np.ones_like(flagged)      # on no trustworthy scale: kept, all flagged
@@ -130,7 +135,7 @@ class RowMaker:
         return row, verdict.log
 
 
-def scan_header(cfg: dict, schedule, source_kind: str, block_s: float, plan: TsysPlan,
+def scan_header(cfg: dict, schedule: Schedule, source_kind: str, block_s: float, plan: TsysPlan,
                 switch_text: str, pointing: Pointing) -> dict:
     """The FITS header cards of a scan (site, spectral frames, switching, calibration)."""
     site = cfg["site"]

@@ -39,9 +39,11 @@ import functools
 import logging
 import threading
 import warnings
+from collections.abc import Iterator
 from dataclasses import dataclass
 
 import numpy as np
+import numpy.typing as npt
 from astropy import units as u
 from astropy.coordinates import ICRS, LSRK, AltAz, EarthLocation, Galactic, SkyCoord
 from astropy.time import Time
@@ -68,7 +70,7 @@ _REPORTED: set = set()
 
 
 @contextlib.contextmanager
-def _quiet():
+def _quiet() -> Iterator[None]:
     """Silence astropy's and ERFA's out-of-table accuracy warnings, one thread at a time.
 
     Only accuracy warnings are silenced (IERS range/staleness, astropy's default polar motion
@@ -84,7 +86,7 @@ def _quiet():
 
 
 @contextlib.contextmanager
-def _offline(time: Time):
+def _offline(time: Time) -> Iterator[None]:
     """:func:`_quiet`, and what astropy would have warned about logged once per kind."""
     with _quiet():
         _report_eop(time)
@@ -99,7 +101,7 @@ def _report_eop(time: Time) -> None:
         log.warning(check_eop(time))
 
 
-def _float_or_array(x):
+def _float_or_array(x: npt.ArrayLike) -> float | np.ndarray:
     a = np.asarray(x, dtype=float)
     return float(a) if a.ndim == 0 else a
 
@@ -205,7 +207,8 @@ def _altaz(location: EarthLocation, time: Time) -> AltAz:
     return AltAz(obstime=time, location=location, pressure=0 * u.hPa)
 
 
-def vframe_lsrk_m_s(target: SkyCoord, location: EarthLocation, time: Time):
+def vframe_lsrk_m_s(target: SkyCoord, location: EarthLocation,
+                    time: Time) -> float | np.ndarray:
     """LSRK radio velocity (m/s) of something at rest relative to the telescope.
 
     Parameters
@@ -236,7 +239,7 @@ def vframe_lsrk_m_s(target: SkyCoord, location: EarthLocation, time: Time):
     return _float_or_array(np.sum(v_m_s * n, axis=0))
 
 
-def _sky_coord(frame: str, lon_deg, lat_deg) -> SkyCoord:
+def _sky_coord(frame: str, lon_deg: npt.ArrayLike, lat_deg: npt.ArrayLike) -> SkyCoord:
     if frame == "galactic":
         return SkyCoord(l=np.asarray(lon_deg) * u.deg, b=np.asarray(lat_deg) * u.deg,
                         frame=Galactic())
@@ -246,7 +249,9 @@ def _sky_coord(frame: str, lon_deg, lat_deg) -> SkyCoord:
     raise ValueError(f"sky frame {frame!r} is not one of 'galactic', 'radec'")
 
 
-def sky_to_azel(frame: str, lon_deg, lat_deg, location: EarthLocation, time: Time):
+def sky_to_azel(frame: str, lon_deg: npt.ArrayLike, lat_deg: npt.ArrayLike,
+                location: EarthLocation,
+                time: Time) -> tuple[float | np.ndarray, float | np.ndarray]:
     """(azimuth, elevation) in deg of a sky position at a site and time; no refraction.
 
     Parameters
@@ -271,7 +276,8 @@ def sky_to_azel(frame: str, lon_deg, lat_deg, location: EarthLocation, time: Tim
     return _float_or_array(aa.az.deg), _float_or_array(aa.alt.deg)
 
 
-def azel_to_sky(az_deg, el_deg, location: EarthLocation, time: Time) -> dict:
+def azel_to_sky(az_deg: npt.ArrayLike, el_deg: npt.ArrayLike, location: EarthLocation,
+                time: Time) -> dict:
     """GLON, GLAT, RA, DEC (deg) seen at a fixed azimuth and elevation (a drift scan).
 
     Parameters
@@ -296,7 +302,8 @@ def azel_to_sky(az_deg, el_deg, location: EarthLocation, time: Time) -> dict:
 def galactic_to_altaz(glon_deg: float, glat_deg: float, location: EarthLocation,
                       time: Time) -> tuple[float, float]:
     """(azimuth, elevation) in deg of a Galactic position; no refraction."""
-    return sky_to_azel("galactic", glon_deg, glat_deg, location, time)
+    az, el = sky_to_azel("galactic", glon_deg, glat_deg, location, time)
+    return float(az), float(el)     # scalar position and time: already floats
 
 
 def pointing_coord(frame: str, lon_deg: float, lat_deg: float, location: EarthLocation,
@@ -361,7 +368,8 @@ def best_plane_longitude(location: EarthLocation, time: Time, min_elevation_deg:
     higher than ``min_elevation_deg + 15``; otherwise the highest point of the plane.
     """
     grid = np.arange(0.0, 360.0, 5.0)
-    _az, el = sky_to_azel("galactic", grid, np.zeros_like(grid), location, time)
+    _az, el_any = sky_to_azel("galactic", grid, np.zeros_like(grid), location, time)
+    el = np.asarray(el_any)         # an array of longitudes gives an array
     first = (grid >= 20) & (grid <= 90)
     if np.max(el[first]) > min_elevation_deg + 15:
         return float(grid[first][np.argmax(el[first])])

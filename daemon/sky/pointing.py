@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+from astropy.coordinates import EarthLocation, SkyCoord
 from astropy.time import Time
 
 from spinflip.daemon.sky import coordinates
@@ -12,7 +13,7 @@ class Pointing:
     position at any time; ``frame = "auto"`` picks a Galactic-plane longitude above the
     horizon at ``t_start`` (:func:`spinflip.daemon.sky.coordinates.best_plane_longitude`)."""
 
-    def __init__(self, cfg: dict, location, t_start: Time):
+    def __init__(self, cfg: dict, location: EarthLocation, t_start: Time):
         p = cfg["pointing"]
         self.frame, self.lon, self.lat = p["frame"], p["lon"], p["lat"]
         if self.frame == "auto":
@@ -28,7 +29,7 @@ class Pointing:
             return f"RA{self.lon:06.2f}DEC{self.lat:+06.2f}"
         return f"AZ{self.lon:05.1f}EL{self.lat:04.1f}"
 
-    def __call__(self, t: Time):
+    def __call__(self, t: Time) -> SkyCoord:
         return coordinates.pointing_coord(self.frame, self.lon, self.lat, self.location, t)
 
     def elevation_deg(self, t: Time) -> float:

@@ -22,6 +22,7 @@ Linux ``clock_gettime(2)`` manual page (adjtime/NTP affect MONOTONIC's rate, not
 from __future__ import annotations
 
 import time as _time
+from collections.abc import Callable
 
 #: Smallest change of (system - monotonic) taken for a step, s. NTP slews at most 500 ppm, so
 #: within any block a true slew is far below this (common practice: ntpd steps above 0.128 s).
@@ -40,7 +41,8 @@ class SampleClock:
         Smallest change of the system clock against the monotonic one reported as a step.
     """
 
-    def __init__(self, wall=_time.time, mono=_time.monotonic,
+    def __init__(self, wall: Callable[[], float] = _time.time,
+                 mono: Callable[[], float] = _time.monotonic,
                  step_threshold_s: float = STEP_THRESHOLD_S):
         self.wall, self.mono = wall, mono
         self.step_threshold_s = float(step_threshold_s)
