@@ -23,6 +23,7 @@ import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any
 
 from spinflip import __version__
 from spinflip.daemon.calibration.y_factor import (
@@ -144,7 +145,7 @@ def _is_text(value: str) -> bool:
     return 0 < len(value) <= _MAX_TEXT and all(32 <= ord(c) < 127 for c in value)
 
 
-def _typed(key: str, value, kind: type, where: str):
+def _typed(key: str, value: object, kind: type, where: str) -> str | float:
     """One value checked against its type (str: printable ASCII; float: finite number)."""
     if kind is str:
         if not isinstance(value, str) or not _is_text(value):
@@ -181,7 +182,7 @@ def check_meta(meta: dict, where: str = "meta") -> dict:
     unknown = sorted(str(k) for k in meta if k not in META_KEYS)
     if unknown:
         raise LoadsError(f"{where}: unknown key {unknown[0]!r}; allowed: {', '.join(META_KEYS)}")
-    out = {}
+    out: dict[str, Any] = {}   # str or float by META_KEYS
     for key, kind in META_KEYS.items():
         if key not in meta:
             raise LoadsError(f"{where}: key {key!r} is missing; expected {', '.join(META_KEYS)}")
@@ -249,14 +250,14 @@ def make_record(meta: dict, *, p_hot_counts: float, p_cold_counts: float, t_hot_
         p_cold_cal_counts=p_cold_cal_counts, noise_source_k=t_cal)
 
 
-def _record_from_dict(data, where: str) -> LoadsRecord:
+def _record_from_dict(data: object, where: str) -> LoadsRecord:
     """Validate a decoded JSON object and build the record (LoadsError naming ``where``)."""
     if not isinstance(data, dict):
         raise LoadsError(f"{where}: expected a JSON object, found {type(data).__name__}")
     if data.get("format") != RECORD_FORMAT:
         raise LoadsError(f"{where}: key 'format' = {data.get('format')!r}: expected "
                          f"{RECORD_FORMAT} (a spinflip hot/cold calibration record)")
-    values = {}
+    values: dict[str, Any] = {}   # LoadsRecord's fields, each checked against its kind
     for key, kind in _FIELD_KINDS.items():
         if key not in data:
             if key in _OPTIONAL:
@@ -291,7 +292,7 @@ def _record_from_dict(data, where: str) -> LoadsRecord:
     return LoadsRecord(**values)
 
 
-def save_record(record: LoadsRecord, folder) -> Path:
+def save_record(record: LoadsRecord, folder: str | os.PathLike[str]) -> Path:
     """Write ``<folder>/<record.name>.json`` atomically; return its path.
 
     Parameters
@@ -348,7 +349,7 @@ def save_record(record: LoadsRecord, folder) -> Path:
     return final
 
 
-def load_record(path) -> LoadsRecord:
+def load_record(path: str | os.PathLike[str]) -> LoadsRecord:
     """Read and validate one calibration record.
 
     Parameters
@@ -386,7 +387,7 @@ def load_record(path) -> LoadsRecord:
     return _record_from_dict(data, where)
 
 
-def latest_record(folder) -> LoadsRecord | None:
+def latest_record(folder: str | os.PathLike[str]) -> LoadsRecord | None:
     """The newest calibration record in ``folder`` by its time, or None if there is none.
 
     Parameters

@@ -40,7 +40,7 @@ def records_dir(cfg: dict) -> Path:
     return Path(folder).expanduser()
 
 
-def _usable_record(cfg: dict, now_unix_s: float):
+def _usable_record(cfg: dict, now_unix_s: float) -> loads_mod.LoadsRecord | None:
     """The newest hot/cold record, checked for age and receiver settings (LoadsError if not)."""
     folder = records_dir(cfg)
     record = loads_mod.latest_record(folder)

@@ -45,7 +45,9 @@ def expected_emission(v_km_s: np.ndarray, glon_deg: np.ndarray, glat_deg: np.nda
     """(line, ghosts): bool masks of where HI (and, if shifted, its fold ghosts) can be."""
     line = np.zeros(v_km_s.size, dtype=bool)
     ghosts = np.zeros(v_km_s.size, dtype=bool)
-    pairs = sorted({(round(float(l), 1), round(float(b), 1)) for l, b in zip(glon_deg, glat_deg)})
+    # GLON and GLAT are columns of one table: one of each per row
+    pairs = sorted({(round(float(l), 1), round(float(b), 1))
+                    for l, b in zip(glon_deg, glat_deg, strict=True)})
     for l, b in pairs[:: max(1, len(pairs) // 20)]:
         lo, hi = expected_velocity_range_km_s(l, b)
         line |= (v_km_s >= lo) & (v_km_s <= hi)

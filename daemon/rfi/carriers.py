@@ -40,6 +40,7 @@ thresholds (no single source).
 from __future__ import annotations
 
 from collections import deque
+from collections.abc import Hashable
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
@@ -108,11 +109,11 @@ class CarrierFinder:
         self.usable = np.zeros(nchan, dtype=bool)
         self.usable[edge:nchan - edge] = True
         self.usable &= ~lo_channels(nchan)                      # DC: flagged by name
-        self._past: dict = {}                                    # (phase, lo) -> deque of r
-        self.last_found: dict = {}                               # phase -> the newest result
-        self.last_z: dict = {}                                   # phase -> r / sigma
+        self._past: dict[Hashable, deque[np.ndarray]] = {}       # (phase, lo) -> deque of r
+        self.last_found: dict[Hashable, np.ndarray] = {}         # phase -> the newest result
+        self.last_z: dict[Hashable, np.ndarray] = {}             # phase -> r / sigma
 
-    def find(self, key, mean_power: np.ndarray, counts: np.ndarray,
+    def find(self, key: Hashable, mean_power: np.ndarray, counts: np.ndarray,
              protected: np.ndarray | None = None) -> np.ndarray:
         """bool[nchan]: carrier channels of one phase's mean power spectrum.
 

@@ -26,6 +26,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
+from spinflip.daemon.dsp.spectrometer import Integration
 from spinflip.daemon.rfi.carriers import CarrierFinder, lo_channels
 from spinflip.daemon.rfi.masks import named_channels
 
@@ -86,7 +87,7 @@ class Interference:
         self._carrier_freqs: dict = {}   # phase -> set of sky frequencies flagged last time
         self.totals = {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}
 
-    def assess(self, integ, t_mid_unix_s: float, date_obs: str) -> Verdict:
+    def assess(self, integ: Integration, t_mid_unix_s: float, date_obs: str) -> Verdict:
         """Per phase: channels flagged by name or as carriers; the count; log records dated
         ``date_obs``."""
         nchan, cfg = self.grid.nchan, self.cfg
@@ -125,7 +126,8 @@ class Interference:
             freqs = set(sky)
             z = None
             if found is not None and self.carriers is not None:   # excess of those it found
-                z = np.where(found, self.carriers.last_z.get(phase), np.nan)
+                # no z when the noise scale was not finite (then nothing was found): all NaN
+                z = np.where(found, self.carriers.last_z.get(phase, np.nan), np.nan)
             before = self._carrier_freqs.get(phase, set())
             for f in sorted(freqs - before):
                 strength = float(z[sky[f]]) if z is not None and np.isfinite(z[sky[f]]) else \

@@ -14,6 +14,8 @@ Channel k of a spectrum at LO f_LO covers sky frequencies f_LO + (k - N//2 -+ 1/
 
 from __future__ import annotations
 
+from collections.abc import Iterable, Sequence
+
 import numpy as np
 
 from spinflip.daemon.dsp.channel_grid import ChannelGrid, lo_mask
@@ -25,7 +27,8 @@ def dc_channels(nchan: int, flag_dc: bool = True) -> np.ndarray:
 
 
 def named_channels(lo_hz: float, nchan: int, channel_hz: float, flag_dc: bool = True,
-                   spurs_hz=(), masks_mhz=()) -> np.ndarray:
+                   spurs_hz: Iterable[float] = (),
+                   masks_mhz: Sequence[Sequence[float]] = ()) -> np.ndarray:
     """bool[nchan]: the channels flagged by name for a spectrum taken at ``lo_hz``."""
     grid = ChannelGrid(nchan, channel_hz)
     out = dc_channels(nchan, flag_dc)

@@ -394,8 +394,9 @@ def _pearson_type4(c0: float, c1: float, c2: float, pfa: float) -> tuple[float, 
 def _pearson4(mu2: np.ndarray, mu3: np.ndarray, mu4: np.ndarray,
               pfa: float) -> tuple[np.ndarray, np.ndarray]:
     """Vectorised :func:`_pearson4_one` over arrays of moments."""
+    # the three moments are elementwise functions of the same m: equal sizes
     out = [_pearson4_one(float(x), float(y), float(z), pfa)
-           for x, y, z in zip(np.ravel(mu2), np.ravel(mu3), np.ravel(mu4))]
+           for x, y, z in zip(np.ravel(mu2), np.ravel(mu3), np.ravel(mu4), strict=True)]
     lo = np.array([o[0] for o in out]).reshape(np.shape(mu2))
     hi = np.array([o[1] for o in out]).reshape(np.shape(mu2))
     return lo, hi
