@@ -10,7 +10,9 @@ import argparse
 import faulthandler
 import json
 import sys
+from collections.abc import Sequence
 from pathlib import Path
+from typing import TYPE_CHECKING, NoReturn
 
 from spinflip.daemon.config import (
     DEFAULT_CONTROL_ENDPOINT,
@@ -18,9 +20,13 @@ from spinflip.daemon.config import (
     ConfigError,
 )
 
+if TYPE_CHECKING:  # the subcommands import their modules lazily, at run time
+    from spinflip.daemon.commands.loads_session import Step
+    from spinflip.daemon.run.observation import RunResult
+
 
 class _Parser(argparse.ArgumentParser):
-    def error(self, message):  # one line, exit 2
+    def error(self, message: str) -> NoReturn:  # one line, exit 2
         self.exit(2, f"{self.prog}: error: {message}\n")
 
 
@@ -112,22 +118,22 @@ def build_parser() -> argparse.ArgumentParser:
     return p
 
 
-def _cmd_chain(args) -> int:
+def _cmd_chain(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.chain_table import chain_main
     return chain_main(args.file)
 
 
-def _cmd_doctor(args) -> int:
+def _cmd_doctor(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.doctor import doctor_main
     return doctor_main(args.config, out_dir=args.out)
 
 
-def _cmd_soak(args) -> int:
+def _cmd_soak(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.soak import soak_main
     return soak_main(args.seconds, args.json, args.check)
 
 
-def _cmd_run(args) -> int:
+def _cmd_run(args: argparse.Namespace) -> int:
     from spinflip.daemon import config as config_mod
     from spinflip.daemon.run.observation import Daemon
     from spinflip.daemon.sources.base import parse_source_option
@@ -161,7 +167,7 @@ def _cmd_run(args) -> int:
     return 0
 
 
-def _report_saved(result, out_dir) -> None:
+def _report_saved(result: RunResult, out_dir: Path) -> None:
     """One line per scan file written (integrations in it), or that none was."""
     for f in result.files:
         n = result.file_rows.get(str(f), result.rows)
@@ -174,7 +180,7 @@ def _report_saved(result, out_dir) -> None:
             f" ({result.rows} finished)" if result.rows else " (none finished)"))
 
 
-def _cmd_loads(args) -> int:
+def _cmd_loads(args: argparse.Namespace) -> int:
     from spinflip.daemon import config as config_mod
     from spinflip.daemon.calibration import loads as loads_mod
     from spinflip.daemon.calibration.tsys_plan import records_dir
@@ -188,7 +194,7 @@ def _cmd_loads(args) -> int:
         over["output"] = {"dir": args.out}
     config_mod.merge(cfg, over, origin="command line")
 
-    def prompt(step):
+    def prompt(step: Step) -> None:
         print(step.instruction if not args.yes else f"Step {step.number} of {step.total}: "
               f"{step.title.lower()} ...", flush=True)
         if not args.yes:
@@ -219,48 +225,48 @@ def _control_for(data_endpoint: str) -> str:
     return f"{head}:{int(port) + 1}"
 
 
-def _cmd_watch(args) -> int:
+def _cmd_watch(args: argparse.Namespace) -> int:
     from spinflip.tui.app import watch_main
     control = args.control or _control_for(args.connect)
     return watch_main(args.connect, control, args.keys)
 
 
-def _cmd_demo(args) -> int:
+def _cmd_demo(args: argparse.Namespace) -> int:
     from spinflip.tui.app import demo_main
     return demo_main(seconds=args.seconds, out_dir=args.out, fast=args.fast)
 
 
-def _cmd_ctl(args) -> int:
+def _cmd_ctl(args: argparse.Namespace) -> int:
     from spinflip.daemon.live.control import ctl_main
     return ctl_main(args.connect, args.words, args.keys, args.timeout)
 
 
-def _cmd_keys(args) -> int:
+def _cmd_keys(args: argparse.Namespace) -> int:
     from spinflip.daemon.live.keys import keys_main
     return keys_main(Path(args.dir), args.client)
 
 
-def _cmd_collect(args) -> int:
+def _cmd_collect(args: argparse.Namespace) -> int:
     from spinflip.daemon.live.collect import main_collect
     return main_collect(args.stations, relay=args.relay, archive=args.archive, keys=args.keys,
                         duration=args.duration)
 
 
-def _cmd_inspect(args) -> int:
+def _cmd_inspect(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.inspect import format_summary, summarize
     summary = summarize(Path(args.file))
     print(json.dumps(summary, indent=2) if args.json else format_summary(summary))
     return 0
 
 
-def _cmd_bench(args) -> int:
+def _cmd_bench(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.bench import format_bench, run_bench
     result = run_bench(seconds=args.seconds)
     print(json.dumps(result, indent=2) if args.json else format_bench(result))
     return 0
 
 
-def main(argv=None) -> int:
+def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
     handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
                "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,

@@ -29,7 +29,7 @@ from spinflip.daemon.storage.columns import (
     _scalars,
 )
 from spinflip.daemon.storage.durable import fsync_dir, try_lock, write_all
-from spinflip.daemon.storage.fits_file import _write_fits_atomic, read_scan
+from spinflip.daemon.storage.fits_file import Products, _write_fits_atomic, read_scan
 from spinflip.daemon.storage.journal import (
     JOURNAL_FORMAT,
     _encode,
@@ -76,7 +76,8 @@ class ScanWriter:
     before the error is raised, so later appends still land in a readable journal.
     """
 
-    def __init__(self, out_dir: Path, scan_name: str, header: dict, nchan: int, products=None):
+    def __init__(self, out_dir: Path, scan_name: str, header: dict, nchan: int,
+                 products: Products | None = None):
         self.products = products
         self.out_dir = Path(out_dir)
         self.nchan = int(nchan)

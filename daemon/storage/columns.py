@@ -90,7 +90,7 @@ def _is_ascii_text(value: str) -> bool:
 # ----------------------------------------------------------------------------------------------
 
 
-def _plain_scalar(key: str, value, where: str):
+def _plain_scalar(key: str, value: object, where: str) -> bool | int | float | str:
     """A header or extra-column value as a JSON-safe bool/int/float/str, or ValueError."""
     if isinstance(value, (bool, np.bool_)):
         return bool(value)
@@ -127,7 +127,7 @@ def _check_header(header: dict) -> dict:
 def _scalars(record: dict, spec: dict, what: str) -> dict:
     """The scalars ``spec`` names (name -> (kind, unit)) of ``record``, checked: "s" printable
     ASCII strings, "f" real numbers (as float); ValueError naming ``what`` and the key."""
-    out = {}
+    out: dict[str, str | float] = {}
     for key, (kind, _unit) in spec.items():
         value = record[key]
         if kind == "s":

@@ -13,7 +13,7 @@ from pathlib import Path
 try:  # POSIX advisory locks; without them recovery cannot tell a live journal from a dead one
     import fcntl
 except ImportError:  # pragma: no cover - non-POSIX
-    fcntl = None
+    fcntl = None  # type: ignore[assignment]  # the module is absent; callers test for None
 
 
 def fsync_dir(path: Path) -> None:

@@ -25,7 +25,9 @@ from __future__ import annotations
 
 import logging
 import os
+from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
@@ -44,7 +46,15 @@ from spinflip.daemon.storage.columns import (
 from spinflip.daemon.storage.durable import fsync_dir
 from spinflip.daemon.utc import utc_iso
 
+if TYPE_CHECKING:  # astropy is imported where it is used: it is slow to import
+    from astropy.io import fits
+    from astropy.table import Table
+
 log = logging.getLogger("spinflip.archive")
+
+#: Derived products of a scan: ``products(header, nchan, rows)`` returns the extra HDUs to
+#: append to its FITS file (e.g. :func:`spinflip.daemon.products.scan_average.scan_products`).
+Products = Callable[[dict, int, list], list]
 
 ORIGIN = "spinflip"
 
@@ -70,7 +80,7 @@ def _with_notes(header: dict, notes: list) -> dict:
     return dict(header, _NOTES=[f"{n['DATE-OBS']} {n['TEXT']}" for n in notes]) if notes else header
 
 
-def _rfi_hdu(rfi: list):
+def _rfi_hdu(rfi: list) -> fits.BinTableHDU:
     """The RFI LOG BINTABLE: what kind of interference was seen when."""
     from astropy.io import fits
 
@@ -81,7 +91,7 @@ def _rfi_hdu(rfi: list):
     return hdu
 
 
-def _tsys_hdu(tsys: list, nchan: int):
+def _tsys_hdu(tsys: list, nchan: int) -> fits.BinTableHDU:
     """The TSYS HISTORY BINTABLE: one row per firing of the noise source."""
     from astropy.io import fits
 
@@ -96,7 +106,7 @@ def _tsys_hdu(tsys: list, nchan: int):
 
 
 def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
-                products=None, rfi: list | None = None):
+                products: Products | None = None, rfi: list | None = None) -> fits.HDUList:
     """The FITS HDU list of one scan: empty primary HDU, the SINGLE DISH BINTABLE, then the
     TSYS HISTORY table (if the noise source fired) and any HDUs ``products(header, nchan, rows)``
     returns (derived products, e.g. the baselined scan average)."""
@@ -178,7 +188,8 @@ def _build_hdul(header: dict, nchan: int, rows: list, tsys: list | None = None,
 
 
 def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows: list,
-                       tsys: list | None = None, products=None, rfi: list | None = None) -> Path:
+                       tsys: list | None = None, products: Products | None = None,
+                       rfi: list | None = None) -> Path:
     """Write ``<scan>.fits`` via ``<scan>.fits.tmp`` + fsync + os.replace + fsync(folder)."""
     final = out_dir / f"{scan}.fits"
     tmp = out_dir / f"{scan}.fits.tmp"
@@ -199,7 +210,7 @@ def _write_fits_atomic(out_dir: Path, scan: str, header: dict, nchan: int, rows:
 # ----------------------------------------------------------------------------------------------
 
 
-def read_scan(path: Path):
+def read_scan(path: Path) -> tuple[dict, Table]:
     """Read a scan written by this module.
 
     Returns

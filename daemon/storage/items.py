@@ -4,11 +4,15 @@ a :class:`~spinflip.daemon.products.row.Row`, or one of these records."""
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.rfi.interference import RfiRecord  # made where it is decided
+
+if TYPE_CHECKING:
+    from spinflip.daemon.calibration.tsys_meter import TsysMeasurement
 
 __all__ = ["CloseScan", "Item", "Note", "OpenScan", "RfiRecord", "Row", "TsysRecord",
            "item_bytes"]
@@ -42,7 +46,7 @@ class TsysRecord:
     tsys_chan_k: np.ndarray | None   # float[nchan], or None (the measurement failed)
 
     @classmethod
-    def of(cls, meas, date_obs: str) -> TsysRecord:
+    def of(cls, meas: TsysMeasurement, date_obs: str) -> TsysRecord:
         """The record of a :class:`spinflip.daemon.calibration.tsys_meter.TsysMeasurement`."""
         nan = float("nan")
         return cls(date_obs, meas.tsys_k, meas.tsys_phase_k.get("sig", nan),
@@ -66,6 +70,6 @@ class Note:
 Item = Row | OpenScan | CloseScan | TsysRecord | RfiRecord | Note
 
 
-def item_bytes(item) -> int:
+def item_bytes(item: Item) -> int:
     """Memory an item holds (its arrays), bytes; records of scalars count as 0."""
     return item.nbytes if isinstance(item, (Row, TsysRecord)) else 0

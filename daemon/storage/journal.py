@@ -42,6 +42,7 @@ import json
 import numbers
 import struct
 import zlib
+from collections.abc import Iterator
 from pathlib import Path
 
 import numpy as np
@@ -93,7 +94,7 @@ def _row_record(row: dict, nchan: int) -> bytes:
             raise ValueError(f"row CHANEXP {chanexp.shape}: expected ({nchan},)")
         meta["chanexp"] = True
         arrays += chanexp.tobytes()
-    extras = {}
+    extras: dict[str, int | float] = {}
     for key, value in row.items():
         if key in meta or key in ("DATA", "FLAGGED", "CHANEXP"):
             continue
@@ -149,7 +150,8 @@ class JournalContents:
         return self.torn_bytes + sum(n for _, n in self.damaged)
 
 
-def _check_body(buf: bytes, pos: int, length: int, crc: int):
+def _check_body(buf: bytes, pos: int, length: int,
+                crc: int) -> tuple[int, dict, memoryview] | None:
     """(end, meta, arrays) of the record at ``pos`` with this length and CRC if its payload
     checks out (sane length, CRC-32, a JSON object as meta), else None. The magic is not
     looked at."""
@@ -171,7 +173,7 @@ def _check_body(buf: bytes, pos: int, length: int, crc: int):
     return start + length, meta, payload[_U32.size + mlen:]
 
 
-def _record_at(buf: bytes, pos: int):
+def _record_at(buf: bytes, pos: int) -> tuple[int, dict, memoryview] | None:
     """(end, meta, arrays) of the whole record starting at ``pos``, or None."""
     if pos + _PREFIX.size > len(buf):
         return None
@@ -196,7 +198,7 @@ def _next_record(buf: bytes, pos: int) -> int:
         pos = q + 1
 
 
-def _scan_records(buf: bytes):
+def _scan_records(buf: bytes) -> Iterator[tuple[int, int, dict | None, memoryview | None]]:
     """Walk ``buf``: yield ``(start, end, meta, arrays)`` for each whole record and
     ``(start, end, None, None)`` for each stretch of bytes between them that is not one.
 
@@ -215,7 +217,7 @@ def _scan_records(buf: bytes):
             pos = nxt
 
 
-def _record_nchan(meta: dict, arrays: bytes) -> int | None:
+def _record_nchan(meta: dict, arrays: bytes | memoryview) -> int | None:
     """Channels a row or tsys record implies by the size of its arrays (None: cannot tell)."""
     kind = meta.get("kind")
     per = (9 if meta.get("chanexp") else 5) if kind == "row" else 4 if kind == "tsys" else 0
@@ -224,7 +226,7 @@ def _record_nchan(meta: dict, arrays: bytes) -> int | None:
     return len(arrays) // per
 
 
-def _salvage_header(buf: bytes, end: int, nchan: int | None):
+def _salvage_header(buf: bytes, end: int, nchan: int | None) -> tuple[dict | None, bool]:
     """Header meta from a damaged first record spanning ``buf[:end]``, and how sure it is.
 
     Returns (meta, verified) or (None, False). If only the marker was hit, length and CRC-32
@@ -288,15 +290,15 @@ def read_journal(path: Path) -> JournalContents:
 
     first = items[0] if items else None
     if first is not None and first[2] is not None and first[2].get("kind") == "header":
-        meta = first[2]
-        if meta.get("format") != JOURNAL_FORMAT:       # another format: read nothing of it
+        head = first[2]
+        if head.get("format") != JOURNAL_FORMAT:       # another format: read nothing of it
             out.torn_bytes = len(buf)
             return out
-        out.scan, out.nchan, out.header = meta["scan"], int(meta["nchan"]), meta["header"]
+        out.scan, out.nchan, out.header = head["scan"], int(head["nchan"]), head["header"]
         out.intact_bytes = first[1]
         items = items[1:]
     elif first is not None:                            # the header record is damaged
-        nchan = next((k for _s, _e, m, a in items if m is not None
+        nchan = next((k for _s, _e, m, a in items if m is not None and a is not None
                       for k in [_record_nchan(m, a)] if k is not None), None)
         hdr_end = first[1] if first[2] is None else 0
         meta, verified = _salvage_header(buf, hdr_end, nchan) if hdr_end else (None, False)
@@ -313,7 +315,7 @@ def read_journal(path: Path) -> JournalContents:
             drop(0, hdr_end)
             items = items[1:]
     for start, end, meta, arrays in items:
-        if meta is None or out.nchan is None or not _take(out, meta, arrays):
+        if meta is None or arrays is None or out.nchan is None or not _take(out, meta, arrays):
             drop(start, end)
         else:
             out.intact_bytes = end
@@ -322,9 +324,10 @@ def read_journal(path: Path) -> JournalContents:
     return out
 
 
-def _take(out: JournalContents, meta: dict, arrays: bytes) -> bool:
+def _take(out: JournalContents, meta: dict, arrays: bytes | memoryview) -> bool:
     """Add one whole record to ``out``; False if it does not fit the scan."""
     nchan = out.nchan
+    assert nchan is not None, "records are taken only once the scan's channel count is known"
     kind = meta.get("kind")
     if kind == "tsys":
         if len(arrays) != 4 * nchan:

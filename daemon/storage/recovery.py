@@ -14,20 +14,25 @@ import logging
 import os
 import stat
 import textwrap
+from collections.abc import Callable
 from pathlib import Path
 
 from spinflip.daemon.storage.durable import fsync_dir, try_lock
-from spinflip.daemon.storage.fits_file import _with_notes, _write_fits_atomic
+from spinflip.daemon.storage.fits_file import Products, _with_notes, _write_fits_atomic
 from spinflip.daemon.storage.journal import JournalContents, read_journal
 
 log = logging.getLogger("spinflip.archive")
+
+#: Where recovery says what it did: ``report(severity, text)``, severity "info", "warning" or
+#: "error" (the daemon's event log); None: the log.
+Report = Callable[[str, str], None]
 
 #: Unreadable journals that could not be renamed either: passed over for the rest of this
 #: process, so a retry loop does not hit (and report) them again and again.
 _PASSED_OVER: set[str] = set()
 
 
-def _say(report, severity: str, text: str) -> None:
+def _say(report: Report | None, severity: str, text: str) -> None:
     """Tell ``report(severity, text)`` if given, else log ``text`` at that severity."""
     if report is not None:
         report(severity, text)
@@ -52,7 +57,7 @@ def _set_aside(jpath: Path, suffix: str) -> Path | None:
     return aside
 
 
-def _set_aside_unreadable(jpath: Path, why: str, report) -> None:
+def _set_aside_unreadable(jpath: Path, why: str, report: Report | None) -> None:
     """One error line for a journal that cannot be read; it is renamed to ``.unreadable`` so
     that later starts go past it, or, if even that fails, passed over in this process."""
     aside = _set_aside(jpath, ".unreadable")
@@ -95,7 +100,8 @@ def _with_history(header: dict, contents: JournalContents) -> dict:
     return header
 
 
-def recover(out_dir: Path, products=None, report=None) -> list[Path]:
+def recover(out_dir: Path, products: Products | None = None,
+            report: Report | None = None) -> list[Path]:
     """Turn every journal a crashed run left in ``out_dir`` into its FITS file.
 
     For each ``*.journal`` not locked by a live writer, its intact records become
@@ -150,7 +156,8 @@ def recover(out_dir: Path, products=None, report=None) -> list[Path]:
     return written
 
 
-def finalise_journal(jpath: Path, products=None, report=None) -> Path | None:
+def finalise_journal(jpath: Path, products: Products | None = None,
+                     report: Report | None = None) -> Path | None:
     """Turn one unlocked journal into its FITS file (as :func:`recover` does for each).
 
     Returns the FITS file, or None when there was nothing to write, a running writer holds
@@ -160,7 +167,8 @@ def finalise_journal(jpath: Path, products=None, report=None) -> Path | None:
     return _finalise_path(Path(jpath), products, report)
 
 
-def _finalise_path(jpath: Path, products, report) -> Path | None:
+def _finalise_path(jpath: Path, products: Products | None,
+                   report: Report | None) -> Path | None:
     """Open and lock one journal, then :func:`_finalise_locked`; see :func:`recover`."""
     if os.path.abspath(jpath) in _PASSED_OVER:
         return None
@@ -192,7 +200,8 @@ def _finalise_path(jpath: Path, products, report) -> Path | None:
         os.close(fd)
 
 
-def _finalise_locked(jpath: Path, products=None, report=None) -> Path | None:
+def _finalise_locked(jpath: Path, products: Products | None = None,
+                     report: Report | None = None) -> Path | None:
     """Journal (locked by the caller) -> FITS, then remove the journal (or keep it as
     ``.bad`` if it was damaged); see :func:`recover`."""
     out_dir = jpath.parent
@@ -219,6 +228,7 @@ def _finalise_locked(jpath: Path, products=None, report=None) -> Path | None:
         fsync_dir(out_dir)
         return None
     header = contents.header if contents.header is not None else {"BUNIT": None}
+    assert contents.nchan is not None, "a journal's rows are read only once its channels are known"
     path = _write_fits_atomic(out_dir, scan, _with_history(header, contents), contents.nchan,
                               contents.rows, contents.tsys, products, contents.rfi)
     n = len(contents.rows)

@@ -42,6 +42,7 @@ from pathlib import Path
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.run.supervisor import one_line
 from spinflip.daemon.storage import archive
+from spinflip.daemon.storage.fits_file import Products
 from spinflip.daemon.storage.items import (
     CloseScan,
     Item,
@@ -87,8 +88,9 @@ class ScanStore:
         Wraps the thread body (the daemon's :meth:`Supervisor.guard`); None: run it bare.
     """
 
-    def __init__(self, out_dir: Path, nchan: int, products, event, hold_bytes: int,
-                 retry_s: float = 2.0, on_open=None,
+    def __init__(self, out_dir: Path, nchan: int, products: Products | None,
+                 event: Callable[[str, str], None], hold_bytes: int,
+                 retry_s: float = 2.0, on_open: Callable[[str], None] | None = None,
                  guard: Callable[[str, Callable[[], None]], Callable[[], None]] | None = None):
         self.out_dir = Path(out_dir)
         self.nchan = nchan
@@ -109,7 +111,7 @@ class ScanStore:
         self.failed_rows = 0                # integrations among them
         self.error: OSError | None = None   # the write error, while writing fails
         self._unfinished: list[Path] = []   # journals whose FITS file is still to be made
-        self._writer = None
+        self._writer: archive.ScanWriter | None = None
         self._stopping_since: float | None = None
         self._give_up_after_s = 5.0
         self._done = False                  # the thread body saw the stop and ended
@@ -195,7 +197,7 @@ class ScanStore:
         self._retry_unfinished()
         self._done = True
 
-    def _hold(self, item) -> None:
+    def _hold(self, item: Item) -> None:
         """Queue an item behind the ones waiting; drop a row past the memory bound."""
         size = item_bytes(item)
         if self.held and isinstance(item, Row) and self.held_bytes + size > self.hold_bytes:
@@ -232,7 +234,7 @@ class ScanStore:
                                   if self.dropped_rows else ""))
             self._retry_unfinished()
 
-    def _failed(self, item, exc: Exception) -> None:
+    def _failed(self, item: Item, exc: Exception) -> None:
         """An item that could not be written for a reason other than the disk: dropped, counted
         and said; the items after it are written as usual."""
         self.failed_items += 1
@@ -307,6 +309,7 @@ class ScanStore:
                 self._saved(path, rows)
 
     def _give_up(self) -> None:
+        assert self.error is not None, "given up on only while a write keeps failing"
         self.unsaved_rows = self.held_rows
         if self.unsaved_rows:
             self.event("error", f"stopping with {self.unsaved_rows} integration(s) that could not"
