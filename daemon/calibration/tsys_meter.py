@@ -206,8 +206,9 @@ class TsysMeter:
         self._off_before = None
         self._on = []
 
-    def add(self, block: Block, s1: np.ndarray, m: int) -> TsysMeasurement | None:
-        """Account one block (``s1``, ``m``: its channel power sums); maybe a measurement."""
+    def add(self, block: Block, s1: np.ndarray, m: np.ndarray) -> TsysMeasurement | None:
+        """Account one block (``s1``, ``m``: its channel power sums and spectra per channel);
+        maybe a measurement."""
         number = block.index // self.bpc
         out = None
         if self._cycle is not None and number != self._cycle.number:

@@ -19,6 +19,7 @@ from pathlib import Path
 from typing import Any
 
 from spinflip.daemon.calibration import loads as loads_mod
+from spinflip.daemon.calibration.tsys_meter import TsysMeasurement
 from spinflip.daemon.config import ConfigError
 
 
@@ -114,7 +115,7 @@ class TsysTracker:
         self.plan = plan
         self.cal_cfg = cal_cfg
         self.warn_once = warn_once
-        self.newest = None            # newest good TsysMeasurement (noise source)
+        self.newest: TsysMeasurement | None = None   # newest good one (noise source)
 
     def current_k(self) -> float | None:
         """The newest value for the status message (None when there is none)."""

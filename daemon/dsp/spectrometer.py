@@ -135,7 +135,7 @@ class Spectrometer:
         Returns
         -------
         s1 : float64[nchan] sum of the block's power spectra
-        m : number of spectra in ``s1``
+        m : float64[nchan] number of spectra in ``s1`` per channel
         """
         integ = self.current
         x = u8_to_complex(block.raw)

@@ -111,7 +111,7 @@ class LiveStatus:
                 self.publisher.publish(*self.status_message())
                 self.publisher.publish(*self.progress_message())
 
-    def status_message(self):
+    def status_message(self) -> tuple[str, dict, dict]:
         """(topic, header, arrays) of the status message."""
         loop = self.loop
         sch, src = loop.source.schedule, loop.cfg["source"]
@@ -154,7 +154,7 @@ class LiveStatus:
                 rfi["uncovered_hz"] = [float(f.min()), float(f.max())]
         return "status", header, {}
 
-    def progress_message(self):
+    def progress_message(self) -> tuple[str, dict, dict]:
         """(topic, header, arrays) of the progress message."""
         loop = self.loop
         integ_total = loop.blocks_per_integration * loop.block_s

@@ -52,8 +52,10 @@ import signal
 import sys
 import threading
 import time as _time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from types import FrameType
 from typing import Any
 
 import numpy as np
@@ -61,11 +63,12 @@ from astropy.time import Time
 
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.calibration.noise_switch import NoiseSwitchError, make_noise_switch
-from spinflip.daemon.calibration.tsys_meter import TsysMeter
+from spinflip.daemon.calibration.tsys_meter import TsysMeasurement, TsysMeter
 from spinflip.daemon.calibration.tsys_plan import TsysTracker, plan_tsys
 from spinflip.daemon.config import ConfigError
+from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
-from spinflip.daemon.dsp.spectrometer import FlagSettings, Spectrometer
+from spinflip.daemon.dsp.spectrometer import FlagSettings, Integration, Spectrometer
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.messages import RunningAverage, spectrum_message
 from spinflip.daemon.live.schema import State
@@ -117,7 +120,7 @@ class Daemon:
     """One observation run; see :meth:`run`."""
 
     def __init__(self, cfg: dict, fast: bool = False, duration_s: float | None = None,
-                 log=None):
+                 log: Callable[[str], None] | None = None):
         self.cfg = cfg
         self.fast = fast
         self.duration_s = duration_s
@@ -249,7 +252,7 @@ class Daemon:
         return self.blocks_per_integration * self.block_s
 
     # -- rows ------------------------------------------------------------------------------------
-    def _finish(self, integ, observed_s: float) -> None:
+    def _finish(self, integ: Integration, observed_s: float) -> None:
         """Hand a finished integration on: now, or after the first T_sys measurement."""
         self.result.rows += 1
         self.result.observed_s += observed_s
@@ -258,7 +261,7 @@ class Daemon:
             return
         self._put_row(integ)
 
-    def _put_row(self, integ) -> None:
+    def _put_row(self, integ: Integration) -> None:
         row, log = self.rows.make(integ, self.pointing)
         self.store.put(row)
         for rec in log:
@@ -284,7 +287,7 @@ class Daemon:
             self._put_row(integ)
         self.pending.clear()
 
-    def _on_measurement(self, meas) -> None:
+    def _on_measurement(self, meas: TsysMeasurement) -> None:
         self.store.put(TsysRecord.of(meas, Time(meas.t_unix_s, format="unix", scale="utc").isot))
         if meas.ok:
             self.tsys.newest = meas
@@ -457,7 +460,7 @@ class Daemon:
         return result
 
     # -- faults ----------------------------------------------------------------------------------
-    def _source_fault(self, marker) -> None:
+    def _source_fault(self, marker: SourceLost | SourceBack) -> None:
         """The reader lost the source (:class:`SourceLost`) or got it back (``SourceBack``)."""
         if isinstance(marker, SourceLost):
             self.event("error", f"source lost: {marker.why}; every finished integration is "
@@ -476,7 +479,7 @@ class Daemon:
                 self.state = self._state_before_loss
                 self.open_scan(Time.now())
 
-    def _clock_stepped(self, block) -> None:
+    def _clock_stepped(self, block: Block) -> None:
         """Record a step of the system clock; after a forward one no integration spans it."""
         step = block.clock_step_s
         t = Time(block.t0_unix_s, format="unix", scale="utc").isot
@@ -493,7 +496,7 @@ class Daemon:
             self.store.put(Note(t, text))
 
     def install_signal_handlers(self) -> None:
-        def _stop(signum, _frame):
+        def _stop(signum: int, _frame: FrameType | None) -> None:
             self.log(f"received signal {signum}: finishing")
             self.stop_event.set()
         signal.signal(signal.SIGTERM, _stop)

@@ -82,7 +82,7 @@ class BlockReader:
         finally:
             self.q.put(END)
 
-    def _put_waiting(self, item) -> bool:
+    def _put_waiting(self, item: object) -> bool:
         """Queue ``item``, waiting for room; False if a stop came first."""
         while not self.stop.is_set():
             try:
