@@ -44,8 +44,10 @@ import signal
 import sys
 import threading
 import time
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import zmq
 from zmq.utils.monitor import recv_monitor_message
@@ -58,7 +60,10 @@ from spinflip.daemon.live.spectrum_archive import SpectrumArchive
 try:  # POSIX advisory locks
     import fcntl
 except ImportError:  # pragma: no cover - non-POSIX
-    fcntl = None
+    fcntl = None  # type: ignore[assignment]  # the module is absent; callers test for None
+
+if TYPE_CHECKING:  # imported lazily below: collecting without keys never needs it
+    from spinflip.daemon.live.keys import ClientSecurity
 
 log = logging.getLogger("spinflip.collect")
 
@@ -181,10 +186,12 @@ class CollectReport:
         return [s.line() for s in self.stations.values()]
 
 
-def _check_args(stations, relay_endpoint, duration_s) -> None:
+def _check_args(stations: list[tuple[str, str]], relay_endpoint: str | None,
+                duration_s: float | None) -> None:
     if not stations:
         raise ValueError("collect needs at least one station NAME=ENDPOINT")
-    names, endpoints = {}, {}
+    names: dict[str, str] = {}
+    endpoints: dict[str, str] = {}
     for name, endpoint in stations:
         parse_station(f"{name}={endpoint}")
         if name in names:
@@ -204,7 +211,7 @@ def _check_args(stations, relay_endpoint, duration_s) -> None:
         raise ValueError(f"--duration {duration_s!r}: expected a positive number of seconds")
 
 
-def _station_security(keys_dir: Path, name: str):
+def _station_security(keys_dir: Path, name: str) -> ClientSecurity:
     from spinflip.daemon.live.keys import (
         ClientSecurity,  # lazily: collecting without keys never needs it
     )
@@ -212,7 +219,7 @@ def _station_security(keys_dir: Path, name: str):
     return ClientSecurity.from_dir(own if own.is_dir() else keys_dir)
 
 
-def _warn_decode_error(count: StationCount, log_line) -> None:
+def _warn_decode_error(count: StationCount, log_line: Callable[[str], None]) -> None:
     n = count.decode_errors
     if n & (n - 1) == 0:                 # the 1st, 2nd, 4th, 8th ... error: no flood
         log_line(f"station {count.name}: message refused ({n} so far): {count.last_error}")
@@ -220,7 +227,8 @@ def _warn_decode_error(count: StationCount, log_line) -> None:
 
 def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
                 archive_dir: Path | None, keys_dir: Path | None, duration_s: float | None,
-                stop_event: threading.Event, log_line=None) -> CollectReport:
+                stop_event: threading.Event,
+                log_line: Callable[[str], None] | None = None) -> CollectReport:
     """Receive from every station, relay under the station's name, archive integrations.
 
     Parameters
@@ -333,7 +341,8 @@ def run_collect(stations: list[tuple[str, str]], relay_endpoint: str | None,
     return report
 
 
-def _reconnect(entry, count: StationCount, log_line) -> None:
+def _reconnect(entry: tuple[zmq.Socket, str], count: StationCount,
+               log_line: Callable[[str], None]) -> None:
     """A station's connection ended: count it, say so (1st, 2nd, 4th ...), connect anew.
 
     ZeroMQ reconnects by itself after a lost connection, but not after a protocol error such
@@ -352,7 +361,8 @@ def _reconnect(entry, count: StationCount, log_line) -> None:
     sock.connect(endpoint)
 
 
-def _handle(count: StationCount, frames: list[bytes], relay, archive, log_line) -> None:
+def _handle(count: StationCount, frames: list[bytes], relay: zmq.Socket | None,
+            archive: SpectrumArchive | None, log_line: Callable[[str], None]) -> None:
     """Check, restamp, relay and archive one message of station ``count.name``."""
     count.received += 1
     try:

@@ -35,13 +35,15 @@ def _exposure(row: Row, nchan: int) -> np.ndarray:
 class RunningAverage:
     """Equal-weight average of a scan's rows on the LSRK grid of its first row."""
 
-    def __init__(self):
+    def __init__(self) -> None:
         self.reset()
 
     def reset(self) -> None:
         self.rows = 0
-        self.first = None
-        self._num = self._den = self._exp = None
+        self.first: Row | None = None
+        self._num: np.ndarray | None = None     # the three sums: set by the first row
+        self._den: np.ndarray | None = None
+        self._exp: np.ndarray | None = None
 
     def add(self, row: Row, nchan: int) -> None:
         f, v = row_axes(row, nchan)
@@ -52,6 +54,7 @@ class RunningAverage:
             self.first = row
             self.v_km_s, self.f_hz = v, f
             self._num, self._den, self._exp = np.zeros(nchan), np.zeros(nchan), np.zeros(nchan)
+        assert self._num is not None and self._den is not None and self._exp is not None
         order = np.argsort(v)
         self._num += np.interp(self.v_km_s, v[order], np.where(good, data, 0.0)[order], 0.0, 0.0)
         self._den += np.interp(self.v_km_s, v[order], good[order].astype(float), 0.0, 0.0)
@@ -59,17 +62,22 @@ class RunningAverage:
                                0.0, 0.0)
         self.rows += 1
 
-    def spectrum(self):
-        """(data, flagged, exposure per channel) of the average so far."""
+    def spectrum(self) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """(data, flagged, exposure per channel) of the average so far (at least one row)."""
+        assert self._num is not None and self._den is not None and self._exp is not None, \
+            "the average of no row"
         with np.errstate(invalid="ignore", divide="ignore"):
             mean = np.where(self._den > 1e-9, self._num / self._den, np.nan)
         return mean, ~np.isfinite(mean), self._exp
 
 
-def spectrum_message(row: Row, nchan: int, kind: str, scan: str, index: int, unit: str,
-                     average: RunningAverage | None = None):
+def spectrum_message(
+        row: Row, nchan: int, kind: str, scan: str, index: int, unit: str,
+        average: RunningAverage | None = None,
+) -> tuple[str, dict, dict[str, tuple[np.ndarray, str]]]:
     """(topic, header, arrays) of a row (``kind = "integration"``) or of the running average."""
     if kind == "average":
+        assert average is not None and average.first is not None, "an average has a first row"
         data, flagged, exposure = average.spectrum()
         f, v, ref = average.f_hz, average.v_km_s, average.first
         exposure_s = float(np.nanmax(exposure)) if exposure.size else 0.0

@@ -47,7 +47,7 @@ from spinflip.daemon.storage.durable import fsync_dir, write_all
 try:  # POSIX advisory locks
     import fcntl
 except ImportError:  # pragma: no cover - non-POSIX
-    fcntl = None
+    fcntl = None  # type: ignore[assignment]  # the module is absent; callers test for None
 
 
 def _spectrum_key(header: dict) -> tuple:
@@ -65,7 +65,7 @@ class _DayFiles:
     """The open ``.bin`` / ``.jsonl`` pair of one station and day (locked, torn tail cut)."""
 
     def __init__(self, folder: Path, day: str):
-        self.last_key = None
+        self.last_key: tuple | None = None
         self.index_path = folder / f"spectra-{day}.jsonl"
         self.bin_path = folder / f"spectra-{day}.bin"
         created = not self.index_path.exists() or not self.bin_path.exists()

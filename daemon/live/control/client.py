@@ -97,11 +97,10 @@ def request(endpoint: str, cmd: str, args: dict | None = None, security: Any = N
             reply = json.loads(frames[0].decode("utf-8"))
         except (UnicodeDecodeError, ValueError):
             reply = None
-    ok_form = (isinstance(reply, dict) and isinstance(reply.get("ok"), bool)
-               and reply.get("id", request_id) == request_id
-               and (isinstance(reply.get("result"), dict) if reply["ok"]
-                    else isinstance(reply.get("error"), str)))
-    if not ok_form:
+    if not (isinstance(reply, dict) and isinstance(reply.get("ok"), bool)
+            and reply.get("id", request_id) == request_id
+            and (isinstance(reply.get("result"), dict) if reply["ok"]
+                 else isinstance(reply.get("error"), str))):
         raise ControlError(f"reply from {endpoint} is not a control reply: "
                            f"{_quote(frames[0] if len(frames) == 1 else frames)}")
     reply.pop("id", None)

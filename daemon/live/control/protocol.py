@@ -194,6 +194,7 @@ def _check_arg(cmd: str, name: str, spec: ArgSpec, value: Any) -> Any:
     """One argument's value, checked against ``spec``; numbers come back as ``float``."""
     where = f"{cmd}: {name} = {_quote(value)}"
     if spec.kind == "number":
+        assert spec.lo is not None and spec.hi is not None, "every number argument has a range"
         if isinstance(value, bool) or not isinstance(value, (int, float)):
             raise CommandError(f"{where} is {json_type_words(value)}: expected {spec.allowed()}")
         # ints compare exactly with floats, so a huge integer is refused here before float().

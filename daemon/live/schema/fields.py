@@ -92,7 +92,7 @@ _STR_OR_NULL = ("string", "null")
 
 _COMMON = {"schema": _INT, "topic": _STR, "time_utc": _STR, "station": _STR}
 
-_FIELDS = {
+_FIELDS: dict[str, dict[str, tuple[str, ...]]] = {
     "spectrum": {
         "kind": _STR, "scan": _STR, "row": _INT, "exposure_s": _NUM, "tsys_k": _NUM_OR_NULL,
         "unit": _STR, "restfreq_hz": _NUM, "vframe_m_s": _NUM, "glon_deg": _NUM,
@@ -182,7 +182,7 @@ def json_type_words(value: Any) -> str:
             "number": "a number", "string": "a string"}.get(kind, "an object")
 
 
-def _check_type(where: str, value, allowed: tuple) -> None:
+def _check_type(where: str, value: Any, allowed: tuple) -> None:
     kind = json_type(value)
     ok = kind in allowed or (kind == "integer" and "number" in allowed)
     if not ok:
@@ -192,7 +192,7 @@ def _check_type(where: str, value, allowed: tuple) -> None:
         raise WireError(f"{where} = {value!r}: JSON numbers must be finite")
 
 
-def _check_schema(value) -> None:
+def _check_schema(value: Any) -> None:
     _check_type("header.schema", value, _INT)
     if value > SCHEMA_VERSION:
         raise WireError(f"header.schema = {value} is newer than this reader understands "
@@ -217,7 +217,7 @@ def _check_time_utc(value: str) -> None:
         raise WireError(f"header.time_utc = {quoted_json(value)} is not UTC: end it with Z or +00:00")
 
 
-def _check_array_list(descs) -> None:
+def _check_array_list(descs: Any) -> None:
     if not isinstance(descs, list):
         raise WireError(f"header.arrays = {quoted_json(descs)} is a JSON {json_type(descs)}: "
                         "expected an array of {name, dtype, shape, unit} objects")

@@ -6,6 +6,8 @@ from __future__ import annotations
 
 import json
 import math
+from collections.abc import Iterable
+from typing import Any, NoReturn
 
 import numpy as np
 
@@ -45,14 +47,14 @@ def _wire_dtype(name: str, arr: np.ndarray) -> str:
                     "integer, uint8 or bool")
 
 
-def _to_json_value(obj):
+def _to_json_value(obj: object) -> Any:
     """``json.dumps`` default: NumPy scalars as their Python values."""
     if isinstance(obj, np.generic):
         return obj.item()
     raise TypeError(f"{type(obj).__name__} is not JSON")
 
 
-def _find_nonfinite(obj, path="header"):
+def _find_nonfinite(obj: object, path: str = "header") -> str | None:
     if isinstance(obj, (float, np.floating)) and not math.isfinite(obj):
         return path
     if isinstance(obj, dict):
@@ -135,11 +137,11 @@ def encode(topic: str, header: dict, arrays: dict | None = None) -> list[bytes]:
 # ----------------------------------------------------------------------------------------------
 # decode
 # ----------------------------------------------------------------------------------------------
-def _refuse_constant(name: str):
+def _refuse_constant(name: str) -> NoReturn:
     raise WireError(f"header holds the token {name}, which strict JSON does not allow")
 
 
-def _depth(value) -> int:
+def _depth(value: Any) -> int:
     """How deeply JSON objects and arrays nest in ``value`` (0 for a scalar), without recursion;
     stops counting past :data:`MAX_DEPTH`."""
     deepest, stack = 0, [(value, 1)]
@@ -154,7 +156,7 @@ def _depth(value) -> int:
     return deepest
 
 
-def decode(frames) -> Message:
+def decode(frames: Iterable[Any]) -> Message:
     """Read one message, checking it against the schema.
 
     Parameters
@@ -188,7 +190,7 @@ def decode(frames) -> Message:
             from None
 
 
-def _decode(frames) -> Message:
+def _decode(frames: Iterable[Any]) -> Message:
     frames = list(frames)
     if len(frames) < 2:
         raise WireError(f"a message has at least 2 frames (topic, header), got {len(frames)}")
