@@ -57,8 +57,10 @@ import sys
 import tempfile
 import threading
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterator
 from pathlib import Path
+from types import FrameType
+from typing import IO, TYPE_CHECKING, TextIO
 
 import zmq
 from rich.text import Text
@@ -78,11 +80,16 @@ from spinflip.daemon.live.ports import free_loopback_port
 from . import panels
 from .state import ViewState
 
+if TYPE_CHECKING:  # rich's console and the keys are imported where they are used
+    from rich.console import Console
+
+    from spinflip.daemon.live.keys import ClientSecurity
+
 try:  # POSIX terminals
     import termios
     import tty
 except ImportError:  # pragma: no cover - non-POSIX
-    termios = tty = None
+    termios = tty = None  # type: ignore[assignment]  # the modules are absent; tested for None
 
 #: Time between two redraws of the screen, s (about 4 per second).
 REFRESH_S = 0.25
@@ -126,9 +133,9 @@ KEY_AXIS = "a"
 KEY_QUIT = "q"
 
 
-def _one_line(text: str) -> str:
-    """``text`` on one line, at most :data:`REPLY_MAX_CHARS` characters (``…`` marks a cut)."""
-    return one_line(text, REPLY_MAX_CHARS, ellipsis="…")
+def _one_line(text: str, limit: int = REPLY_MAX_CHARS) -> str:
+    """``text`` on one line, at most ``limit`` characters (``…`` marks a cut)."""
+    return one_line(text, limit, ellipsis="…")
 
 
 # --------------------------------------------------------------------------------------------
@@ -171,7 +178,7 @@ class Feed(threading.Thread):
     """
 
     def __init__(self, endpoint: str, state: ViewState, lock: threading.Lock,
-                 security=None, context: zmq.Context | None = None):
+                 security: ClientSecurity | None = None, context: zmq.Context | None = None):
         super().__init__(name="spinflip-watch-feed", daemon=True)
         self.endpoint = endpoint
         self.state = state
@@ -182,8 +189,8 @@ class Feed(threading.Thread):
         self.errors = 0
         self.last_error = ""
         self._stop_event = threading.Event()
-        self._sock = None
-        self._monitor = None
+        self._sock: zmq.Socket | None = None
+        self._monitor: zmq.Socket | None = None
         self._refusal_reported = False
 
     def open(self) -> None:
@@ -230,6 +237,7 @@ class Feed(threading.Thread):
         if self._sock is None:
             self.open()
         sock, monitor = self._sock, self._monitor
+        assert sock is not None and monitor is not None, "open() makes both or raises"
         poller = zmq.Poller()
         poller.register(sock, zmq.POLLIN)
         poller.register(monitor, zmq.POLLIN)
@@ -248,7 +256,7 @@ class Feed(threading.Thread):
             monitor.close(0)
             sock.close(0)
 
-    def _drain(self, sock) -> None:
+    def _drain(self, sock: zmq.Socket) -> None:
         for _ in range(FEED_BURST):
             try:
                 frames = sock.recv_multipart(zmq.NOBLOCK)
@@ -278,7 +286,7 @@ class Feed(threading.Thread):
                     (schema.now_utc_iso(), "warning",
                      f"{n} bad message{'s' if n > 1 else ''} so far: {self.last_error}"))
 
-    def _monitor_events(self, monitor) -> None:
+    def _monitor_events(self, monitor: zmq.Socket) -> None:
         while True:
             try:
                 event = recv_monitor_message(monitor, zmq.NOBLOCK)
@@ -321,10 +329,10 @@ class Keyboard:
     so that e.g. the ``A`` of "cursor up" is not taken for a key.
     """
 
-    def __init__(self, stream=None):
+    def __init__(self, stream: TextIO | None = None):
         self.stream = stream if stream is not None else sys.stdin
         self.fd: int | None = None
-        self._saved = None
+        self._saved: list | None = None
 
     def __enter__(self) -> Keyboard:
         if termios is None:
@@ -344,7 +352,7 @@ class Keyboard:
         self.fd = fd
         return self
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, *exc: object) -> None:
         if self.fd is not None and self._saved is not None:
             try:
                 termios.tcsetattr(self.fd, termios.TCSADRAIN, self._saved)
@@ -394,17 +402,17 @@ class QuitOnSignals:
             self._saved[signum] = signal.signal(signum, self._handle)
         return self
 
-    def _handle(self, signum, _frame) -> None:
+    def _handle(self, signum: int, _frame: FrameType | None) -> None:
         self.signum = signum
         self.event.set()
 
-    def __exit__(self, *exc) -> None:
+    def __exit__(self, *exc: object) -> None:
         for signum, handler in self._saved.items():
             signal.signal(signum, handler)
         self._saved.clear()
 
 
-def wants_ascii(console) -> bool:
+def wants_ascii(console: Console) -> bool:
     """True when the screen should use ASCII plots, bars and shades instead of braille/blocks.
 
     That is when the terminal's encoding is not UTF-8 (it cannot show them at all), when it
@@ -420,7 +428,7 @@ def wants_ascii(console) -> bool:
 
 
 @contextlib.contextmanager
-def _unencodable_replaced(stream):
+def _unencodable_replaced(stream: IO[str]) -> Iterator[None]:
     """While in the block, characters ``stream``'s encoding lacks are written as ``?``.
 
     A terminal whose encoding is not UTF-8 (e.g. ``PYTHONIOENCODING=latin-1``) cannot show
@@ -461,7 +469,8 @@ class WatchSession:
         ``keys.ClientSecurity`` for both sockets, or ``None``.
     """
 
-    def __init__(self, data_endpoint: str, control_endpoint: str, security=None):
+    def __init__(self, data_endpoint: str, control_endpoint: str,
+                 security: ClientSecurity | None = None):
         self.state = ViewState()
         self.state.endpoint = data_endpoint
         self.lock = threading.Lock()
@@ -514,7 +523,7 @@ class WatchSession:
             self.state.reply = _one_line(text)
 
     # the loop ----------------------------------------------------------------------------
-    def render(self, console):
+    def render(self, console: Console) -> Text:
         """The whole screen for the console's current size (under the lock).
 
         A failure of the panels does not end the UI: the screen says what failed, the keys
@@ -530,7 +539,7 @@ class WatchSession:
                 return Text(_one_line(f"spinflip: the screen could not be drawn "
                                       f"({type(exc).__name__}: {exc}); q quits", width * 2))
 
-    def run(self, console=None, duration_s: float | None = None,
+    def run(self, console: Console | None = None, duration_s: float | None = None,
             ended: Callable[[], str | None] | None = None, keyboard: Keyboard | None = None) -> int:
         """Show the screen until ``q``, a signal, ``duration_s`` or ``ended()``.
 
@@ -596,7 +605,8 @@ class WatchSession:
 # entry points
 # --------------------------------------------------------------------------------------------
 def watch_main(data_endpoint: str = DEFAULT_DATA_ENDPOINT,
-               control_endpoint: str = DEFAULT_CONTROL_ENDPOINT, keys_dir=None, console=None,
+               control_endpoint: str = DEFAULT_CONTROL_ENDPOINT,
+               keys_dir: str | Path | None = None, console: Console | None = None,
                duration_s: float | None = None) -> int:
     """``spinflip watch``: the live screen of a running daemon.
 
@@ -632,7 +642,7 @@ def watch_main(data_endpoint: str = DEFAULT_DATA_ENDPOINT,
     return session.run(console=console, duration_s=duration_s)
 
 
-def _say(text: str, stream=None) -> None:
+def _say(text: str, stream: TextIO | None = None) -> None:
     """Print one line (standard output by default); a terminal that hung up is ignored."""
     try:
         print(text, file=stream if stream is not None else sys.stdout, flush=True)
@@ -651,8 +661,8 @@ def demo_config(data_port: int, control_port: int,
             f'control = "tcp://127.0.0.1:{control_port}"\n')
 
 
-def demo_main(seconds: float = 60, out_dir="spinflip-data", fast: bool = False,
-              console=None) -> int:
+def demo_main(seconds: float = 60, out_dir: str | Path = "spinflip-data", fast: bool = False,
+              console: Console | None = None) -> int:
     """``spinflip demo``: observe the simulated sky for a short while and watch it live.
 
     Parameters
