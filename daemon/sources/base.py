@@ -75,7 +75,7 @@ def parse_source_option(text: str) -> dict:
     raise ConfigError(f"--source {text!r}: expected sim, rtlsdr or replay:PATH")
 
 
-def make_source(cfg: dict, fast: bool = False):
+def make_source(cfg: dict, fast: bool = False) -> Source:
     """Build the configured source (not yet opened)."""
     kind = cfg["source"]["kind"]
     if kind == "sim":

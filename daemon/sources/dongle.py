@@ -54,9 +54,12 @@ of 512; ``rtlsdr_close`` waits for asynchronous reads to end (from memory).
 
 from __future__ import annotations
 
+import ctypes
 import math
 import threading
+from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -65,6 +68,10 @@ from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.sources.base import SourceError
 from spinflip.daemon.sources.sample_clock import SampleClock
+
+if TYPE_CHECKING:
+    from astropy.coordinates import SkyCoord
+    from astropy.time import Time
 
 _TRANSFER_TARGET_S = 1.0 / 16     # aim for this much signal per USB transfer, s
 _TRANSFER_QUANTUM_BYTES = 16384   # transfer sizes are multiples of this (and so of 512)
@@ -121,7 +128,7 @@ def _import_rtlsdr():
     return RtlSdr
 
 
-def _librtlsdr_of(sdr):
+def _librtlsdr_of(sdr: Any) -> tuple[Any, Any] | None:
     """(librtlsdr ctypes library, callback type) behind pyrtlsdr's RtlSdr ``sdr``, or None
     for a stand-in that only offers RtlSdr's Python methods (as the tests' own does)."""
     if not hasattr(sdr, "dev_p"):
@@ -165,26 +172,28 @@ class RtlSdrSource:
         self.block_samples = src["block_samples"]
         self.schedule = Schedule.from_config(cfg)
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
-        self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
+        self.forced_cal: bool | None = None   # True / False: held there (hot/cold procedure), not scheduled
         self._fire = threading.Event()   # a control command: an extra firing as soon as possible
         self.t_start = None       # samples are dated by the clock as they come
         self.clock = clock or SampleClock()
-        self._extra_from = None
+        self._extra_from: int | None = None
         self._cal_wanted = False  # noise-source state of the previous block
-        self.sdr = None
-        self._lib = None
-        self._c_callback = None
-        self._abandoned = []      # devices whose stream would not stop (never closed)
+        # pyrtlsdr has no type hints: its RtlSdr (or a test's stand-in), its ctypes library
+        # and the C callback made from our method are Any
+        self.sdr: Any | None = None
+        self._lib: Any | None = None
+        self._c_callback: Any | None = None
+        self._abandoned: list[Any] = []   # devices whose stream would not stop (never closed)
         self._transfer_bytes = transfer_bytes_for(self.fs)
         ring_n = max(16, math.ceil(_RING_S * 2 * self.fs / self._transfer_bytes))
         self._ring = np.zeros((ring_n, self._transfer_bytes), dtype=np.uint8)
         self._ring_len = np.zeros(ring_n, dtype=np.int64)
         self._ring_arrival_s = np.zeros(ring_n, dtype=np.float64)   # monotonic
         self._lock = threading.Condition()
-        self._thread = None
+        self._thread: threading.Thread | None = None
         self._index = 0
-        self._lo = None
-        self._last_end_unix_s = None    # end of the last block delivered (across reopens)
+        self._lo: float | None = None
+        self._last_end_unix_s: float | None = None    # end of the last block delivered (across reopens)
         self._after_reopen = False
         self._reset_stream()
 
@@ -194,14 +203,14 @@ class RtlSdrSource:
         self._read = 0                    # transfers consumed
         self._overrun_bytes = 0
         self._received_bytes = 0
-        self._first_start_mono_s = None   # when the first transfer's first sample was taken
+        self._first_start_mono_s: float | None = None   # when the first transfer's first sample was taken
         self._ended = False               # the asynchronous read returned
-        self._end_rc = None
-        self._error = None
+        self._end_rc: int | None = None
+        self._error: Exception | None = None
         self._stopping = False
         self._pending = np.zeros(0, dtype=np.uint8)
         self._pending_arrival_s = 0.0     # arrival of the transfer the pending bytes end
-        self._cutoff_mono_s = None        # samples taken before this are dropped
+        self._cutoff_mono_s: float | None = None   # samples taken before this are dropped
         self._lost_reported = 0
 
     # -- opening the device ----------------------------------------------------------------
@@ -244,12 +253,14 @@ class RtlSdrSource:
         self._reset_stream()
         self.clock.start()
         if self._lib is not None:
+            assert cb_type is not None, "found together with the library"
             self._c_callback = cb_type(self._c_transfer)   # kept alive while streaming
         self._thread = threading.Thread(target=self._reader, name="rtlsdr-async", daemon=True)
         self._thread.start()
 
     def _configure(self, src: dict) -> None:
         sdr = self.sdr
+        assert sdr is not None, "open() made the device first"
         sdr.sample_rate = self.fs
         if src["ppm"]:
             sdr.freq_correction = src["ppm"]
@@ -273,7 +284,7 @@ class RtlSdrSource:
     def request_firing(self) -> None:
         self._fire.set()
 
-    def set_pointing(self, pointing) -> None:
+    def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         """The dongle's samples do not depend on where the dish points."""
 
     def can_reopen(self) -> bool:
@@ -307,7 +318,10 @@ class RtlSdrSource:
 
     def _set_center_freq(self, hz: int) -> int:
         if self._lib is not None:
+            assert self.sdr is not None, "tuned only while the device is open"
             return int(self._lib.rtlsdr_set_center_freq(self.sdr.dev_p, hz))
+        if self.sdr is None:
+            return -1                 # closed meanwhile: a refused setting, like any other
         try:
             self.sdr.center_freq = hz
         except Exception:
@@ -318,6 +332,7 @@ class RtlSdrSource:
     def _reader(self) -> None:
         rc = None
         try:
+            assert self.sdr is not None, "started by open() on an open device"
             if self._lib is not None:
                 rc = int(self._lib.rtlsdr_read_async(self.sdr.dev_p, self._c_callback, self,
                                                      0, self._transfer_bytes))
@@ -330,7 +345,8 @@ class RtlSdrSource:
             self._ended = True
             self._lock.notify_all()
 
-    def _c_transfer(self, buf, n_bytes, _context) -> None:
+    def _c_transfer(self, buf: ctypes._Pointer[ctypes.c_ubyte], n_bytes: int,
+                    _context: object) -> None:
         """librtlsdr's callback: one transfer of ``n_bytes`` at ``buf`` (reused afterwards)."""
         try:
             if n_bytes > 0:
@@ -338,7 +354,8 @@ class RtlSdrSource:
         except Exception as exc:   # never let an exception into C; reported by read()
             self._error = exc
 
-    def _callback(self, buf, _context) -> None:
+    def _callback(self, buf: bytes | bytearray | ctypes.Array[ctypes.c_ubyte],
+                  _context: object) -> None:
         """pyrtlsdr-style callback (a stand-in's ``read_bytes_async``)."""
         data = np.ctypeslib.as_array(buf) if not isinstance(buf, (bytes, bytearray)) else \
             np.frombuffer(buf, dtype=np.uint8)
@@ -475,6 +492,7 @@ class RtlSdrSource:
         raw = np.concatenate(parts)
         self._pending = raw[need:]
         raw = raw[:need]
+        assert first_mono_s is not None, "set from the pending tail or the first transfer"
         step_s = self.clock.check()
         t0 = self.clock.time_of(first_mono_s)
         lost = self.lost_samples_estimate()

@@ -10,16 +10,22 @@ from __future__ import annotations
 
 import os
 import time as _time
+from collections.abc import Callable
 from dataclasses import replace
 from pathlib import Path
+from typing import TYPE_CHECKING, BinaryIO
 
 import numpy as np
 from astropy.time import Time
 
+from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.dsp.block import SIG, Block
 from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.sources.base import SourceError
+
+if TYPE_CHECKING:
+    from astropy.coordinates import SkyCoord
 
 
 class ReplaySource:
@@ -52,7 +58,7 @@ class ReplaySource:
         self.size = size
         start = cfg["sim"]["start"]
         self.t_start = Time.now() if start == "now" else Time(start, scale="utc")
-        self._fh = None
+        self._fh: BinaryIO | None = None
         self._index = 0
 
     def open(self) -> None:
@@ -71,13 +77,13 @@ class ReplaySource:
     def can_fire_noise_source(self) -> bool:
         return False
 
-    def attach_noise_source(self, control) -> None:
+    def attach_noise_source(self, control: CalControl) -> None:
         """A capture has no noise source to fire."""
 
     def request_firing(self) -> None:
         raise ConfigError("replay cannot fire a calibration noise source")
 
-    def set_pointing(self, pointing) -> None:
+    def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         """A capture's samples do not depend on the pointing."""
 
     def can_reopen(self) -> bool:
@@ -87,6 +93,7 @@ class ReplaySource:
         raise SourceError(f"replay file {self.path}: cannot be reopened")
 
     def read(self) -> Block | None:
+        assert self._fh is not None, "read() after open()"
         data = self._fh.read(2 * self.block_samples)
         if len(data) < 2:
             return None

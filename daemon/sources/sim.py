@@ -27,11 +27,14 @@ from __future__ import annotations
 
 import threading
 import time as _time
+from collections.abc import Callable
 from dataclasses import dataclass
+from typing import TypedDict
 
 import numpy as np
 import scipy.fft
 from astropy import units as u
+from astropy.coordinates import SkyCoord
 from astropy.time import Time
 
 from spinflip.daemon.calibration.noise_source import CalControl
@@ -79,7 +82,13 @@ RFI_CARRIERS = (
 )
 #: Simulated bursts: one every ``period_s``, ``length_s`` long, complex Gaussian of the given
 #: amplitudes per component in turn.
-RFI_BURSTS = {"period_s": 0.25, "length_s": 200e-6, "amplitudes": (0.5, 0.15)}
+class _Bursts(TypedDict):
+    period_s: float
+    length_s: float
+    amplitudes: tuple[float, ...]
+
+
+RFI_BURSTS: _Bursts = {"period_s": 0.25, "length_s": 200e-6, "amplitudes": (0.5, 0.15)}
 
 
 def carrier_on(duty: float, t_rel_s: float) -> bool:
@@ -105,6 +114,7 @@ class TrueSky:
         """Integral of the model line over velocity, K km/s (0 for a load)."""
         if self.tb_k is None:
             return 0.0
+        assert self.v_grid_km_s is not None, "a line model comes with its velocity grid"
         return float(np.sum(self.tb_k) * (self.v_grid_km_s[1] - self.v_grid_km_s[0]))
 
 
@@ -125,7 +135,7 @@ class SimSource:
         start = sim["start"]
         self.t_start = Time.now() if start == "now" else Time(start, scale="utc")
         self._live = start == "now"
-        self.clock = None
+        self.clock: SampleClock | None = None
         self.galaxy = ModelGalaxy()
         lam = C_M_S / HI_REST_FREQ_HZ
         self.beam_fwhm_deg = float(np.degrees(1.2 * lam / site["dish_diameter_m"]))
@@ -134,17 +144,17 @@ class SimSource:
         self.amplitude = _RMS_REF * 10 ** ((src["gain"] - _GAIN_REF_DB) / 20)
         self.cal = CalControl()   # the pipeline gives it the configured switch and its events
         self.diode_on = False     # the simulated noise source's true state
-        self.forced_cal = None    # True / False: held there (hot/cold procedure), not scheduled
+        self.forced_cal: bool | None = None   # True / False: held there (hot/cold procedure), not scheduled
         self._fire = threading.Event()   # a control command: an extra firing as soon as possible
-        self._extra_from = None
-        self.load = None          # None (the sky), "hot" or "cold"
+        self._extra_from: int | None = None
+        self.load: str | None = None   # None (the sky), "hot" or "cold"
         self._pointing_lock = threading.Lock()
-        self.pointing = None      # set_pointing(): callable(time) -> SkyCoord
-        self._sky_cache: dict = {}
+        self.pointing: Callable[[Time], SkyCoord] | None = None   # set_pointing(): callable(time) -> SkyCoord
+        self._sky_cache: dict[tuple, tuple[np.ndarray, dict]] = {}
         self._tones: dict = {}    # (baseband Hz, samples) -> exp(2 pi i f k / fs), for carriers
         self._index = 0
-        self._wall0 = None
-        self.truth = None
+        self._wall0: float | None = None   # set by open()
+        self.truth: TrueSky | None = None
 
     # -- the sky ---------------------------------------------------------------------------
     def _sky_psd(self, t: Time, lo_hz: float) -> tuple[np.ndarray, dict]:
@@ -162,9 +172,10 @@ class SimSource:
             return self._sky_cache[bucket]
         with self._pointing_lock:
             pointing = self.pointing
+        assert pointing is not None, "the sky needs set_pointing() first"
         coord = pointing(t)
         pos = coordinates.describe(coord, self.location, t)
-        vframe = coordinates.vframe_lsrk_m_s(coord, self.location, t)
+        vframe = float(coordinates.vframe_lsrk_m_s(coord, self.location, t))   # one time
         v_grid = np.linspace(-400.0, 400.0, 1601)
         tb = self.galaxy.brightness_temperature(pos["GLON"], pos["GLAT"], v_grid,
                                                 beam_fwhm_deg=self.beam_fwhm_deg)
@@ -255,7 +266,7 @@ class SimSource:
     def request_firing(self) -> None:
         self._fire.set()
 
-    def set_pointing(self, pointing) -> None:
+    def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         with self._pointing_lock:
             self.pointing = pointing
 
@@ -283,11 +294,13 @@ class SimSource:
             self.diode_on = cal_state   # a failed switch leaves the diode as it was
         x = self._samples(t_rel, lo, hop)
         if not self.fast:
+            assert self._wall0 is not None, "read() after open()"
             delay = self._wall0 + t_rel + self.block_samples / self.fs - _time.monotonic()
             if delay > 0:
                 _time.sleep(delay)
         t0, step = float(self.t_start.unix) + t_rel, 0.0
         if self.clock is not None:
+            assert self._wall0 is not None, "open() sets both"
             step = self.clock.check()
             t0 = self.clock.time_of(self._wall0 + t_rel)
         return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs, t0_unix_s=t0,
