@@ -41,6 +41,7 @@ import sys
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from spinflip.daemon import config as config_mod
 from spinflip.daemon.commands.station_probes import (
@@ -57,6 +58,10 @@ from spinflip.daemon.commands.station_probes import (
 from spinflip.daemon.sources.dongle import (
     DVB_MODULES,  # the kernel's DVB-T modules that claim the dongle
 )
+
+if TYPE_CHECKING:
+    from rich.console import Console
+    from rich.table import Table
 
 #: Output below this much free space fails whatever the rate, bytes (100 MB).
 DISK_FAIL_BYTES = 100_000_000
@@ -480,7 +485,7 @@ def verdict(checks: list[Check]) -> tuple[int, str]:
 _STYLE = {"ok": "green", "warn": "yellow", "fail": "bold red"}
 
 
-def render(checks: list[Check]):
+def render(checks: list[Check]) -> Table:
     """A rich Table of the checks (check, status, found, fix)."""
     from rich.table import Table
     from rich.text import Text
@@ -495,7 +500,7 @@ def render(checks: list[Check]):
     return table
 
 
-def doctor_main(config_path: str | None, console=None, roots: Roots | None = None, *,
+def doctor_main(config_path: str | None, console: Console | None = None, roots: Roots | None = None, *,
                 out_dir: str | None = None) -> int:
     """Run every check, print the table and the verdict; 0 if nothing failed, else 1.
 

@@ -43,7 +43,7 @@ def _first_line(exc: Exception) -> str:
     return text[0] if text else type(exc).__name__
 
 
-def _load(path: Path):
+def _load(path: Path) -> tuple[dict, dict[str, np.ndarray], str]:
     """(header, column dict, DATA unit) of a spinflip scan, or ValueError naming the file."""
     from astropy.io import fits
     from astropy.utils.exceptions import AstropyWarning
@@ -69,7 +69,8 @@ def _load(path: Path):
                 header = dict(hdu.header)
                 unit = hdu.columns["DATA"].unit or ""
                 cols = {k: np.array(hdu.data[k]) for k in REQUIRED_ROW_KEYS}
-                extras = {k: np.array(hdu.data[k]) for k in
+                # columns (arrays), RFI kinds (list of str), product header (dict)
+                extras: dict[str, object] = {k: np.array(hdu.data[k]) for k in
                           ("FLAGTIME", "SKFRAC", "NIMPULSE", "NCARRIER", "RFIFRAC", "UNCOVFR")
                           if k in names}
                 if RFI_EXTNAME in hdul:

@@ -187,7 +187,7 @@ class LoadsSession:
         cancel)
     """
 
-    def __init__(self, cfg: dict, prompt, fast: bool = False):
+    def __init__(self, cfg: dict, prompt: Callable[[Step], None], fast: bool = False):
         if cfg["source"]["kind"] == "replay":
             raise ConfigError("spinflip loads needs a live receiver (sim or rtlsdr), not a replay")
         self.cfg = copy.deepcopy(cfg)
@@ -215,10 +215,16 @@ class LoadsSession:
     def _set_noise_source(self, on: bool) -> None:
         self.source.set_cal(on)
 
+    def _sim_load(self, load: str | None) -> None:
+        """Put the simulator's feed on a load ("hot", "cold") or back on the sky (None)."""
+        from spinflip.daemon.sources.sim import SimSource
+        assert isinstance(self.source, SimSource), "called only when is_sim"
+        self.source.load = load
+
     def _measure(self, load: str, seconds: float) -> float:
         """Band-averaged power (counts) of ``seconds`` of samples on ``load``."""
         if self.is_sim:
-            self.source.load = "hot" if load == "hot" else "cold"
+            self._sim_load("hot" if load == "hot" else "cold")
         n_blocks = max(1, round(seconds * self.source.fs / self.source.block_samples))
         s1 = np.zeros(self.spectrometer.nchan)
         m = np.zeros(self.spectrometer.nchan)
@@ -253,5 +259,5 @@ class LoadsSession:
             self.source.close()
             self.switch.close()
             if self.is_sim:
-                self.source.load = None
+                self._sim_load(None)
 

@@ -72,9 +72,10 @@ from __future__ import annotations
 
 import math
 import numbers
+import os
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import Any, overload
 
 from spinflip.daemon.calibration.cascade import (
     DEFAULT_BEAMWIDTH_FACTOR,
@@ -243,8 +244,12 @@ class Profile:
     integration_s: float
 
 
-def _check_value(where: str, key: str, spec, value):
-    """Type and range of one value; returns it as float / int / str."""
+@overload
+def _check_value(where: str, key: str, spec: _Text, value: Any) -> str: ...
+@overload
+def _check_value(where: str, key: str, spec: _Num, value: Any) -> float | int: ...
+def _check_value(where: str, key: str, spec: _Num | _Text, value: Any) -> float | int | str:
+    """Type and range of one value (as TOML gave it); returns it as float / int / str."""
     if isinstance(spec, _Text):
         if not isinstance(value, str) or not value.strip() or "\n" in value:
             raise ProfileError(f"{where}: {key} = {quoted(value)}: expected {spec.allowed()}")
@@ -264,7 +269,7 @@ def _check_value(where: str, key: str, spec, value):
     return v
 
 
-def _section(where: str, prefix: str, table, schema: dict, either_noise: bool = False) -> dict:
+def _section(where: str, prefix: str, table: object, schema: dict, either_noise: bool = False) -> dict:
     """Validate one table against its schema: unknown, missing, type, range."""
     if not isinstance(table, dict):
         raise ProfileError(f"{where}: {prefix} = {quoted(table)}: expected a table "
@@ -291,7 +296,8 @@ def _section(where: str, prefix: str, table, schema: dict, either_noise: bool = 
     return out
 
 
-def _noise_pair(values: dict, default_nf_db: float | None, where: str, prefix: str):
+def _noise_pair(values: dict, default_nf_db: float | None, where: str,
+                prefix: str) -> tuple[float, float]:
     """(noise figure dB, noise temperature K) from whichever of the two the table gave."""
     if "noise_figure_db" in values:
         nf_db = values["noise_figure_db"]
@@ -379,7 +385,7 @@ def profile_from_dict(data: dict, where: str = "profile") -> Profile:
         integration_s=obs["integration_s"])
 
 
-def load_profile(path) -> Profile:
+def load_profile(path: str | os.PathLike[str]) -> Profile:
     """Read and validate a profile TOML file.
 
     Parameters

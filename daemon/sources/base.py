@@ -1,6 +1,7 @@
 """Sources of Blocks behind one interface, :class:`Source`: ``open()``, ``read() -> Block |
-None``, ``close()``, ``set_cal(on)``, ``schedule``, ``kind``, ``block_samples``, ``t_start``, and
-the capabilities a source may lack, asked for by name rather than guessed from its attributes:
+None``, ``close()``, ``set_cal(on)``, ``schedule``, ``kind``, ``block_samples``, ``t_start``,
+``fs`` (the sample rate), and the capabilities a source may lack, asked for by name rather than
+guessed from its attributes:
 
 * a noise source it can fire: :meth:`Source.can_fire_noise_source`,
   :meth:`Source.attach_noise_source` (the switch it fires through), :meth:`Source.request_firing`
@@ -32,6 +33,7 @@ class Source(Protocol):
 
     kind: str
     block_samples: int
+    fs: float                     # sample rate, complex samples per second
     schedule: Any                 # spinflip.daemon.dsp.switching.Schedule
     t_start: Any                  # astropy Time of the first sample, or None (the wall clock)
 
