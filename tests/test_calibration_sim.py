@@ -14,7 +14,7 @@ from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 from astropy.io import fits
 from astropy.time import Time
 
-from cli_runner import model_line, run_cli, true_tsys_k, write_config
+from cli_runner import NO_PORTS, model_line, run_cli, run_cli_inprocess, true_tsys_k, write_config
 from spinflip.daemon.sky import coordinates
 from spinflip.daemon.dsp.channelizer import make_channelizer
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
@@ -49,7 +49,7 @@ integration_s = 5.0
 cal_interval_s = 20.0
 [switching]
 offset_hz = {offset}
-"""
+""" + NO_PORTS
 
 
 @pytest.fixture(scope="module")
@@ -319,8 +319,8 @@ def test_switch_that_fails_at_start_up_is_refused(tmp_path):
 switch = "command"
 switch_on_cmd = "true"
 switch_off_cmd = "exit 4"
-""")
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
+""" + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
     assert r.returncode == 2
     assert "failed at start-up" in r.stderr and len(r.stderr.strip().splitlines()) == 1
     assert not list((tmp_path / "o").glob("*.fits"))
@@ -354,8 +354,8 @@ def test_stale_tsys_flags_rows(tmp_path):
     ('[pointing]\nframe = "azel"\nlon = 180.0\nlat = 3.0\n', ["below pointing.min_elevation"]),
 ])
 def test_bad_calibration_input_is_one_line_exit_2(tmp_path, text, fragments):
-    cfg = write_config(tmp_path / "c.toml", text)
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
+    cfg = write_config(tmp_path / "c.toml", text + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
     assert r.returncode == 2, r.stderr
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1, r.stderr

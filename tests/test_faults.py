@@ -29,6 +29,8 @@ from spinflip.daemon.run.observation import Daemon
 from spinflip.daemon.sources.sample_clock import SampleClock
 from spinflip.daemon.storage.writer import ScanStore
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 REPO = Path(__file__).resolve().parents[1]
 
 

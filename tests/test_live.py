@@ -22,8 +22,10 @@ import zmq
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from cli_runner import run_cli, write_config
+from cli_runner import run_cli, run_cli_inprocess, write_config
 from spinflip.daemon.live.ports import free_loopback_port
+
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
 
 DTYPES = {"<f4": "<f4", "<f8": "<f8", "<i8": "<i8", "|u1": "u1"}
 
@@ -272,13 +274,14 @@ def test_stalled_subscriber_loses_messages_not_the_daemon(tmp_path, monkeypatch)
 
 def test_binding_beyond_loopback_needs_keys_or_the_opt_in(tmp_path):
     port = free_loopback_port()
-    cfg = write_config(tmp_path / "c.toml", f'[publish]\ndata = "tcp://0.0.0.0:{port}"\n')
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 2, "--out", tmp_path / "o"])
+    cfg = write_config(tmp_path / "c.toml",
+                       f'[publish]\ndata = "tcp://0.0.0.0:{port}"\ncontrol = ""\n')
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 2, "--out", tmp_path / "o"])
     assert r.returncode == 2
     line = r.stderr.strip()
     assert "\n" not in line and "publish.keys" in line and "allow_insecure" in line
     cfg = write_config(tmp_path / "c2.toml", f'[publish]\ndata = "tcp://0.0.0.0:{port}"\n'
-                       "allow_insecure = true\n")
+                       'control = ""\nallow_insecure = true\n')
     r = run_cli(["run", "--config", cfg, "--fast", "--duration", 2, "--out", tmp_path / "o"])
     assert r.returncode == 0, r.stderr
     assert any(l.startswith("warning:") and "0.0.0.0" in l for l in r.stderr.splitlines())

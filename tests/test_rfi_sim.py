@@ -27,6 +27,7 @@ def _config(tmp, rfi: bool):
         "pointing": {"frame": "galactic", "lon": 30.0, "lat": 0.0},
         "spectrometer": {"integration_s": 5.0},
         "output": {"dir": str(tmp)},
+        "publish": {"data": "", "control": ""},
     })
     return cfg
 

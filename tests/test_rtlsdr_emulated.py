@@ -18,6 +18,8 @@ from spinflip.daemon.sources import dongle
 from spinflip.daemon.sources.sample_clock import SampleClock
 from spinflip.daemon.sources.base import SourceError
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 FS_HZ = 1.024e6          # a rate the RTL2832U supports exactly (librtlsdr's resampler ratio)
 BLOCK_SAMPLES = 16384    # the smallest block the configuration allows
 
@@ -45,6 +47,11 @@ def sources(fakertl, monkeypatch):   # noqa: F811
         return s
 
     yield make
+    # Closing waits for the reader thread at most dongle._STALL_S (3 s, or a test's 0.3 s), then
+    # leaves the handle open for good: on a loaded machine a reader scheduled late would leak a
+    # handle into every later test of the session (LIBUSB_ERROR_BUSY). Here the reader may take
+    # its time to see the cancel; the checks below still fail if it never ends.
+    monkeypatch.setattr(dongle, "_STALL_S", 60.0)
     for s in made:
         s.close()
     assert fakertl.stat("stale_calls") == 0

@@ -10,6 +10,7 @@ import numpy as np
 import pytest
 from astropy.io import fits
 
+from cli_runner import NO_PORTS, run_cli_inprocess
 from spinflip.daemon.dsp.samples import complex_to_u8
 
 SIM_CONFIG = """
@@ -22,7 +23,7 @@ lon = 30.0
 lat = 0.0
 [spectrometer]
 integration_s = 5.0
-"""
+""" + NO_PORTS
 
 
 def _run(args, cwd=None, timeout=120):
@@ -113,7 +114,10 @@ def _cu8(path, n, seed=3):
 def test_replay_runs_in_counts(tmp_path):
     cap = tmp_path / "cap.cu8"
     _cu8(cap, 2_400_000)
-    r = _run(["run", "--source", f"replay:{cap}", "--fast", "--out", str(tmp_path / "o"),
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(NO_PORTS)
+    r = _run(["run", "--config", str(cfg), "--source", f"replay:{cap}", "--fast", "--out",
+              str(tmp_path / "o"),
               "--sample-rate", "2.4e6", "--center-freq", "1420.4e6"])
     assert r.returncode == 0, r.stderr
     f = next((tmp_path / "o").glob("*.fits"))
@@ -132,7 +136,7 @@ def test_bad_replay_files_exit_2_and_write_nothing(tmp_path, make, fragment):
     cap = tmp_path / "cap.cu8"
     make(cap)
     out = tmp_path / "o"
-    r = _run(["run", "--source", f"replay:{cap}", "--fast", "--out", str(out)])
+    r = run_cli_inprocess(["run", "--source", f"replay:{cap}", "--fast", "--out", str(out)])
     assert r.returncode == 2
     assert fragment in r.stderr and str(cap) in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
@@ -145,12 +149,14 @@ def test_bad_replay_files_exit_2_and_write_nothing(tmp_path, make, fragment):
     (["--source", "usb"], "--source 'usb'"),
 ])
 def test_bad_options_exit_2(tmp_path, args, fragment):
-    r = _run(["run", "--fast", "--out", str(tmp_path / "o"), *args])
+    r = run_cli_inprocess(["run", "--fast", "--out", str(tmp_path / "o"), *args])
     assert r.returncode == 2
     assert fragment in r.stderr
 
 
 def test_unwritable_output_folder_exit_2(tmp_path):
+    # a real subprocess (python -m spinflip.cli), as test_rtlsdr_without_librtlsdr_says_how_to_fix
+    # below: the entry point's own exit codes 2 and 1; the other exit-code tests run in-process
     blocker = tmp_path / "file"
     blocker.write_text("x")
     r = _run(["run", "--fast", "--duration", "5", "--out", str(blocker / "sub")])
@@ -161,7 +167,8 @@ def test_unwritable_output_folder_exit_2(tmp_path):
 def test_target_below_horizon_refused(tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[pointing]\nframe = "azel"\nlon = 180.0\nlat = 2.0\n')
-    r = _run(["run", "--config", str(cfg), "--fast", "--duration", "5", "--out", str(tmp_path / "o")])
+    r = run_cli_inprocess(["run", "--config", str(cfg), "--fast", "--duration", "5", "--out",
+                           str(tmp_path / "o")])
     assert r.returncode == 2 and "min_elevation" in r.stderr
 
 
