@@ -358,13 +358,38 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
                                       stderr=subprocess.PIPE, text=True))
         stations.append(f"{name}=tcp://127.0.0.1:{ports['data']}")
     relay = f"tcp://127.0.0.1:{free_loopback_port()}"
+    # tolerant of a loaded machine: both daemons answer before collect starts, and the relay
+    # is read until it gave both stations' spectra and status (or a generous deadline); then
+    # collect is stopped (SIGTERM: exit 0)
+    from spinflip.daemon.live.control import ControlError, request
     try:
+        for proc, cfg_name in zip(procs, ("north", "south")):
+            text = (tmp_path / f"{cfg_name}.toml").read_text()
+            control = text.split('control = "')[1].split('"')[0]
+            deadline = time.monotonic() + 60
+            while True:
+                try:
+                    request(control, "status", timeout_s=1.0)
+                    break
+                except ControlError:
+                    assert time.monotonic() < deadline and proc.poll() is None, cfg_name
         coll = subprocess.Popen([sys.executable, "-m", "spinflip.cli", "collect",
                                  *stations, "--relay", relay, "--archive",
-                                 str(tmp_path / "archive"), "--duration", "9"],
+                                 str(tmp_path / "archive"), "--duration", "120"],
                                 stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
-        time.sleep(1.0)
-        msgs = [schema_decode(f) for f in _collect(relay, 6.0, (b"spectrum", b"status"))]
+        sub = zmq.Context.instance().socket(zmq.SUB)
+        sub.connect(relay)
+        for t in (b"spectrum", b"status"):
+            sub.setsockopt(zmq.SUBSCRIBE, t)
+        msgs, seen = [], set()
+        deadline = time.monotonic() + 60
+        while len(seen) < 4 and time.monotonic() < deadline and coll.poll() is None:
+            if sub.poll(100):
+                msg = schema_decode(sub.recv_multipart())
+                msgs.append(msg)
+                seen.add((msg[0], msg[1]["station"]))
+        sub.close(0)
+        coll.send_signal(signal.SIGTERM)
         out, err = coll.communicate(timeout=60)
         assert coll.returncode == 0, err
     finally:
