@@ -1,4 +1,4 @@
-"""Session-wide test setup: the default ports guard, and the markers' meaning.
+"""Session-wide test setup: the default ports guard, and simulated scans shared by modules.
 
 The default ports guard
 -----------------------
@@ -20,6 +20,8 @@ from __future__ import annotations
 import socket
 
 import pytest
+
+from sim_scans import run_l30_scan
 
 DEFAULT_PORTS = (5621, 5622)          # [publish] data and control defaults (daemon/config.py)
 
@@ -76,3 +78,10 @@ def pytest_runtest_makereport(item, call):
         rep.sections.append(("default ports guard", (
             "tests/conftest.py holds 127.0.0.1:5621 and :5622 for the session: a test daemon "
             "must use free ports (free_loopback_port) or [publish] data = \"\", control = \"\"")))
+
+
+@pytest.fixture(scope="session")
+def clean_l30_scan(tmp_path_factory):
+    """The simulated 40-s scan at l = 30 deg without interference (tests/sim_scans.py), run
+    once per session (per xdist worker) for test_rfi_sim.py and test_run.py."""
+    return run_l30_scan(tmp_path_factory.mktemp("l30"), False)

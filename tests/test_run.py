@@ -32,15 +32,10 @@ def _run(args, cwd=None, timeout=120):
 
 
 @pytest.fixture(scope="module")
-def sim_scan(tmp_path_factory):
-    d = tmp_path_factory.mktemp("sim")
-    cfg = d / "c.toml"
-    cfg.write_text(SIM_CONFIG)
-    r = _run(["run", "--config", str(cfg), "--fast", "--duration", "30", "--out", str(d / "out")])
-    assert r.returncode == 0, r.stderr
-    files = sorted((d / "out").glob("*.fits"))
-    assert len(files) == 1 and str(files[0]) in r.stdout
-    return files[0]
+def sim_scan(clean_l30_scan):
+    """The simulated scan of SIM_CONFIG (40 s), computed once per session (tests/conftest.py,
+    tests/sim_scans.py) and shared with test_rfi_sim.py."""
+    return clean_l30_scan["path"]
 
 
 def test_sim_scan_follows_the_file_contract(sim_scan):
@@ -121,6 +116,7 @@ def test_replay_runs_in_counts(tmp_path):
               "--sample-rate", "2.4e6", "--center-freq", "1420.4e6"])
     assert r.returncode == 0, r.stderr
     f = next((tmp_path / "o").glob("*.fits"))
+    assert f"to {f}" in r.stdout and r.stdout.startswith("saved ")     # what was written
     with fits.open(f) as h:
         assert h[1].columns["DATA"].unit == "count"
         assert h[1].data["CRVAL1"][0] == 1420.4e6
