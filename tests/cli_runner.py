@@ -3,6 +3,7 @@ simulator's truths."""
 
 import contextlib
 import io
+import signal
 import subprocess
 import sys
 
@@ -28,13 +29,16 @@ def run_cli_inprocess(args, stdin=None):
 
     Standard output and error are captured as text, ``stdin`` (text) feeds ``input()``; an
     argparse exit (SystemExit) gives its code. Saves the second of imports a subprocess costs:
-    for the exit-code tests, which end before any daemon starts. An exception that escapes
-    ``main`` fails the test (as a traceback and exit 1 would in a subprocess).
+    for the exit-code tests and the runs whose files are what counts. An exception that escapes
+    ``main`` fails the test (as a traceback and exit 1 would in a subprocess). The SIGINT and
+    SIGTERM handlers a daemon installs are put back afterwards (Ctrl-C stops pytest again).
     """
     from spinflip import cli
     argv = [str(a) for a in args]
     out, err = io.StringIO(), io.StringIO()
     with contextlib.ExitStack() as stack:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            stack.callback(signal.signal, sig, signal.getsignal(sig))
         stack.enter_context(contextlib.redirect_stdout(out))
         stack.enter_context(contextlib.redirect_stderr(err))
         if stdin is not None:
