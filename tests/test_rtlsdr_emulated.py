@@ -229,3 +229,22 @@ def test_opening_without_the_dongle_says_what_to_check(fakertl, sources, monkeyp
     src = sources(_cfg(source={"device": "SPF00001"}))           # by serial number
     src.open()
     assert src.read().raw.size == 2 * BLOCK_SAMPLES
+
+
+def test_close_right_after_open_stops_a_reader_that_started_late(fakertl, sources,  # noqa: F811
+                                                                   monkeypatch):
+    # On a loaded machine the reader thread may enter read_async only after close() cancelled:
+    # librtlsdr's cancel_async does nothing to a stream not running yet (it returns -2), so a
+    # single cancel left the stream running and the handle open for good (the next open: BUSY).
+    started_late = dongle.RtlSdrSource._reader
+
+    def late(self):
+        time.sleep(0.5)                       # scheduled late
+        started_late(self)
+
+    monkeypatch.setattr(dongle.RtlSdrSource, "_reader", late)
+    src = sources(_cfg(switching={"mode": "none"}))
+    src.open()
+    src.close()
+    assert fakertl.stat("open_handles") == 0 and fakertl.stat("async_running") == 0
+    assert not src._abandoned
