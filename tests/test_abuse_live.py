@@ -34,6 +34,8 @@ from spinflip.daemon.live.keys import keys_main
 from spinflip.daemon.live.publisher import Publisher
 from spinflip.tui.state import ViewState
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 HERE = Path(__file__).parent
 #: Allowed growth of the daemon's memory under each attack, MB (its baseline is ~30 MB; an
 #: unbounded daemon grows by what the attacker sends, 128 MB here).
