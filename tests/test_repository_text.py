@@ -13,7 +13,7 @@ import hashlib
 import re
 from pathlib import Path
 
-from spinflip.daemon.commands import doctor
+from spinflip.daemon.commands import station_probes
 
 REPO = Path(__file__).resolve().parents[1]
 TEXT_SUFFIXES = {".py", ".md", ".toml", ".rules", ".conf", ".service", ".sh", ".c", ".txt"}
@@ -50,12 +50,13 @@ def test_no_dongle_maker_or_brand_is_named():
 
 
 def test_doctor_describes_usb_ids_generically():
-    assert ("0bda", "2838") in doctor.RTL2832U_USB_IDS
-    for ids, text in doctor.RTL2832U_USB_IDS.items():
+    assert ("0bda", "2838") in station_probes.RTL2832U_USB_IDS
+    for ids, text in station_probes.RTL2832U_USB_IDS.items():
         assert re.fullmatch(r"[0-9a-f]{4}", ids[0]) and re.fullmatch(r"[0-9a-f]{4}", ids[1])
         assert text.startswith("RTL2832U "), (ids, text)
-    source = (REPO / "daemon" / "commands" / "doctor.py").read_text()
-    assert "librtlsdr.c" not in source     # no pointer into a driver's own device list
+    for name in ("doctor.py", "station_probes.py"):
+        source = (REPO / "daemon" / "commands" / name).read_text()
+        assert "librtlsdr.c" not in source     # no pointer into a driver's own device list
 
 
 def test_iau_1985_constants_are_cited_by_journal_reference_only():
