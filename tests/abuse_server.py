@@ -13,6 +13,8 @@ import json
 import sys
 import threading
 
+import wire_examples
+
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.control import ControlServer
 from spinflip.daemon.live.publisher import Publisher
@@ -20,15 +22,12 @@ from spinflip.daemon.live.publisher import Publisher
 
 def status_header(n: int) -> dict:
     """A valid status header whose numbers follow ``n`` (also used by the abuse tests)."""
-    return {"state": "observing", "source": "sim", "lo_hz": 1.42e9, "gain_db": 40.0,
-            "sample_rate_hz": 2.4e6, "tsys_k": 100.0 + n, "tsys_source": "fixed",
-            "samples_received": n, "samples_lost": 0, "queue_depth": 0,
-            "disk_free_bytes": 1, "writing": "writing", "held_integrations": 0,
-            "dropped_integrations": 0, "worker_failures": {}, "uptime_s": float(n),
-            "version": "0", "scan": "s1",
-            "drops": {}, "pointing": {"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0,
-                                      "object": "x"},
-            "rfi": {"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0}}
+    return wire_examples.status_header(
+        lo_hz=1.42e9, gain_db=40.0, sample_rate_hz=2.4e6, tsys_k=100.0 + n, tsys_source="fixed",
+        samples_received=n, samples_lost=0, queue_depth=0, disk_free_bytes=1,
+        uptime_s=float(n), version="0", scan="s1", drops={},
+        pointing={"frame": "galactic", "lon_deg": 30.0, "lat_deg": 0.0, "object": "x"},
+        rfi={"impulses": 0, "carrier_onsets": 0, "sk_cells": 0, "blanked_spectra": 0})
 
 
 def main() -> int:

@@ -1,5 +1,9 @@
-"""Test helper: run the ``spinflip`` command in a subprocess, and the simulator's truths."""
+"""Test helper: run the ``spinflip`` command (in a subprocess or in this process), and the
+simulator's truths."""
 
+import contextlib
+import io
+import signal
 import subprocess
 import sys
 
@@ -8,11 +12,45 @@ import numpy as np
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sources.galaxy import ModelGalaxy
 
+#: A ``[publish]`` section with no sockets: a test daemon must never bind the default ports
+#: 5621/5622 (tests/conftest.py holds them for the session). Append it to a test's TOML.
+NO_PORTS = '[publish]\ndata = ""\ncontrol = ""\n'
+
 
 def run_cli(args, cwd=None, timeout=180, stdin=None):
     """``python -m spinflip.cli ARGS`` -> CompletedProcess (text, captured)."""
     return subprocess.run([sys.executable, "-m", "spinflip.cli", *map(str, args)],
                           cwd=cwd, capture_output=True, text=True, timeout=timeout, input=stdin)
+
+
+def run_cli_inprocess(args, stdin=None):
+    """``spinflip.cli.main(ARGS)`` in this process -> CompletedProcess, as :func:`run_cli`.
+
+    Standard output and error are captured as text, ``stdin`` (text) feeds ``input()``; an
+    argparse exit (SystemExit) gives its code. Saves the second of imports a subprocess costs:
+    for the exit-code tests and the runs whose files are what counts. An exception that escapes
+    ``main`` fails the test (as a traceback and exit 1 would in a subprocess). The SIGINT and
+    SIGTERM handlers a daemon installs are put back afterwards (Ctrl-C stops pytest again).
+    """
+    from spinflip import cli
+    argv = [str(a) for a in args]
+    out, err = io.StringIO(), io.StringIO()
+    with contextlib.ExitStack() as stack:
+        for sig in (signal.SIGINT, signal.SIGTERM):
+            stack.callback(signal.signal, sig, signal.getsignal(sig))
+        stack.enter_context(contextlib.redirect_stdout(out))
+        stack.enter_context(contextlib.redirect_stderr(err))
+        if stdin is not None:
+            old_stdin = sys.stdin
+            sys.stdin = io.StringIO(stdin)
+            stack.callback(setattr, sys, "stdin", old_stdin)
+        try:
+            code = cli.main(argv)
+        except SystemExit as exc:
+            code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
+            if isinstance(exc.code, str):
+                err.write(exc.code + "\n")
+    return subprocess.CompletedProcess(["spinflip", *argv], code, out.getvalue(), err.getvalue())
 
 
 def write_config(path, text):

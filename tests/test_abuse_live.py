@@ -34,6 +34,8 @@ from spinflip.daemon.live.keys import keys_main
 from spinflip.daemon.live.publisher import Publisher
 from spinflip.tui.state import ViewState
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 HERE = Path(__file__).parent
 #: Allowed growth of the daemon's memory under each attack, MB (its baseline is ~30 MB; an
 #: unbounded daemon grows by what the attacker sends, 128 MB here).
@@ -171,11 +173,11 @@ def test_many_subscriptions_to_no_topic_stay_bounded(plain_daemon):
     rng = np.random.default_rng(7)
     deadline = time.monotonic() + 20
     sent = 0
-    while sent < 20000 and time.monotonic() < deadline:     # 20000 x 500 random bytes
+    while sent < 40000 and time.monotonic() < deadline:     # 40000 x 500 random bytes
         s = socket.create_connection(("127.0.0.1", _port(daemon["data"])), timeout=10)
         try:
             s.sendall(_greeting(b"NULL") + _ready_sub())
-            while sent < 20000:
+            while sent < 40000:
                 buf = bytearray()
                 for _ in range(100):
                     sub = b"\x01" + rng.bytes(500)
@@ -188,8 +190,11 @@ def test_many_subscriptions_to_no_topic_stay_bounded(plain_daemon):
             s.close()
     time.sleep(1.0)
     grown = _rss_mb(daemon["pid"]) - before
-    # unbounded (before): about 25 kB a subscription kept, 500 MB here
-    assert sent >= 20000 and grown < 2.5 * RSS_SLACK_MB, f"daemon grew by {grown:.0f} MB"
+    # unbounded (before): about 17 kB a subscription kept, +680 MB here. Bounded, the daemon
+    # keeps at most what arrives before it has counted MAX_IGNORED_SUBSCRIPTIONS and closed the
+    # socket; how much that is depends on scheduling (measured +4 to +115 MB), not on how many
+    # the flood sends in all
+    assert sent >= 40000 and grown < 250, f"daemon grew by {grown:.0f} MB"
     # a real subscriber still gets data
     sub = zmq.Context.instance().socket(zmq.SUB)
     sub.linger = 0

@@ -13,7 +13,7 @@ from astropy import units as u
 from astropy.coordinates import Galactic, SkyCoord, SpectralCoord
 from astropy.io import fits
 from astropy.time import Time
-from cli_runner import model_line, run_cli, true_tsys_k, write_config
+from cli_runner import NO_PORTS, model_line, run_cli_inprocess, true_tsys_k, write_config
 
 from spinflip.daemon.dsp.channelizer import make_channelizer
 from spinflip.daemon.sky import coordinates
@@ -26,7 +26,8 @@ SITE = (46.82, 8.37, 640.0)          # the default (fictional) site
 def _scan(tmp_path_factory, name, text, duration):
     d = tmp_path_factory.mktemp(name)
     cfg = write_config(d / "c.toml", text)
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", duration, "--out", d / "out"])
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", duration, "--out",
+                           d / "out"])
     assert r.returncode == 0, r.stderr
     files = sorted((d / "out").glob("*.fits"))
     assert len(files) == 1
@@ -49,7 +50,7 @@ integration_s = 5.0
 cal_interval_s = 20.0
 [switching]
 offset_hz = {offset}
-"""
+""" + NO_PORTS
 
 
 @pytest.fixture(scope="module")
@@ -281,14 +282,14 @@ def test_column_density_against_the_model_column(thin):
 
 def test_inspect_shows_calibration_and_line(inband):
     path, _ = inband
-    r = run_cli(["inspect", path, "--json"])
+    r = run_cli_inprocess(["inspect", path, "--json"])
     assert r.returncode == 0, r.stderr
     s = json.loads(r.stdout)
     assert s["tsys_source"].startswith("noise source")
     assert s["tsys_measurements"] >= 2
     assert s["velocity_axis_lsrk_km_s"][0] < 0 < s["velocity_axis_lsrk_km_s"][1]
     assert s["line_integral_k_km_s"] > 1000 and s["nhi_cm2"] > 1e21
-    text = run_cli(["inspect", path]).stdout
+    text = run_cli_inprocess(["inspect", path]).stdout
     for frag in ("noise source", "K km/s", "cm^-2", "LSRK"):
         assert frag in text
 
@@ -302,7 +303,7 @@ switch = "command"
 switch_on_cmd = "echo relay jammed >&2; exit 3"
 switch_off_cmd = "true"
 """))
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 12, "--out", tmp_path / "o"])
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 12, "--out", tmp_path / "o"])
     assert r.returncode == 0, r.stderr
     assert "noise source switch failed" in r.stderr and "relay jammed" in r.stderr
     assert "no system temperature measured" in r.stderr
@@ -320,8 +321,8 @@ def test_switch_that_fails_at_start_up_is_refused(tmp_path):
 switch = "command"
 switch_on_cmd = "true"
 switch_off_cmd = "exit 4"
-""")
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
+""" + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
     assert r.returncode == 2
     assert "failed at start-up" in r.stderr and len(r.stderr.strip().splitlines()) == 1
     assert not list((tmp_path / "o").glob("*.fits"))
@@ -331,7 +332,7 @@ def test_stale_tsys_flags_rows(tmp_path):
     cfg = write_config(tmp_path / "c.toml", BASE.format(seed=1, drift=0.02, period=900.0,
                        l=30.0, b=0.0, offset=-0.8e6).replace("cal_interval_s = 20.0",
                        "cal_interval_s = 3600.0\ntsys_max_age_s = 10.0"))
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 25, "--out", tmp_path / "o"])
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 25, "--out", tmp_path / "o"])
     assert r.returncode == 0 and "s old" in r.stderr
     (path,) = list((tmp_path / "o").glob("*.fits"))
     with fits.open(path) as h:
@@ -355,8 +356,8 @@ def test_stale_tsys_flags_rows(tmp_path):
     ('[pointing]\nframe = "azel"\nlon = 180.0\nlat = 3.0\n', ["below pointing.min_elevation"]),
 ])
 def test_bad_calibration_input_is_one_line_exit_2(tmp_path, text, fragments):
-    cfg = write_config(tmp_path / "c.toml", text)
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
+    cfg = write_config(tmp_path / "c.toml", text + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
     assert r.returncode == 2, r.stderr
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1, r.stderr

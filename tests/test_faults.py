@@ -33,6 +33,8 @@ from spinflip.daemon.storage.items import OpenScan
 from spinflip.daemon.storage.journal import count_rows
 from spinflip.daemon.storage.writer import ScanStore
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 REPO = Path(__file__).resolve().parents[1]
 
 

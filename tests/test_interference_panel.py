@@ -13,6 +13,7 @@ import re
 
 import numpy as np
 from rich.console import Console
+from wire_examples import status_header
 
 from spinflip.daemon.live import schema
 from spinflip.tui import panels
@@ -62,14 +63,10 @@ def status_frames(new_fields=True):
         rfi.update({"flagged_rfi_fraction": 2 / NCHAN,          # the carrier, folded: 2 ch
                     "uncovered_fraction": len(UNCOVERED) / NCHAN,
                     "uncovered_hz": [float(f[UNCOVERED[0]]), float(f[UNCOVERED[-1]])]})
-    return schema.encode("status", {
-        "state": "observing", "source": "sim", "lo_hz": REST_HZ, "gain_db": 40.2,
-        "sample_rate_hz": 2_400_000.0, "tsys_k": 72.0, "tsys_source": "noise_source",
-        "samples_received": 1, "samples_lost": 0, "queue_depth": 0, "disk_free_bytes": 10**10,
-        "uptime_s": 10.0, "version": "0.1.0", "writing": "writing", "held_integrations": 0,
-        "dropped_integrations": 0, "worker_failures": {}, "scan": "scan-1",
-        "pointing": {"frame": "galactic", "lon_deg": 80.0, "lat_deg": 0.0, "object": "G080"},
-        "drops": {}, "rfi": rfi})
+    return schema.encode("status", status_header(
+        lo_hz=REST_HZ, tsys_k=72.0, samples_received=1, samples_lost=0, queue_depth=0,
+        disk_free_bytes=10**10, uptime_s=10.0, scan="scan-1", drops={}, rfi=rfi,
+        pointing={"frame": "galactic", "lon_deg": 80.0, "lat_deg": 0.0, "object": "G080"}))
 
 
 def make_state(new_fields=True, rows=3) -> ViewState:

@@ -5,7 +5,7 @@ import time
 import numpy as np
 import pytest
 from astropy.io import fits
-from cli_runner import run_cli, write_config
+from cli_runner import NO_PORTS, run_cli, run_cli_inprocess, write_config
 
 from spinflip.daemon.calibration import loads
 
@@ -23,6 +23,9 @@ lon = 30.0
 lat = 0.0
 [spectrometer]
 integration_s = 5.0
+[publish]
+data = ""
+control = ""
 [calibration]
 t_cold_k = 10.0
 t_hot_k = 290.0
@@ -90,8 +93,9 @@ def test_old_record_is_refused(tmp_path):
     old = loads.make_record(meta, p_hot_counts=5.0, p_cold_counts=1.0, t_hot_k=290.0,
                             t_cold_k=10.0, time_per_load_s=3.0, time_unix_s=time.time() - 2 * 86400)
     loads.save_record(old, folder)
-    cfg = write_config(tmp_path / "c.toml", f'[calibration]\ntsys_from = "loads"\nrecords = "{folder}"\n')
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
+    cfg = write_config(tmp_path / "c.toml",
+                       f'[calibration]\ntsys_from = "loads"\nrecords = "{folder}"\n' + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", 5, "--out", tmp_path / "o"])
     assert r.returncode == 2
     line = r.stderr.strip()
     assert "\n" not in line and old.name in line and "older than calibration.max_record_age_s" in line
@@ -100,7 +104,7 @@ def test_old_record_is_refused(tmp_path):
 def test_interactive_prompts_and_cancel_leave_no_record(tmp_path):
     cfg = write_config(tmp_path / "c.toml", SIM)
     # the observer presses Enter once, then the input ends (Ctrl-D): cancelled, nothing saved
-    r = run_cli(["loads", "--config", cfg, "--fast", "--out", tmp_path / "o"], stdin="\n")
+    r = run_cli_inprocess(["loads", "--config", cfg, "--fast", "--out", tmp_path / "o"], stdin="\n")
     assert r.returncode == 130
     assert "Step 1 of 3: cover the feed with the absorber" in r.stdout
     assert "Step 2 of 3" in r.stdout and "cancelled" in r.stderr
@@ -108,7 +112,7 @@ def test_interactive_prompts_and_cancel_leave_no_record(tmp_path):
 
 
 def test_loads_refuses_a_replay(tmp_path):
-    r = run_cli(["loads", "--source", "replay:/nonexistent.cu8", "--out", tmp_path / "o"])
+    r = run_cli_inprocess(["loads", "--source", "replay:/nonexistent.cu8", "--out", tmp_path / "o"])
     assert r.returncode == 2 and "\n" not in r.stderr.strip() and "live receiver" in r.stderr
 
 
@@ -117,7 +121,7 @@ def test_absurd_y_is_refused_with_one_line_and_no_record(tmp_path):
     cfg = write_config(tmp_path / "c.toml", SIM.replace("spillover_k = 0.0", "spillover_k = 300.0")
                        .replace("[calibration]", "[calibration]\nloads_s = 1.0").replace(
                            "loads_s = 3.0\n", "") + "[source]\n")
-    r = run_cli(["loads", "--config", cfg, "--fast", "--yes", "--out", tmp_path / "o"])
+    r = run_cli_inprocess(["loads", "--config", cfg, "--fast", "--yes", "--out", tmp_path / "o"])
     assert r.returncode == 2, r.stderr
     lines = r.stderr.strip().splitlines()
     assert len(lines) == 1 and "Y = " in lines[0] and "not above 1" in lines[0]

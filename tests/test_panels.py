@@ -23,6 +23,7 @@ import pytest
 from astropy import units as u
 from rich.cells import cell_len
 from rich.console import Console
+from wire_examples import status_header
 
 from spinflip.daemon.live import schema
 from spinflip.tui import panels
@@ -71,17 +72,11 @@ def spectrum_frames(kind="integration", row=3, flag_idx=(100, 101, 700), noise_k
 
 
 def status_frames(tsys_k=74.2, writing="writing", held=0, failures=None):
-    return schema.encode("status", {
-        "state": "observing", "source": "sim", "lo_hz": 1_420_000_000.0, "gain_db": 40.2,
-        "sample_rate_hz": 2_400_000.0, "tsys_k": tsys_k, "tsys_source": "noise_source",
-        "samples_received": 123_456_789, "samples_lost": 1_000, "queue_depth": 1,
-        "disk_free_bytes": 9_876_543_210, "uptime_s": 61.5, "version": "0.1.0",
-        "writing": writing, "held_integrations": held, "dropped_integrations": 0,
-        "worker_failures": failures or {},
-        "scan": "scan-0007",
-        "pointing": {"frame": "galactic", "lon_deg": 120.0, "lat_deg": 0.5, "object": "G120"},
-        "drops": {"spectrum": 0}, "rfi": {"impulses": 4, "carrier_onsets": 1, "sk_cells": 17,
-                                          "blanked_spectra": 0}})
+    """Status frames (tests/wire_examples.py: Tsys 74.2 K, 123 456 789 samples, 1000 lost,
+    9.88 GB free, up 61.5 s, scan-0007 at G120, rfi 4 impulses / 1 carrier / 17 SK cells)."""
+    return schema.encode("status", status_header(tsys_k=tsys_k, writing=writing,
+                                                 held_integrations=held,
+                                                 worker_failures=failures or {}))
 
 
 def progress_frames(scan_total_s=300.0, eta_s=137.4):

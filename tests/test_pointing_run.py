@@ -5,7 +5,7 @@ from astropy import units as u
 from astropy.coordinates import AltAz, SkyCoord
 from astropy.io import fits
 from astropy.time import Time
-from cli_runner import run_cli, write_config
+from cli_runner import NO_PORTS, run_cli_inprocess, write_config
 
 from spinflip.daemon.sky import coordinates
 
@@ -13,8 +13,9 @@ START = "2026-03-01T04:00:00"
 
 
 def _run(tmp_path, text, duration):
-    cfg = write_config(tmp_path / "c.toml", text)
-    r = run_cli(["run", "--config", cfg, "--fast", "--duration", duration, "--out", tmp_path / "o"])
+    cfg = write_config(tmp_path / "c.toml", text + NO_PORTS)
+    r = run_cli_inprocess(["run", "--config", cfg, "--fast", "--duration", duration, "--out",
+                           tmp_path / "o"])
     files = sorted((tmp_path / "o").glob("*.fits"))
     return r, files
 

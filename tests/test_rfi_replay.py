@@ -11,7 +11,7 @@ import json
 import numpy as np
 import pytest
 from astropy.io import fits
-from cli_runner import run_cli, write_config
+from cli_runner import NO_PORTS, run_cli, write_config
 
 from spinflip.daemon.dsp.samples import complex_to_u8
 
@@ -48,7 +48,7 @@ integration_s = 2.0
 impulses = {'true' if rfi else 'false'}
 sk = {'true' if rfi else 'false'}
 carriers = {'true' if rfi else 'false'}
-""")
+""" + NO_PORTS)
     r = run_cli(["run", "--config", cfg, "--source", f"replay:{capture}", "--fast",
                  "--out", tmp_path / name])
     assert r.returncode == 0, r.stderr

@@ -9,61 +9,23 @@ interference within 1 % of the same scan without.
 
 import numpy as np
 import pytest
-from astropy.io import fits
+from sim_scans import DURATION_S, run_l30_scan
 
-from spinflip.daemon import config
-from spinflip.daemon.run import observation
 from spinflip.daemon.sky.hi_line import radio_velocity_m_s
 from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.daemon.sources.sim import RFI_BURSTS, RFI_CARRIERS
 
-DURATION_S = 40.0
-
-
-def _config(tmp, rfi: bool):
-    cfg = config.load(None)
-    config.merge(cfg, {
-        "sim": {"start": "2026-03-01T04:00:00", "seed": 7, "rfi": rfi},
-        "pointing": {"frame": "galactic", "lon": 30.0, "lat": 0.0},
-        "spectrometer": {"integration_s": 5.0},
-        "output": {"dir": str(tmp)},
-    })
-    return cfg
-
-
-def _run(tmp, rfi: bool):
-    cfg = _config(tmp, rfi)
-    d = observation.Daemon(cfg, fast=True, duration_s=DURATION_S, log=lambda msg: None)
-    seen = []                                   # per row: {phase: carrier mask}, and the LOs
-    original = d.interference.assess
-
-    def spy(integ, t_mid_unix_s, date_obs):
-        verdict = original(integ, t_mid_unix_s, date_obs)
-        bad = verdict.bad
-        finder = d.interference.carriers
-        found = {ph: finder.last_found.get(ph) if finder else None for ph in bad}
-        seen.append({"found": found, "lo": {ph: integ.sums[ph].lo_hz for ph in bad},
-                     "m": {ph: integ.sums[ph].m.copy() for ph in bad}, "t": t_mid_unix_s})
-        return verdict
-
-    d.interference.assess = spy
-    result = d.run()
-    (path,) = result.files
-    with fits.open(path) as h:
-        rows = h["SINGLE DISH"].data.copy()
-        head = h["SINGLE DISH"].header
-        prod = dict(h["SCAN AVERAGE"].header)
-    return {"daemon": d, "rows": rows, "head": head, "prod": prod, "seen": seen, "cfg": cfg}
-
 
 @pytest.fixture(scope="module")
 def with_rfi(tmp_path_factory):
-    return _run(tmp_path_factory.mktemp("rfi"), True)
+    return run_l30_scan(tmp_path_factory.mktemp("rfi"), True)
 
 
 @pytest.fixture(scope="module")
-def without_rfi(tmp_path_factory):
-    return _run(tmp_path_factory.mktemp("clean"), False)
+def without_rfi(clean_l30_scan):
+    """The same scan without interference: computed once per session (tests/conftest.py),
+    shared with test_run.py."""
+    return clean_l30_scan
 
 
 def test_line_integral_with_interference_within_1_percent(with_rfi, without_rfi):

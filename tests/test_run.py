@@ -9,6 +9,7 @@ import time
 import numpy as np
 import pytest
 from astropy.io import fits
+from cli_runner import NO_PORTS, run_cli_inprocess
 
 from spinflip.daemon.dsp.samples import complex_to_u8
 
@@ -22,7 +23,7 @@ lon = 30.0
 lat = 0.0
 [spectrometer]
 integration_s = 5.0
-"""
+""" + NO_PORTS
 
 
 def _run(args, cwd=None, timeout=120):
@@ -31,15 +32,10 @@ def _run(args, cwd=None, timeout=120):
 
 
 @pytest.fixture(scope="module")
-def sim_scan(tmp_path_factory):
-    d = tmp_path_factory.mktemp("sim")
-    cfg = d / "c.toml"
-    cfg.write_text(SIM_CONFIG)
-    r = _run(["run", "--config", str(cfg), "--fast", "--duration", "30", "--out", str(d / "out")])
-    assert r.returncode == 0, r.stderr
-    files = sorted((d / "out").glob("*.fits"))
-    assert len(files) == 1 and str(files[0]) in r.stdout
-    return files[0]
+def sim_scan(clean_l30_scan):
+    """The simulated scan of SIM_CONFIG (40 s), computed once per session (tests/conftest.py,
+    tests/sim_scans.py) and shared with test_rfi_sim.py."""
+    return clean_l30_scan["path"]
 
 
 def test_sim_scan_follows_the_file_contract(sim_scan):
@@ -113,10 +109,14 @@ def _cu8(path, n, seed=3):
 def test_replay_runs_in_counts(tmp_path):
     cap = tmp_path / "cap.cu8"
     _cu8(cap, 2_400_000)
-    r = _run(["run", "--source", f"replay:{cap}", "--fast", "--out", str(tmp_path / "o"),
+    cfg = tmp_path / "c.toml"
+    cfg.write_text(NO_PORTS)
+    r = _run(["run", "--config", str(cfg), "--source", f"replay:{cap}", "--fast", "--out",
+              str(tmp_path / "o"),
               "--sample-rate", "2.4e6", "--center-freq", "1420.4e6"])
     assert r.returncode == 0, r.stderr
     f = next((tmp_path / "o").glob("*.fits"))
+    assert f"to {f}" in r.stdout and r.stdout.startswith("saved ")     # what was written
     with fits.open(f) as h:
         assert h[1].columns["DATA"].unit == "count"
         assert h[1].data["CRVAL1"][0] == 1420.4e6
@@ -132,7 +132,7 @@ def test_bad_replay_files_exit_2_and_write_nothing(tmp_path, make, fragment):
     cap = tmp_path / "cap.cu8"
     make(cap)
     out = tmp_path / "o"
-    r = _run(["run", "--source", f"replay:{cap}", "--fast", "--out", str(out)])
+    r = run_cli_inprocess(["run", "--source", f"replay:{cap}", "--fast", "--out", str(out)])
     assert r.returncode == 2
     assert fragment in r.stderr and str(cap) in r.stderr
     assert len(r.stderr.strip().splitlines()) == 1
@@ -145,12 +145,14 @@ def test_bad_replay_files_exit_2_and_write_nothing(tmp_path, make, fragment):
     (["--source", "usb"], "--source 'usb'"),
 ])
 def test_bad_options_exit_2(tmp_path, args, fragment):
-    r = _run(["run", "--fast", "--out", str(tmp_path / "o"), *args])
+    r = run_cli_inprocess(["run", "--fast", "--out", str(tmp_path / "o"), *args])
     assert r.returncode == 2
     assert fragment in r.stderr
 
 
 def test_unwritable_output_folder_exit_2(tmp_path):
+    # a real subprocess (python -m spinflip.cli), as test_rtlsdr_without_librtlsdr_says_how_to_fix
+    # below: the entry point's own exit codes 2 and 1; the other exit-code tests run in-process
     blocker = tmp_path / "file"
     blocker.write_text("x")
     r = _run(["run", "--fast", "--duration", "5", "--out", str(blocker / "sub")])
@@ -161,7 +163,8 @@ def test_unwritable_output_folder_exit_2(tmp_path):
 def test_target_below_horizon_refused(tmp_path):
     cfg = tmp_path / "c.toml"
     cfg.write_text('[pointing]\nframe = "azel"\nlon = 180.0\nlat = 2.0\n')
-    r = _run(["run", "--config", str(cfg), "--fast", "--duration", "5", "--out", str(tmp_path / "o")])
+    r = run_cli_inprocess(["run", "--config", str(cfg), "--fast", "--duration", "5", "--out",
+                           str(tmp_path / "o")])
     assert r.returncode == 2 and "min_elevation" in r.stderr
 
 

@@ -44,6 +44,8 @@ from rich.console import Console
 from spinflip.daemon.live import schema
 from spinflip.tui.app import Keyboard, WatchSession, free_loopback_port
 
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
+
 #: How often a pane is read while waiting for something to appear, s.
 POLL_S = 0.2
 

@@ -12,6 +12,7 @@ import sys
 import threading
 import time
 
+import pytest
 import zmq
 from astropy.io import fits
 from cli_runner import live_config
@@ -20,6 +21,8 @@ from rtlsdr_emulator import emulator_env, fakertl_lib, set_control  # noqa: F401
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.ports import free_loopback_port
 from spinflip.daemon.storage.journal import count_rows
+
+pytestmark = pytest.mark.live      # real-time: seconds of wall time (CI runs it)
 
 RTLSDR_SOURCE = """kind = "rtlsdr"
 sample_rate = 1.024e6

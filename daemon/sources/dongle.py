@@ -78,6 +78,7 @@ _TRANSFER_QUANTUM_BYTES = 16384   # transfer sizes are multiples of this (and so
 _TRANSFER_MAX_BYTES = 262144      # librtlsdr's default transfer (16 * 32 * 512 bytes)
 _RING_S = 4.0                     # the ring holds at least this much signal, s
 _STALL_S = 3.0                    # no transfer for this long: the dongle is taken as gone, s
+_CANCEL_RETRY_S = 0.05            # close(): a cancel of a stream not started yet is repeated, s
 _JITTER_S = 0.25                  # transfers may come this late before samples count as lost, s
 _RETUNE_TRIES = 2                 # a failed retune is tried once more
 #: Kernel modules of the DVB-T television driver that claim the RTL2832U (from memory).
@@ -520,14 +521,19 @@ class RtlSdrSource:
             self._stopping = True
         thread = self._thread
         if thread is not None and thread.is_alive():
-            try:
-                if self._lib is not None:
-                    self._lib.rtlsdr_cancel_async(self.sdr.dev_p)
-                else:
-                    self.sdr.cancel_read_async()
-            except Exception:
-                pass
-            thread.join(timeout=_STALL_S)
+            # a reader thread started late may not be in read_async yet, where a cancel does
+            # nothing (librtlsdr: -2, not running): cancel again until it ends, _STALL_S at most
+            for _ in range(max(1, math.ceil(_STALL_S / _CANCEL_RETRY_S))):
+                try:
+                    if self._lib is not None:
+                        self._lib.rtlsdr_cancel_async(self.sdr.dev_p)
+                    else:
+                        self.sdr.cancel_read_async()
+                except Exception:
+                    pass
+                thread.join(timeout=_CANCEL_RETRY_S)
+                if not thread.is_alive():
+                    break
         if thread is not None and thread.is_alive():
             # librtlsdr would block in close until the stream ends: leave the handle alone,
             # and keep a reference so that pyrtlsdr's __del__ does not close it either
