@@ -139,7 +139,7 @@ def test_nan_leaves_a_gap_and_a_lone_point_stays():
     assert all(row[c] != " " for c in (0, 1, 2, 3, 6, 7, 8, 9))
     assert canvas.dots[1, 15] and not canvas.dots[1, 14] and not canvas.dots[1, 16]
     i, j = segment_pairs(x, y)
-    assert (7, 8) not in zip(i.tolist(), j.tolist()) and (15, 15) in zip(i.tolist(), j.tolist())
+    assert (7, 8) not in zip(i.tolist(), j.tolist(), strict=True) and (15, 15) in zip(i.tolist(), j.tolist(), strict=True)
 
 
 def spectrum_series():

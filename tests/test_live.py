@@ -36,7 +36,7 @@ def schema_decode(frames):
     header = json.loads(frames[1].decode("utf-8"))
     assert header["schema"] == 1 and header["topic"] == topic
     arrays = {}
-    for desc, raw in zip(header["arrays"], frames[2:]):
+    for desc, raw in zip(header["arrays"], frames[2:], strict=True):
         a = np.frombuffer(raw, dtype=DTYPES[desc["dtype"]]).reshape(desc["shape"])
         arrays[desc["name"]] = (a, desc["unit"])
     assert len(frames) == 2 + len(header["arrays"])
@@ -79,7 +79,7 @@ def daemon(tmp_path_factory):
         except ControlError:
             if time.monotonic() > deadline or proc.poll() is not None:
                 proc.kill()
-                raise AssertionError(proc.stderr.read())
+                raise AssertionError(proc.stderr.read()) from None
     yield {"proc": proc, "data": data, "control": control, "out": d / "out"}
     proc.send_signal(signal.SIGTERM)
     out, err = proc.communicate(timeout=30)
@@ -383,7 +383,7 @@ def test_collect_relays_two_simulated_stations_without_mixing_them(tmp_path):
     # collect is stopped (SIGTERM: exit 0)
     from spinflip.daemon.live.control import ControlError, request
     try:
-        for proc, cfg_name in zip(procs, ("north", "south")):
+        for proc, cfg_name in zip(procs, ("north", "south"), strict=True):
             text = (tmp_path / f"{cfg_name}.toml").read_text()
             control = text.split('control = "')[1].split('"')[0]
             deadline = time.monotonic() + 60

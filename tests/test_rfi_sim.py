@@ -115,7 +115,7 @@ def test_bursts_found(with_rfi):
     t_burst = np.arange(0.0, n_blocks * block_s, RFI_BURSTS["period_s"])
     i_block = (t_burst // block_s).astype(int)
     in_settle = np.array([sch.is_hop(i) and (t - i * block_s) < sch.settle_samples / fs
-                          for t, i in zip(t_burst, i_block)])
+                          for t, i in zip(t_burst, i_block, strict=True)])
     expected = int((~in_settle).sum())
     found = int(with_rfi["rows"]["NIMPULSE"].sum())
     assert found >= 0.99 * expected, (found, expected)

@@ -14,7 +14,7 @@ CDELT = 2.4e6 / NCHAN
 def _rows(line_k, baseline_k, l=120.0, b=20.0, n=4, sigma=0.05, seed=0):
     rng = np.random.default_rng(seed)
     rows = []
-    for i in range(n):
+    for _ in range(n):
         rows.append({"DATA": (line_k + baseline_k + sigma * rng.standard_normal(NCHAN)).astype(np.float32),
                      "FLAGGED": np.zeros(NCHAN, bool), "CRVAL1": HI_REST_FREQ_HZ, "CDELT1": CDELT,
                      "CRPIX1": NCHAN // 2 + 1.0, "RESTFREQ": HI_REST_FREQ_HZ, "VFRAME": 0.0,

@@ -216,7 +216,7 @@ def test_no_topic_is_a_prefix_of_another():
 def test_the_docstring_names_every_required_field_and_array():
     doc = schema.__doc__
     sections = re.split(r'^Topic "(\w+)"', doc, flags=re.M)
-    by_topic = dict(zip(sections[1::2], sections[2::2]))
+    by_topic = dict(zip(sections[1::2], sections[2::2], strict=True))
     assert set(by_topic) == set(schema.TOPICS)
     for topic, fields in schema._FIELDS.items():
         for name in fields:

@@ -52,8 +52,9 @@ def _saved_rows(result) -> int:
     return n
 
 
-def _once(original, exc=RuntimeError("injected failure")):
+def _once(original, exc=None):
     """``original`` that raises ``exc`` on its third call, then works again."""
+    exc = exc if exc is not None else RuntimeError("injected failure")
     calls = {"n": 0}
 
     def wrapped(*a, **k):

@@ -520,7 +520,7 @@ def plot(series: Iterable[Series], width: int, height: int,
     rule, tick_mark = ("|", "+") if ascii else ("\u2502", "\u2524")
     gutter_text = [" " * label_cells] * rows_n
     gutter_mark = [rule] * rows_n
-    for tick, text in zip(y_tick_values, y_tick_text):
+    for tick, text in zip(y_tick_values, y_tick_text, strict=True):
         tick_dot = (y_hi - tick) / (y_hi - y_lo) * (canvas.height_dots - 1)
         row = min(max(int(math.floor(tick_dot + 0.5)) // 4, 0), rows_n - 1)
         if gutter_mark[row] == tick_mark:
@@ -537,7 +537,7 @@ def plot(series: Iterable[Series], width: int, height: int,
     bottom = [" "] * plot_cells
     free_from = 0
     x_tick_values, x_tick_text = _ticks_inside(x_lo, x_hi, x_ticks)
-    for tick, text in zip(x_tick_values, x_tick_text):
+    for tick, text in zip(x_tick_values, x_tick_text, strict=True):
         tick_dot = (tick - x_lo) / (x_hi - x_lo) * (canvas.width_dots - 1)
         column = int(math.floor(tick_dot + 0.5)) // 2
         size = len(text)
@@ -562,7 +562,7 @@ def plot(series: Iterable[Series], width: int, height: int,
         edges = np.flatnonzero(np.diff(row_owners)) + 1
         starts = np.concatenate([[0], edges])
         ends = np.concatenate([edges, [plot_cells]])
-        for a, b in zip(starts.tolist(), ends.tolist()):
+        for a, b in zip(starts.tolist(), ends.tolist(), strict=True):
             who = int(row_owners[a])
             if who >= 0 and styles[who]:
                 spans.append(Span(offset + gutter_chars + a, offset + gutter_chars + b,

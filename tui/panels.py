@@ -712,9 +712,9 @@ def waterfall_rows(rows: Iterable[tuple[np.ndarray, np.ndarray]], width: int, he
     lo, hi = (np.percentile(allv, [2, 98]) if allv.size else (0.0, 1.0))
     styles = ("blue", "cyan", "green", "yellow", "bold white")
     out = []
-    for row_means, row_marks in zip(cells, flags):
+    for row_means, row_marks in zip(cells, flags, strict=True):
         t = Text()
-        for m, f in zip(row_means, row_marks):
+        for m, f in zip(row_means, row_marks, strict=True):
             if f or not math.isfinite(m):
                 t.append(FLAG_MARK, style=S_FLAGGED)
                 continue
@@ -892,7 +892,7 @@ def events_panel(state: ViewState, width: int, height: int) -> Text:
 # ----------------------------------------------------------------------------------------------
 def _side_by_side(left: list[Text], right: list[Text], gap: str = "│") -> list[Text]:
     out = []
-    for a, b in zip(left, right):
+    for a, b in zip(left, right, strict=False):   # the shorter column ends the pairing
         line = a.copy()
         line.append(gap, style=S_RULE)
         line.append_text(b)

@@ -33,6 +33,8 @@ import traceback
 from collections.abc import Callable
 from dataclasses import dataclass
 
+from spinflip.daemon import error_line
+
 MAX_RESTARTS = 3          # restarts of one worker allowed within WINDOW_S
 WINDOW_S = 600.0
 
@@ -52,9 +54,9 @@ class Failure:
 
 
 def one_line(exc: BaseException, limit: int = 200) -> str:
-    """``Type: message`` on one line, at most ``limit`` characters."""
-    text = f"{type(exc).__name__}: {exc}".replace("\n", " ").replace("\r", " ")
-    return text if len(text) <= limit else text[:limit - 3] + "..."
+    """``Type: message`` on one line, at most ``limit`` characters
+    (:func:`spinflip.daemon.error_line.one_line`)."""
+    return error_line.one_line(f"{type(exc).__name__}: {exc}", limit)
 
 
 class Supervisor:

@@ -76,9 +76,11 @@ from typing import NamedTuple
 import numpy as np
 import numpy.typing as npt
 
-#: Column density per unit brightness-temperature integral, cm^-2 per (K km/s)
-#: (Dickey & Lockman 1990).
-NHI_PER_K_KMS = 1.823e18
+from spinflip.daemon.sky.hi_line import HI_COLUMN_PER_K_KM_S_CM2
+
+#: Column density per unit brightness-temperature integral, cm^-2 per (K km/s): the one value,
+#: :data:`spinflip.daemon.sky.hi_line.HI_COLUMN_PER_K_KM_S_CM2` (Dickey & Lockman 1990).
+NHI_PER_K_KMS = HI_COLUMN_PER_K_KM_S_CM2
 
 #: Centimetres per kiloparsec (IAU 2012 parsec = 648000/pi au).
 CM_PER_KPC = 3.0856775814913673e21
