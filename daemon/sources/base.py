@@ -17,9 +17,11 @@ guessed from its attributes:
 
 from __future__ import annotations
 
+import threading
 from collections.abc import Callable
 from typing import Any, Protocol, runtime_checkable
 
+from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.config import ConfigError
 
 
@@ -66,6 +68,25 @@ class Source(Protocol):
     def reopen(self) -> None:
         """Open the source again after a :class:`SourceError` (SourceError if still absent)."""
         ...
+
+
+class FiresNoiseSource:
+    """The noise-source capabilities of a source whose samples the noise source reaches (the
+    simulator and the dongle). The source makes ``cal`` (a :class:`CalControl`) and ``_fire``
+    (a :class:`threading.Event`, set by :meth:`request_firing` from any thread, cleared by the
+    source's reading when it fires) in its ``__init__``."""
+
+    cal: CalControl
+    _fire: threading.Event
+
+    def can_fire_noise_source(self) -> bool:
+        return True
+
+    def attach_noise_source(self, control: CalControl) -> None:
+        self.cal = control
+
+    def request_firing(self) -> None:
+        self._fire.set()
 
 
 def parse_source_option(text: str) -> dict:

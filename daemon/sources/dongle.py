@@ -66,7 +66,7 @@ import numpy as np
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.switching import Schedule
-from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.base import FiresNoiseSource, SourceError
 from spinflip.daemon.sources.sample_clock import SampleClock
 
 if TYPE_CHECKING:
@@ -146,7 +146,7 @@ def _describe_rc(rc: int) -> str:
     return f"librtlsdr error {rc}" + (f" {name}" if name else "")
 
 
-class RtlSdrSource:
+class RtlSdrSource(FiresNoiseSource):
     """Blocks from an RTL-SDR dongle, read asynchronously into a ring of transfers.
 
     Parameters
@@ -275,15 +275,6 @@ class RtlSdrSource:
             sdr.set_bias_tee(bool(src["bias_tee"]))
         elif src["bias_tee"]:
             raise SourceError("source.bias_tee = true but this pyrtlsdr/librtlsdr has no bias-tee call")
-
-    def can_fire_noise_source(self) -> bool:
-        return True
-
-    def attach_noise_source(self, control: CalControl) -> None:
-        self.cal = control
-
-    def request_firing(self) -> None:
-        self._fire.set()
 
     def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         """The dongle's samples do not depend on where the dish points."""

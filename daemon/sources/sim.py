@@ -43,7 +43,7 @@ from spinflip.daemon.dsp.samples import complex_to_u8
 from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.sky import coordinates
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
-from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.base import FiresNoiseSource, SourceError
 from spinflip.daemon.sources.galaxy import ModelGalaxy
 from spinflip.daemon.sources.sample_clock import SampleClock
 
@@ -118,7 +118,7 @@ class TrueSky:
         return float(np.sum(self.tb_k) * (self.v_grid_km_s[1] - self.v_grid_km_s[0]))
 
 
-class SimSource:
+class SimSource(FiresNoiseSource):
     """Simulated telescope source; yields Blocks like the dongle would (see module docstring)."""
 
     kind = "sim"
@@ -256,15 +256,6 @@ class SimSource:
     def set_cal(self, on: bool | None) -> None:
         """Hold the noise source on or off (True / False), or back to the schedule (None)."""
         self.forced_cal = None if on is None else bool(on)
-
-    def can_fire_noise_source(self) -> bool:
-        return True
-
-    def attach_noise_source(self, control: CalControl) -> None:
-        self.cal = control
-
-    def request_firing(self) -> None:
-        self._fire.set()
 
     def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         with self._pointing_lock:
