@@ -45,10 +45,10 @@ from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
-from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.channel_grid import lo_mask
+from spinflip.daemon.dsp.robust import robust_sigma
 
 _EDGE_FRACTION = 0.10     # band edge not used for the band average, each side
 _SMOOTH_CHANNELS = 9
@@ -88,7 +88,7 @@ def line_free_channels(tsys_chan_k: np.ndarray, usable: np.ndarray) -> np.ndarra
         if vals.size < 8:
             break
         med = np.median(vals)
-        sigma = median_abs_deviation(vals, scale="normal")   # 1.4826 MAD
+        sigma = robust_sigma(vals)   # 1.4826 MAD (dsp.robust)
         new = good & (sm <= med + _CLIP_SIGMA * sigma)
         if np.array_equal(new, keep):
             break

@@ -52,8 +52,8 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 from numpy.polynomial import Polynomial
-from scipy.stats import median_abs_deviation
 
+from spinflip.daemon.dsp.robust import robust_sigma
 from spinflip.daemon.sky.spectral_axis import monotonic_axis
 
 #: Highest polynomial order accepted.
@@ -202,7 +202,7 @@ def fit_baseline(data_k: npt.ArrayLike, flagged: npt.ArrayLike, x: npt.ArrayLike
             break
         resid_k = data - poly(xs)
         m_k = np.median(resid_k[keep])
-        sigma_k = median_abs_deviation(resid_k[keep], scale="normal")   # 1.4826 MAD
+        sigma_k = robust_sigma(resid_k[keep])   # 1.4826 MAD (dsp.robust)
         if sigma_k <= sigma_floor_k:
             converged = True
             break

@@ -44,9 +44,9 @@ from collections.abc import Hashable
 
 import numpy as np
 from numpy.lib.stride_tricks import sliding_window_view
-from scipy.stats import median_abs_deviation
 
 from spinflip.daemon.dsp.channel_grid import lo_mask
+from spinflip.daemon.dsp.robust import robust_sigma
 
 _HALF_WIDTH = 7
 _GROW_SIGMA = 3.0
@@ -74,7 +74,7 @@ def carrier_ratio(p: np.ndarray, usable: np.ndarray) -> tuple[np.ndarray, float]
     if vals.size < 8:
         return r, float("inf")
     med = np.median(vals)
-    return r - med, float(median_abs_deviation(vals, scale="normal"))   # 1.4826 MAD
+    return r - med, float(robust_sigma(vals))   # 1.4826 MAD (dsp.robust)
 
 
 def _grow(seed: np.ndarray, weak: np.ndarray) -> np.ndarray:

@@ -30,7 +30,8 @@ from __future__ import annotations
 from collections.abc import Hashable
 
 import numpy as np
-from scipy.stats import median_abs_deviation
+
+from spinflip.daemon.dsp.robust import robust_sigma
 
 _LONG_BURST_RATIO = 1.5
 CHUNK_SAMPLES = 512
@@ -102,7 +103,7 @@ class ImpulseBlanker:
                 blank[:] = True
                 return blank, 1                   # the whole block; keep the old level
             self._levels[state] = level
-            sigma = float(median_abs_deviation(e, scale="normal"))       # 1.4826 MAD
+            sigma = float(robust_sigma(e))       # 1.4826 MAD (dsp.robust)
             hit = e > level + self.sigma * sigma if sigma > 0 else np.zeros(e.size, bool)
             if hit.any():
                 idx = np.flatnonzero(hit)
