@@ -8,6 +8,16 @@ from astropy.time import Time
 from spinflip.daemon.sky import coordinates
 
 
+def object_name(frame: str, lon_deg: float, lat_deg: float) -> str:
+    """The OBJECT name made from a position when none is given: ``G030.0+00.0`` (Galactic l, b),
+    ``RA083.63DEC+22.01`` or ``AZ180.0EL45.0``."""
+    if frame == "galactic":
+        return f"G{lon_deg % 360:05.1f}{lat_deg:+05.1f}"
+    if frame == "radec":
+        return f"RA{lon_deg:06.2f}DEC{lat_deg:+06.2f}"
+    return f"AZ{lon_deg:05.1f}EL{lat_deg:04.1f}"
+
+
 class Pointing:
     """Resolves a ``[pointing]`` table (frame, lon, lat, object, min_elevation) to a sky
     position at any time; ``frame = "auto"`` picks a Galactic-plane longitude above the
@@ -20,14 +30,8 @@ class Pointing:
             self.frame, self.lon, self.lat = "galactic", coordinates.best_plane_longitude(
                 location, t_start, p["min_elevation"]), 0.0
         self.location = location
-        self.object = p["object"] or self._name()
+        self.object = p["object"] or object_name(self.frame, self.lon, self.lat)
 
-    def _name(self) -> str:
-        if self.frame == "galactic":
-            return f"G{self.lon % 360:05.1f}{self.lat:+05.1f}"
-        if self.frame == "radec":
-            return f"RA{self.lon:06.2f}DEC{self.lat:+06.2f}"
-        return f"AZ{self.lon:05.1f}EL{self.lat:04.1f}"
 
     def __call__(self, t: Time) -> SkyCoord:
         return coordinates.pointing_coord(self.frame, self.lon, self.lat, self.location, t)
