@@ -45,7 +45,7 @@ from dataclasses import dataclass
 import numpy as np
 import numpy.typing as npt
 from astropy import units as u
-from astropy.coordinates import ICRS, LSRK, AltAz, EarthLocation, Galactic, SkyCoord
+from astropy.coordinates import ICRS, LSRK, AltAz, EarthLocation, Galactic, SkyCoord, get_sun
 from astropy.time import Time
 from astropy.utils import iers
 from astropy.utils.exceptions import AstropyWarning
@@ -274,6 +274,24 @@ def sky_to_azel(frame: str, lon_deg: npt.ArrayLike, lat_deg: npt.ArrayLike,
     with _offline(time):
         aa = coord.transform_to(_altaz(location, time))
     return _float_or_array(aa.az.deg), _float_or_array(aa.alt.deg)
+
+
+def sun_azel(location: EarthLocation,
+             time: Time) -> tuple[float | np.ndarray, float | np.ndarray]:
+    """(azimuth, elevation) in deg of the Sun at a site and time(s); no refraction
+    (astropy's ``get_sun``, GCRS, carried into the horizontal frame)."""
+    with _offline(time):
+        aa = get_sun(time).transform_to(_altaz(location, time))
+    return _float_or_array(aa.az.deg), _float_or_array(aa.alt.deg)
+
+
+def angular_distance_deg(az1: npt.ArrayLike, el1: npt.ArrayLike, az2: npt.ArrayLike,
+                         el2: npt.ArrayLike) -> np.ndarray:
+    """Great-circle distance (deg) between two horizontal directions (the haversine formula,
+    stable at small angles)."""
+    a1, e1, a2, e2 = (np.radians(np.asarray(x, dtype=float)) for x in (az1, el1, az2, el2))
+    h = np.sin((e2 - e1) / 2) ** 2 + np.cos(e1) * np.cos(e2) * np.sin((a2 - a1) / 2) ** 2
+    return np.degrees(2 * np.arcsin(np.sqrt(np.clip(h, 0.0, 1.0))))
 
 
 def azel_to_sky(az_deg: npt.ArrayLike, el_deg: npt.ArrayLike, location: EarthLocation,
