@@ -152,6 +152,11 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "lat": Key(0.0, float, -90, 90, doc="b, el or Dec in deg"),
         "object": Key("", str, doc="OBJECT name; empty: made from the position"),
         "min_elevation": Key(10.0, float, -5, 89, doc="lowest usable elevation, deg"),
+        "horizon": Key([], list, doc="horizon mask for plans: [az, el] pairs in deg (trees, "
+                       "buildings), interpolated in azimuth; empty: flat"),
+        "sun_avoid_deg": Key(15.0, float, 0, 90, doc="plans keep this far from the Sun, deg"),
+        "slew_deg_s": Key(2.0, float, 0.01, 30, doc="slew speed per axis for plans, deg/s"),
+        "settle_s": Key(5.0, float, 0, 600, doc="time after a slew before observing, s"),
     },
     "output": {
         "dir": Key("spinflip-data", str),
@@ -187,12 +192,30 @@ def _check(section: str, key: str, value: Any) -> Any:
     if spec.kind is list:
         if key == "spurs_hz":
             return _check_numbers(where, value)
+        if key == "horizon":
+            return _check_horizon(where, value)
         return _check_windows(where, value)
     if spec.choices and value not in spec.choices:
         raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
         raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     return value
+
+
+def _check_horizon(where: str, value: list) -> list:
+    """A horizon mask: [az, el] pairs, az 0..360 and el 0..90 deg."""
+    out = []
+    for w in value:
+        ok = (isinstance(w, list) and len(w) == 2
+              and all(isinstance(x, (int, float)) and not isinstance(x, bool)
+                      and math.isfinite(x) for x in w)
+              and 0 <= w[0] <= 360 and 0 <= w[1] <= 90)
+        if not ok:
+            raise ConfigError(f"config {where} = {quoted(value)}: expected a list of [az, el] "
+                              f"pairs in deg (az 0-360, el 0-90), e.g. [[0, 5], [120, 25]]; "
+                              f"{quoted(w)} is not")
+        out.append([float(w[0]), float(w[1])])
+    return out
 
 
 def _check_numbers(where: str, value: list) -> list:

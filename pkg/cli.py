@@ -93,6 +93,12 @@ def build_parser() -> argparse.ArgumentParser:
     co.add_argument("--keys", metavar="DIR", help="client CURVE keys for secured daemons")
     co.add_argument("--duration", type=_positive_seconds, metavar="S",
                     help="seconds to collect (default: until stopped)")
+    pl = sub.add_parser("plan", help="the schedule of an observing plan, before anything moves")
+    pl.add_argument("file", metavar="FILE", help="the plan (TOML)")
+    pl.add_argument("--config", help="TOML configuration: the site and [pointing] limits")
+    pl.add_argument("--start", metavar="UTC", help="start of the schedule, UTC ISO 8601 "
+                    "(default: the plan's start, else now)")
+    pl.add_argument("--json", action="store_true", help="machine-readable output")
     i = sub.add_parser("inspect", help="summary of a saved FITS scan")
     i.add_argument("file", metavar="FILE")
     i.add_argument("--json", action="store_true", help="machine-readable output")
@@ -252,6 +258,40 @@ def _cmd_collect(args: argparse.Namespace) -> int:
                         duration=args.duration)
 
 
+def _cmd_plan(args: argparse.Namespace) -> int:
+    from astropy.time import Time
+    from rich.console import Console
+
+    from spinflip.daemon import config as config_mod
+    from spinflip.daemon.run.plan_file import load_plan
+    from spinflip.daemon.run.scheduler import limits_from_config, schedule
+    from spinflip.daemon.sky import coordinates
+    from spinflip.tui.plan_view import plan_chart, plan_table, skip_reasons
+    cfg = config_mod.load(args.config)
+    plan = load_plan(args.file)
+    if args.start is not None:
+        text = config_mod.utc_start(args.start)
+        if text == "now":
+            text = Time.now().isot
+        start = Time(text, scale="utc")
+    else:
+        start = Time(plan.start, scale="utc") if plan.start else Time.now()
+    site = cfg["site"]
+    location = coordinates.site_location(site["lat"], site["lon"], site["height_m"])
+    limits = limits_from_config(cfg)
+    entries = schedule(plan, location, start, limits)
+    if args.json:
+        print(json.dumps([e.as_json() for e in entries], indent=2))
+        return 0
+    console = Console()
+    n = sum(e.status == "scheduled" for e in entries)
+    console.print(plan_table(entries, f"plan {plan.name}: {n} of {len(entries)} visits "
+                             f"scheduled from {start.isot[:16]} UTC at {site['name']}"))
+    console.print(skip_reasons(entries), end="")
+    console.print(plan_chart(entries, location, limits, width=max(30, min(console.width, 100))))
+    return 0
+
+
 def _cmd_inspect(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.inspect import format_summary, summarize
     summary = summarize(Path(args.file))
@@ -268,7 +308,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
-    handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect,
+    handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect, "plan": _cmd_plan,
                "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
                "watch": _cmd_watch, "demo": _cmd_demo,
                "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,

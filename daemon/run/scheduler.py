@@ -48,6 +48,14 @@ class Limits:
     max_hours: float = 24.0                          # the window when the plan gives no end
 
 
+def limits_from_config(cfg: dict) -> Limits:
+    """The :class:`Limits` of the ``[pointing]`` section."""
+    p = cfg["pointing"]
+    return Limits(min_elevation_deg=p["min_elevation"], sun_avoid_deg=p["sun_avoid_deg"],
+                  horizon=tuple((float(a), float(e)) for a, e in p["horizon"]),
+                  slew_deg_s=p["slew_deg_s"], settle_s=p["settle_s"])
+
+
 @dataclass(frozen=True)
 class Entry:
     """One visit of a target: scheduled (times and positions) or skipped (why)."""
