@@ -1,10 +1,12 @@
 """Tests of the model Milky Way (spinflip.daemon.sources.galaxy).
 
-Sources of the checks are named beside each test: Binney & Merrifield 1998 (*Galactic
-Astronomy*, ch. 9: kinematics of the gas disk, terminal velocity), Dickey & Lockman 1990
-(ARA&A 28, 215: N_HI = 1.823e18 int T_B dv), the IAU 1985 constants (MNRAS 221,
-1023, 1986), astropy as reference for angular separations, and common practice (observed
-HI line brightness) where no single source applies.
+Sources of the checks are named beside each test:
+- the IAU 1985 Galactic constants: MNRAS 221, 1023, 1986;
+- Binney & Merrifield 1998 (*Galactic Astronomy*, ch. 9: kinematics of the gas disk, terminal
+  velocity);
+- Dickey & Lockman 1990 (ARA&A 28, 215: N_HI = 1.823e18 int T_B dv);
+- astropy as reference for angular separations;
+- common practice (observed HI line brightness) where no single source applies.
 """
 
 import math

@@ -65,6 +65,10 @@ def test_iau_1985_constants_are_cited_by_journal_reference_only():
     for p in _files():
         text = p.read_text(errors="replace")
         cited += text.count("MNRAS 221, 1023")
+        for n, line in enumerate(text.splitlines(), 1):
+            if "MNRAS 221" in line and p != Path(__file__).resolve():   # whole, no author
+                assert "MNRAS 221, 1023" in line and "&" not in line and "et al" not in line, \
+                    f"{p.relative_to(REPO)}:{n}: {line.strip()}"
         assert not author_year.search(text), f"{p.relative_to(REPO)}: " \
             f"{author_year.search(text).group(0)!r}"
     assert cited >= 3

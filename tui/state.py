@@ -51,6 +51,7 @@ from dataclasses import dataclass, field
 import numpy as np
 
 from spinflip.daemon.live import schema
+from spinflip.daemon.live.replays import ReplayFilter
 
 #: The axes the spectrum can be drawn against (toggled by :meth:`ViewState.toggle_axis`).
 AXES = ("velocity", "frequency")
@@ -131,7 +132,7 @@ class ViewState:
     now_s: float = 0.0
     stale_after_s: float = 3.0
     replays_ignored: int = 0
-    _latest_ids: dict = field(default_factory=dict, repr=False)
+    _replays: ReplayFilter = field(default_factory=ReplayFilter, repr=False)
 
     def apply(self, message: schema.Message, now_s: float) -> None:
         """Fold one decoded message into the state.
@@ -148,13 +149,9 @@ class ViewState:
         topic = message.topic
         if topic not in schema.TOPICS:
             return
-        key = (header.get("station"), topic)
-        ident = (header.get("seq"), header.get("time_utc"))
-        if header.get("replay") is True and self._latest_ids.get(key) == ident:
-            self.replays_ignored += 1           # a message this state already has
+        if not self._replays.take(topic, header):
+            self.replays_ignored = self._replays.repeats    # a message this state already has
             return
-        if len(self._latest_ids) < 1024 or key in self._latest_ids:
-            self._latest_ids[key] = ident
         if topic == "spectrum":
             spec = _spectrum_dict(message)
             if header.get("kind") == "average":

@@ -25,7 +25,7 @@ MAD_TO_SIGMA = 1.0 / NormalDist().inv_cdf(0.75)
 
 def robust_sigma(x: npt.ArrayLike) -> float:
     """``MAD_TO_SIGMA * median(|x - median(x)|)`` of all of ``x`` (NaN if ``x`` is empty)."""
-    a = np.asarray(x, dtype=np.float64).ravel()
+    a = np.asarray(x).ravel()           # no copy to float64: float32 spectra stay float32
     if a.size == 0:
         return float("nan")
     return MAD_TO_SIGMA * float(np.median(np.abs(a - np.median(a))))

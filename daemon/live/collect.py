@@ -55,6 +55,7 @@ from zmq.utils.monitor import recv_monitor_message
 from spinflip.daemon.error_line import one_line
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.publisher import MAX_SUBSCRIPTION_FRAME
+from spinflip.daemon.live.replays import ReplayFilter
 from spinflip.daemon.live.spectrum_archive import SpectrumArchive
 
 try:  # POSIX advisory locks
@@ -155,7 +156,7 @@ class StationCount:
     repeated: int = 0
     replayed: int = 0
     disconnects: int = 0
-    latest_ids: dict = field(default_factory=dict, repr=False)
+    replays: ReplayFilter = field(default_factory=ReplayFilter, repr=False)
     by_topic: dict = field(default_factory=dict)
     last_error: str | None = None
 
@@ -378,11 +379,9 @@ def _handle(count: StationCount, frames: list[bytes], relay: zmq.Socket | None,
         _warn_decode_error(count, log_line)
         return
     count.by_topic[msg.topic] = count.by_topic.get(msg.topic, 0) + 1
-    ident = (header.get("seq"), header["time_utc"])
-    if header.get("replay") is True and count.latest_ids.get(msg.topic) == ident:
+    if not count.replays.take(msg.topic, header):
         count.replayed += 1               # the latest message of this topic, already taken
         return
-    count.latest_ids[msg.topic] = ident
     if relay is not None:
         try:
             relay.send_multipart(out, zmq.NOBLOCK)

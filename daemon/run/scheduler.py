@@ -28,7 +28,7 @@ from __future__ import annotations
 from dataclasses import dataclass, field
 
 import numpy as np
-from astropy.coordinates import EarthLocation
+from astropy.coordinates import EarthLocation, angular_separation
 from astropy.time import Time, TimeDelta
 
 from spinflip.daemon.run.plan_file import Plan, Target
@@ -108,19 +108,23 @@ def horizon_el_deg(horizon: tuple[tuple[float, float], ...], az_deg: np.ndarray)
 
 def azel(targets: list[Target], location: EarthLocation, times: Time
          ) -> tuple[np.ndarray, np.ndarray]:
-    """Azimuth and elevation (deg) of each target (rows) at each time (columns)."""
-    n, m = len(targets), times.size
-    az = np.empty((n, m))
-    el = np.empty((n, m))
+    """Azimuth and elevation (deg) of each target (rows) at ``times``: one time axis for all
+    (1-D) or a row of times per target (2-D, one row per target)."""
+    per_row = times.ndim == 2
+    shape = (len(targets), times.shape[-1])
+    az = np.empty(shape)
+    el = np.empty(shape)
     for frame in ("galactic", "radec"):
         idx = [i for i, t in enumerate(targets) if t.frame == frame]
         if idx:
             lon = np.array([targets[i].lon_deg for i in idx])[:, None]
             lat = np.array([targets[i].lat_deg for i in idx])[:, None]
-            a, e = coordinates.sky_to_azel(frame, lon, lat, location, times[None, :])
-            az[idx], el[idx] = np.broadcast_to(a, (len(idx), m)), np.broadcast_to(e, (len(idx), m))
+            when = times[idx] if per_row else times[None, :]
+            a, e = coordinates.sky_to_azel(frame, lon, lat, location, when)
+            az[idx] = np.broadcast_to(a, (len(idx), shape[1]))
+            el[idx] = np.broadcast_to(e, (len(idx), shape[1]))
     for i, t in enumerate(targets):
-        if t.frame == "azel":
+        if t.frame == "azel":                  # a parked dish: fixed in the horizontal frame
             az[i], el[i] = t.lon_deg, t.lat_deg
     return az, el
 
@@ -181,10 +185,11 @@ def _pick(todo: list[_Visit], location: EarthLocation, now: Time,
     # start, middle and end of each visit's on-source time, in seconds from now
     offs = np.stack([slew, slew + dur / 2, slew + dur], axis=1)
     times = now + TimeDelta(offs.ravel(), format="sec")
-    az, el = _azel_pairs(targets, location, times, offs.shape)
+    az, el = azel(targets, location, times.reshape(offs.shape))
     saz, sel = coordinates.sun_azel(location, times)
-    sun = coordinates.angular_distance_deg(az, el, np.reshape(saz, offs.shape),
-                                           np.reshape(sel, offs.shape))
+    sun = np.degrees(angular_separation(np.radians(az), np.radians(el),
+                                        np.radians(np.reshape(saz, offs.shape)),
+                                        np.radians(np.reshape(sel, offs.shape))))
     mask = horizon_el_deg(limits.horizon, az)
     low = el < limits.min_elevation_deg
     hidden = el < mask
@@ -221,25 +226,6 @@ def _pick(todo: list[_Visit], location: EarthLocation, now: Time,
                   az_end_deg=float(az[i, 2]), el_end_deg=float(el[i, 2]),
                   sun_distance_deg=float(sun[i].min()))
     return entry, v
-
-
-def _azel_pairs(targets: list[Target], location: EarthLocation, times: Time,
-                shape: tuple[int, ...]) -> tuple[np.ndarray, np.ndarray]:
-    """az, el (deg) of target i at the times of row i of ``times`` (reshaped to ``shape``)."""
-    az = np.empty(shape)
-    el = np.empty(shape)
-    t2 = times.reshape(shape)
-    for frame in ("galactic", "radec"):
-        idx = [i for i, t in enumerate(targets) if t.frame == frame]
-        if idx:
-            lon = np.array([targets[i].lon_deg for i in idx])[:, None]
-            lat = np.array([targets[i].lat_deg for i in idx])[:, None]
-            a, e = coordinates.sky_to_azel(frame, lon, lat, location, t2[idx])
-            az[idx], el[idx] = a, e
-    for i, t in enumerate(targets):
-        if t.frame == "azel":
-            az[i], el[i] = t.lon_deg, t.lat_deg
-    return az, el
 
 
 def _time_left_s(targets: list[Target], candidates: list[int], location: EarthLocation,

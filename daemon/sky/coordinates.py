@@ -285,15 +285,6 @@ def sun_azel(location: EarthLocation,
     return _float_or_array(aa.az.deg), _float_or_array(aa.alt.deg)
 
 
-def angular_distance_deg(az1: npt.ArrayLike, el1: npt.ArrayLike, az2: npt.ArrayLike,
-                         el2: npt.ArrayLike) -> np.ndarray:
-    """Great-circle distance (deg) between two horizontal directions (the haversine formula,
-    stable at small angles)."""
-    a1, e1, a2, e2 = (np.radians(np.asarray(x, dtype=float)) for x in (az1, el1, az2, el2))
-    h = np.sin((e2 - e1) / 2) ** 2 + np.cos(e1) * np.cos(e2) * np.sin((a2 - a1) / 2) ** 2
-    return np.degrees(2 * np.arcsin(np.sqrt(np.clip(h, 0.0, 1.0))))
-
-
 def azel_to_sky(az_deg: npt.ArrayLike, el_deg: npt.ArrayLike, location: EarthLocation,
                 time: Time) -> dict:
     """GLON, GLAT, RA, DEC (deg) seen at a fixed azimuth and elevation (a drift scan).
