@@ -114,6 +114,10 @@ flagged_fraction    number          fraction (0..1) of channels flagged
 blanked_fraction    number          fraction (0..1) of samples blanked as impulses
 nimpulse            integer         impulses blanked in the integration
 ncarrier            integer         carrier channels flagged in the integration
+pointing_error_deg  number | null   (optional) angle between the position the dish
+                                    reached (azimuth_deg, elevation_deg: reported by the
+                                    rotator or confirmed by the observer) and the
+                                    target's, deg; null when no driver reports one
 ==================  ==============  =========================================================
 
 Arrays, all of shape ``[nchan]`` (nchan >= 1); element i of every array belongs to channel i,
@@ -134,7 +138,11 @@ Topic "status": the daemon's state
 ----------------------------------
 ==================  ==============  =========================================================
 state               string          "observing", "paused", "idle", "reconnecting" (the
-                                    source was lost; reopening it) or "stopping"
+                                    source was lost; reopening it), "stopping", or under a
+                                    plan "slewing" (the dish moving to its next target;
+                                    nothing is kept) or "waiting" (for the observer to
+                                    point the dish, a target to rise, the rotator to answer
+                                    again, or ``resume`` after ``park``)
 source              string          the source of samples ("sim", "rtlsdr", "replay", ...)
 lo_hz               number          local-oscillator (tuner centre) frequency, Hz
 gain_db             number          tuner gain, dB
@@ -176,6 +184,15 @@ rfi                 object          ``{"impulses", "carrier_onsets", "sk_cells",
                                     topocentric sky frequencies of the first and last
                                     uncovered channel (one run at a band edge), Hz, or
                                     null when none is
+mount (optional)    object          the pointing driver: ``{"driver": "none" | "manual" |
+                                    "rotator", "state": "idle" | "slewing" | "tracking" |
+                                    "waiting" (for the observer) | "parking" | "parked" |
+                                    "fault", "az_deg", "el_deg" (where the dish is:
+                                    reported by the rotator or confirmed by the observer),
+                                    "target_az_deg", "target_el_deg" (where it should be),
+                                    "error_deg" (the angle between them), each number |
+                                    null, "detail": string (the rotator's endpoint, the
+                                    prompt to the observer, or the fault)}``
 ==================  ==============  =========================================================
 
 No arrays (in this version).
@@ -190,6 +207,21 @@ integration_total_s    number          its full length, s
 scan_elapsed_s         number          time observed in this scan, s
 scan_total_s           number | null   the scan's planned length, s; null: unbounded
 eta_s                  number | null   time to the scan's end, s; null: unknown
+plan (optional)        object | null   a running plan (null or absent: none):
+                                       ``{"name": string, "step": integer (1-based
+                                       visit being made or last made, 0 before the
+                                       first), "steps": integer (visits in the plan),
+                                       "object": string | null (the current target),
+                                       "phase": "slewing" | "waiting" | "observing" |
+                                       "deferred" (nothing is up yet) | "paused" |
+                                       "parked" | "finished", "visit_elapsed_s":
+                                       number, "visit_total_s": number | null (on-source
+                                       time of the visit, s), "eta_s": number | null
+                                       (time to the plan's end by its schedule, s),
+                                       "done": integer, "abandoned": integer (visits),
+                                       "upcoming": [{"object", "start_utc"}],
+                                       "skipped": [{"object", "reason"}]}``, each list
+                                       at most 20 long
 =====================  ==============  ====================================================
 
 No arrays (in this version).

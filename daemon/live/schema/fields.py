@@ -125,6 +125,9 @@ class State(StrEnum):
     IDLE = "idle"
     RECONNECTING = "reconnecting"
     STOPPING = "stopping"
+    SLEWING = "slewing"           # a plan: the dish moving onto its next target; nothing kept
+    WAITING = "waiting"           # a plan: for the observer to point, a target to rise, the
+                                  # rotator to answer again, or ``resume`` after ``park``
 
 
 _CHOICES = {
@@ -136,6 +139,20 @@ _CHOICES = {
 }
 
 _FRACTIONS = ("flagged_fraction", "blanked_fraction")
+
+#: ``status.mount`` (optional): the pointing driver and where the dish is.
+MOUNT_DRIVERS = ("none", "manual", "rotator")
+MOUNT_STATES = ("idle", "slewing", "tracking", "waiting", "parking", "parked", "fault")
+_MOUNT = {"driver": _STR, "state": _STR, "az_deg": _NUM_OR_NULL, "el_deg": _NUM_OR_NULL,
+          "target_az_deg": _NUM_OR_NULL, "target_el_deg": _NUM_OR_NULL,
+          "error_deg": _NUM_OR_NULL, "detail": _STR}
+#: ``progress.plan`` (optional, null when no plan runs): where a running plan is.
+PLAN_PHASES = ("slewing", "waiting", "observing", "deferred", "paused", "parked", "finished")
+_PLAN = {"name": _STR, "step": _INT, "steps": _INT, "object": _STR_OR_NULL, "phase": _STR,
+         "visit_elapsed_s": _NUM, "visit_total_s": _NUM_OR_NULL, "eta_s": _NUM_OR_NULL,
+         "done": _INT, "abandoned": _INT, "upcoming": ("array",), "skipped": ("array",)}
+#: Most entries of ``plan.upcoming`` and ``plan.skipped`` on the wire.
+PLAN_LIST_MAX = 20
 
 _POINTING = {"frame": _STR, "lon_deg": _NUM, "lat_deg": _NUM, "object": _STR}
 _POINTING_FRAMES = ("galactic", "radec", "azel")
@@ -341,5 +358,41 @@ def validate_header(topic: str, header: dict) -> None:
                 isinstance(f, (int, float)) and not isinstance(f, bool) for f in band)):
             raise WireError(f"header.rfi.uncovered_hz = {quoted_json(band)}: expected [first, last] "
                             "sky frequencies in Hz, or null")
+    if topic == "spectrum" and "pointing_error_deg" in header:
+        _check_type("header.pointing_error_deg", header["pointing_error_deg"], _NUM_OR_NULL)
+    if topic == "status" and "mount" in header:
+        _check_mount(header["mount"])
+    if topic == "progress" and header.get("plan") is not None:
+        _check_plan(header["plan"])
     if topic == "event" and ("\n" in header["text"] or "\r" in header["text"]):
         raise WireError(f"header.text = {quoted_json(header['text'])}: expected one line")
+
+
+def _check_choice(where: str, value: str, allowed: tuple[str, ...]) -> None:
+    if value not in allowed:
+        raise WireError(f"{where} = {quoted_json(value)}: allowed are {', '.join(allowed)}")
+
+
+def _check_mount(mount: Any) -> None:
+    """``status.mount``: the pointing driver's object."""
+    _check_type("header.mount", mount, ("object",))
+    _check_fields("header.mount", mount, _MOUNT)
+    _check_choice("header.mount.driver", mount["driver"], MOUNT_DRIVERS)
+    _check_choice("header.mount.state", mount["state"], MOUNT_STATES)
+
+
+def _check_plan(plan: Any) -> None:
+    """``progress.plan``: a running plan's object, with its lists of upcoming and skipped
+    visits (``{"object", "start_utc"}`` and ``{"object", "reason"}``)."""
+    _check_type("header.plan", plan, ("object",))
+    _check_fields("header.plan", plan, _PLAN)
+    _check_choice("header.plan.phase", plan["phase"], PLAN_PHASES)
+    for key, fields in (("upcoming", {"object": _STR, "start_utc": _STR}),
+                        ("skipped", {"object": _STR, "reason": _STR})):
+        items = plan[key]
+        if len(items) > PLAN_LIST_MAX:
+            raise WireError(f"header.plan.{key} lists {len(items)} visits: at most "
+                            f"{PLAN_LIST_MAX}")
+        for i, item in enumerate(items):
+            _check_type(f"header.plan.{key}[{i}]", item, ("object",))
+            _check_fields(f"header.plan.{key}[{i}]", item, fields)
