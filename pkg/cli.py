@@ -51,6 +51,8 @@ def build_parser() -> argparse.ArgumentParser:
     r.add_argument("--out", metavar="DIR", help="output folder (overrides [output] dir)")
     r.add_argument("--fast", action="store_true",
                    help="simulator and replay run as fast as the CPU allows")
+    r.add_argument("--plan", metavar="FILE", help="observe an observing plan (TOML), then park "
+                   "and exit; a plan interrupted by a restart resumes where it stopped")
     r.add_argument("--sample-rate", type=float, metavar="HZ", help="overrides [source] sample_rate")
     r.add_argument("--center-freq", type=float, metavar="HZ", help="overrides [source] center_freq")
     lo = sub.add_parser("loads", help="hot/cold-load (Y-factor) calibration, guided step by step")
@@ -158,12 +160,18 @@ def _cmd_run(args: argparse.Namespace) -> int:
         faulthandler.enable()
     except (OSError, ValueError):  # stderr is no file (run in-process under a capture)
         pass
-    daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration)
+    plan = None
+    if args.plan:
+        from spinflip.daemon.run.plan_file import load_plan
+        plan = load_plan(args.plan)          # a bad plan: one line, exit 2, nothing written
+    daemon = Daemon(cfg, fast=args.fast, duration_s=args.duration, plan=plan)
     daemon.install_signal_handlers()
     src = cfg["source"]["kind"]
-    daemon.log(f"spinflip: observing {daemon.pointing.object} with the {src} source"
-               f"{' (fast)' if args.fast else ''}; integrations of "
-               f"{daemon.blocks_per_integration * daemon.block_s:.1f} s")
+    what = (f"plan {plan.name!r} ({sum(t.repeat for t in plan.targets)} visits)"
+            if plan is not None else daemon.pointing.object)
+    daemon.log(f"spinflip: observing {what} with the {src} source"
+               f"{' (fast)' if args.fast else ''}; pointing driver {daemon.mount.driver}; "
+               f"integrations of {daemon.blocks_per_integration * daemon.block_s:.1f} s")
     try:
         result = daemon.run()
     finally:                  # after a failure too: say what was saved, nothing more

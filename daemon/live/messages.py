@@ -99,6 +99,8 @@ def spectrum_message(
         "flagged_fraction": float(np.mean(flagged)),
         "blanked_fraction": float(row.flag_time_fraction),
         "nimpulse": int(row.n_impulse), "ncarrier": int(row.n_carrier),
+        "pointing_error_deg": (float(row.pointing_error_deg)
+                               if np.isfinite(row.pointing_error_deg) else None),
         "time_utc": _iso_z(str(row.date_obs)),
         "station": "",
     }

@@ -55,6 +55,7 @@ class Row:
     sk_fraction: float = 0.0
     n_impulse: int = 0
     n_carrier: int = 0
+    pointing_error_deg: float = float("nan")   # reached position against the target; NaN: none reported
 
     @property
     def nbytes(self) -> int:

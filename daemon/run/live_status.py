@@ -136,6 +136,7 @@ class LiveStatus:
             "uptime_s": _time.monotonic() - loop.started_mono, "version": __version__,
             "scan": loop.scan_name,
             "pointing": loop.pointing.as_status(),
+            "mount": loop.mount.status().as_json(),
             "drops": dict(self.publisher.drops) if self.publisher is not None else {},
             "worker_failures": loop.supervisor.counts(),
             "rfi": dict(loop.interference.totals), "time_utc": schema.now_utc_iso(),
@@ -162,8 +163,15 @@ class LiveStatus:
         scan_elapsed = loop.total_blocks * loop.block_s
         total = loop.duration_s
         eta = None if total is None else max(0.0, total - scan_elapsed)
+        visit, runner = loop.visit, loop.runner
+        if visit is not None:            # a plan's visit: the scan is the visit
+            scan_elapsed = visit.blocks * loop.block_s
+            total = visit.target.seconds
+            eta = max(0.0, total - scan_elapsed)
+        plan = runner.as_progress() if runner is not None and runner.progress is not None \
+            else None
         header = {"scan": loop.scan_name, "integration": int(loop.row_index),
                   "integration_elapsed_s": elapsed, "integration_total_s": integ_total,
                   "scan_elapsed_s": scan_elapsed, "scan_total_s": total, "eta_s": eta,
-                  "time_utc": schema.now_utc_iso(), "station": ""}
+                  "plan": plan, "time_utc": schema.now_utc_iso(), "station": ""}
         return "progress", header, {}

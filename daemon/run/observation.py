@@ -72,14 +72,20 @@ from spinflip.daemon.dsp.spectrometer import FlagSettings, Integration, Spectrom
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.messages import RunningAverage, spectrum_message
 from spinflip.daemon.live.schema import State
+from spinflip.daemon.mount.factory import make_mount
+from spinflip.daemon.mount.base import Mount, MountCancelled, MountError
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.products.scan_average import scan_products
 from spinflip.daemon.rfi.interference import Interference
 from spinflip.daemon.run import sd_notify
 from spinflip.daemon.run.live_status import LiveStatus
+from spinflip.daemon.run.plan_file import MAX_SECONDS, Plan, Target, load_plan
+from spinflip.daemon.run.plan_progress import PlanProgress
+from spinflip.daemon.run.plan_runner import PlanRunner, Visit
 from spinflip.daemon.run.reader import END, BlockReader, SourceBack, SourceLost
 from spinflip.daemon.run.rows import RowMaker, emission_mask, scan_header
 from spinflip.daemon.run.scan_control import ScanControl
+from spinflip.daemon.run.scheduler import limits_from_config
 from spinflip.daemon.run.supervisor import Supervisor, WorkerFailed
 from spinflip.daemon.run.systemd_status import SystemdStatus
 from spinflip.daemon.sky import coordinates
@@ -91,6 +97,7 @@ from spinflip.daemon.storage.writer import ScanStore
 
 _QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
 _WATCHDOG_STALL_S = 10.0         # a main loop silent this long is hung: no more WATCHDOG=1
+_PARK_AT_EXIT_S = 10.0           # longest the daemon waits for the rotator to park as it stops
 
 
 @dataclass
@@ -116,11 +123,23 @@ def check_output_dir(path: Path) -> Path:
     return path
 
 
+def check_plan_for_mount(plan: Plan, driver: str) -> None:
+    """A fixed dish (driver "none") observes drift targets only: refuse others in one line."""
+    if driver != "none":
+        return
+    for t in plan.targets:
+        if t.frame != "azel":
+            raise ConfigError(
+                f"plan {plan.path}: {t.source} ({t.object}) is a {t.frame} position, but "
+                "pointing.driver = 'none' is a fixed dish: it observes drift targets (frame = "
+                "'azel', or a survey of kind 'drift'); use driver = 'manual' or 'rotator'")
+
+
 class Daemon:
     """One observation run; see :meth:`run`."""
 
     def __init__(self, cfg: dict, fast: bool = False, duration_s: float | None = None,
-                 log: Callable[[str], None] | None = None):
+                 log: Callable[[str], None] | None = None, plan: Plan | None = None):
         self.cfg = cfg
         self.fast = fast
         self.duration_s = duration_s
@@ -146,8 +165,21 @@ class Daemon:
             self.source.attach_noise_source(
                 CalControl(self.switch if self.switch.can_switch else None, event=self.event))
         self.pointing = Pointing(cfg, self.location, self.t_start)
+        self.mount = make_mount(cfg, prompt=lambda text: self.event("info", text))
+        self.visit: Visit | None = None            # the plan's visit being observed
+        self._visit_cards: dict[str, Any] = {}
+        self._next_firing_s = math.inf             # a target's own noise-source cadence
+        self.runner: PlanRunner | None = None
+        if (plan is not None or self.mount.driver != "none") and self.source.kind == "replay":
+            raise ConfigError("source.kind = 'replay' replays a capture whose pointing is fixed:"
+                              " plans and pointing drivers need the simulator or a dongle")
+        if plan is not None:
+            check_plan_for_mount(plan, self.mount.driver)
+            self.runner = self._runner_for(plan, exit_at_end=True)
+        elif self.mount.driver != "none":          # the dish goes to [pointing] first
+            self.runner = self._runner_for(self._pointing_plan(), exit_at_end=False)
         el = self.pointing.elevation_deg(self.t_start)
-        if el < cfg["pointing"]["min_elevation"]:
+        if self.runner is None and el < cfg["pointing"]["min_elevation"]:
             raise ConfigError(f"pointing {self.pointing.object}: elevation {el:.1f} deg at "
                               f"{self.t_start.isot[:19]} UTC is below pointing.min_elevation = "
                               f"{cfg['pointing']['min_elevation']:g} deg")
@@ -174,7 +206,7 @@ class Daemon:
             except (NoiseSwitchError, OSError) as exc:
                 raise ConfigError(f"noise source switch failed at start-up: {exc}") from None
         self.live.check()
-        self.state = State.OBSERVING
+        self.state = State.OBSERVING if self.runner is None else State.WAITING
         self.control = ScanControl(self)
         self.scan_name: str | None = None
         self.integ_blocks = 0           # blocks in the integration being made
@@ -262,7 +294,9 @@ class Daemon:
         self._put_row(integ)
 
     def _put_row(self, integ: Integration) -> None:
-        row, log = self.rows.make(integ, self.pointing)
+        runner = self.runner if self.visit is not None else None
+        row, log = self.rows.make(integ, self.pointing,
+                                  runner.reached_at if runner is not None else None)
         self.store.put(row)
         for rec in log:
             self.store.put(rec)
@@ -329,10 +363,12 @@ class Daemon:
         self.scan_name = name
         self.average.reset()
         self.row_index = 0
-        self.store.put(OpenScan(name, scan_header(
+        header = scan_header(
             self.cfg, self.source.schedule, self.source.kind, self.block_s, self.tsys_plan,
             self.switch.describe() if self.tsys_plan.kind == "noise_source" else "none",
-            self.pointing)))
+            self.pointing)
+        header.update(self._visit_cards)
+        self.store.put(OpenScan(name, header))
 
     def close_scan(self) -> None:
         """End the scan file (rows still waiting for a first T_sys go into it first)."""
@@ -350,6 +386,152 @@ class Daemon:
         """The writer opened the scan under ``name`` (with -1, -2 ... if the name was taken)."""
         if self.scan_name is not None:
             self.scan_name = name
+
+    # -- plans (called in the main loop, by the plan runner through control.call) --------------
+    def _runner_for(self, plan: Plan, exit_at_end: bool) -> PlanRunner:
+        progress = None
+        if plan.name:
+            progress = PlanProgress.open(self.out_dir, plan)
+            if progress.note:
+                self.events.append(("info", progress.note))
+                self.log(f"info: {progress.note}")
+        return PlanRunner(self, plan, self.mount, limits_from_config(self.cfg), progress,
+                          exit_at_end=exit_at_end)
+
+    def _pointing_plan(self) -> Plan:
+        """The configured pointing as a plan of one visit without a name (no progress kept)."""
+        p = self.pointing
+        seconds = self.duration_s if self.duration_s is not None else MAX_SECONDS
+        return Plan(name="", targets=(Target(object=p.object, frame=p.frame, lon_deg=p.lon,
+                                             lat_deg=p.lat, seconds=seconds,
+                                             drift=p.frame == "azel", source="[pointing]"),))
+
+    def load_plan(self, path: str) -> None:
+        """The ``plan`` command: read the plan and run it (PlanError: one line)."""
+        if self.runner is not None and not self.runner.finished.is_set():
+            raise ValueError(f"plan: plan {self.runner.plan.name!r} is running: abort it first")
+        plan = load_plan(path)
+        check_plan_for_mount(plan, self.mount.driver)
+        if self.scan_name is not None:
+            self.end_integration("a plan was loaded")
+            self.close_scan()
+            self.scan_name = None
+        self.state = State.WAITING
+        self.runner = self._runner_for(plan, exit_at_end=False)
+        self.runner.start()
+
+    def plan_wait(self, why: str, state: State = State.WAITING) -> None:
+        """Between visits: no scan open, nothing integrated (``why``: for the log)."""
+        if self.scan_name is not None and self.visit is None:
+            self.end_integration(why)
+            self.close_scan()
+            self.scan_name = None
+        if self.state != State.PAUSED:
+            self.state = state
+
+    def begin_visit(self, visit: Visit, plan: Plan, mount: Mount) -> None:
+        """The dish is on the visit's target: a scan opens and the on-source time counts."""
+        if self.scan_name is not None:
+            self.end_integration("new visit")
+            self.close_scan()
+        t = visit.target
+        self.pointing = visit.pointing
+        if mount.driver == "none":
+            self.source.set_pointing(visit.pointing)    # a fixed dish: the beam is the target
+        visit.goal_blocks = max(1, round(t.seconds / self.block_s))
+        cards: dict[str, Any] = {"OBJECT": t.object, "MOUNT": mount.driver,
+                                 "PNTLON": float(t.lon_deg), "PNTLAT": float(t.lat_deg),
+                                 "DRIFT": bool(t.drift)}
+        if mount.driver == "rotator":
+            cards["PNTTOL"] = float(mount.tolerance_deg)
+        if plan.name:
+            cards.update({"PLANNAME": plan.name, "PLANSTEP": visit.step,
+                          "PLANSIZE": visit.steps, "PLANVIST": visit.entry.visit})
+        self._visit_cards = cards
+        self.visit = visit
+        self.restart_stream()
+        self.open_scan(self.now())
+        visit.scan = self.scan_name
+        self.state = State.OBSERVING
+        self._next_firing_s = math.inf
+        if t.cal_interval_s is not None and self.source.can_fire_noise_source() \
+                and self.tsys_plan.kind == "noise_source":
+            self.source.request_firing()              # a fresh T_sys on each target
+            self._next_firing_s = float(self.now().unix) + t.cal_interval_s
+
+    def _count_visit(self, visit: Visit, block: Block) -> None:
+        """One more on-source block; the visit ends at its on-source time."""
+        visit.blocks += 1
+        t_end = block.t0_unix_s + block.duration_s
+        if t_end >= self._next_firing_s and visit.target.cal_interval_s is not None:
+            self.source.request_firing()
+            self._next_firing_s = t_end + visit.target.cal_interval_s
+        if visit.blocks >= visit.goal_blocks:
+            self.end_visit(visit, keep_partial=True, why="the visit's time is up")
+
+    def end_visit(self, visit: Visit, keep_partial: bool, why: str) -> None:
+        """Close the visit's scan: the integration in progress kept (a whole switching cycle)
+        or dropped (``keep_partial`` False: the dish may have moved)."""
+        if self.visit is not visit:
+            visit.ended.set()
+            return
+        if keep_partial:
+            self.end_integration(why)
+        elif self.integ_blocks:
+            self.spectrometer.take()
+            self.log(f"note: the integration in progress ({self.integ_blocks * self.block_s:.1f}"
+                     f" s) was dropped ({why}): the dish may not have been on target")
+            self.integ_blocks = 0
+        visit.scan = self.scan_name
+        self.close_scan()
+        self.scan_name = None
+        self.visit = None
+        self._visit_cards = {}
+        self._next_firing_s = math.inf
+        if self.state != State.STOPPING:
+            self.state = State.WAITING
+        visit.ended.set()
+
+    def hold_visit(self, on: bool) -> None:
+        """Stop counting while the observer points the dish again (on), or go on (off)."""
+        if self.visit is None:
+            return
+        if on:
+            self.end_integration("pointing again")
+            self.state = State.WAITING
+        else:
+            self.restart_stream()
+            self.state = State.OBSERVING
+
+    def plan_ended(self, runner: PlanRunner) -> None:
+        """The plan is over: the daemon idles (or stops, for a plan given at the start)."""
+        if self.scan_name is not None and self.visit is None:
+            self.close_scan()
+            self.scan_name = None
+        if self.state != State.STOPPING:
+            self.state = State.IDLE
+
+    def park_now(self) -> None:
+        """The ``park`` command with no plan running: park in a thread of its own."""
+        threading.Thread(target=self.supervisor.guard("park", self._park), name="park",
+                         daemon=True).start()
+
+    def _park(self) -> None:
+        try:
+            self.mount.park()
+        except (MountError, MountCancelled) as exc:
+            self.event("error", f"parking failed: {exc}")
+
+    def _park_at_exit(self) -> None:
+        """A rotator goes to its park position when the daemon stops (waited for up to
+        ``_PARK_AT_EXIT_S``; it goes on moving by itself after that)."""
+        if self.mount.driver != "rotator":
+            self.mount.close()
+            return
+        parker = threading.Thread(target=self._park, name="park", daemon=True)
+        parker.start()
+        parker.join(_PARK_AT_EXIT_S)
+        self.mount.close()
 
     # -- the run ---------------------------------------------------------------------------------
     def run(self) -> RunResult:
@@ -372,7 +554,10 @@ class Daemon:
         self.supervisor.install_excepthook()
         self.reader.start()
         self.store.start()
-        self.open_scan(self.t_start)
+        if self.runner is None:
+            self.open_scan(self.t_start)
+        else:
+            self.runner.start()
         max_blocks = None if self.duration_s is None else max(
             1, round(self.duration_s / self.block_s))
         self.heartbeat.beat()
@@ -419,6 +604,8 @@ class Daemon:
             if self.integ_blocks >= self.blocks_per_integration:
                 self.integ_blocks = 0
                 self._finish(self.spectrometer.take(), self.blocks_per_integration * self.block_s)
+            if self.visit is not None:
+                self._count_visit(self.visit, block)
             if max_blocks is not None and self.total_blocks >= max_blocks:
                 self.end_integration("planned end")
                 return
@@ -428,6 +615,8 @@ class Daemon:
         stopped_by_signal = self.stop_event.is_set() and self.supervisor.fatal is None
         self.stop_event.set()
         self.state = State.STOPPING
+        if self.runner is not None:
+            self.runner.stop()
         self.notifier.stopping("stopping: writing the scan")
         try:
             if self.integ_blocks:
@@ -437,6 +626,7 @@ class Daemon:
             self._flush_pending(give_up=True)   # no measurement ever came: kept, fully flagged
             self.store.finish()
             self.systemd.stop()
+            self._park_at_exit()
             self.reader.join(timeout=5)
             self.source.close()
             self.switch.close()

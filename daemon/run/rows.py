@@ -10,6 +10,7 @@ A row is never silently on a wrong scale: with no trustworthy T_sys, or with the
 
 from __future__ import annotations
 
+import dataclasses
 from collections.abc import Callable
 
 import numpy as np
@@ -21,6 +22,7 @@ from spinflip.daemon.calibration.tsys_plan import TsysPlan, TsysTracker
 from spinflip.daemon.dsp.channel_grid import ChannelGrid
 from spinflip.daemon.dsp.spectrometer import Integration
 from spinflip.daemon.dsp.switching import Schedule
+from spinflip.daemon.mount.base import AzEl, separation_deg
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.rfi.interference import Interference, RfiRecord
 from spinflip.daemon.rfi.masks import dc_channels
@@ -69,8 +71,15 @@ class RowMaker:
         self.interference = interference
         self.warn_once = warn_once
 
-    def make(self, integ: Integration, pointing: Pointing) -> tuple[Row, list[RfiRecord]]:
-        """The row of a finished integration, and the interference log records that go with it."""
+    def make(self, integ: Integration, pointing: Pointing,
+             reached: Callable[[float], AzEl | None] | None = None
+             ) -> tuple[Row, list[RfiRecord]]:
+        """The row of a finished integration, and the interference log records that go with it.
+
+        ``reached(t_unix)``: where a pointing driver said the dish was at that time (None: no
+        report); its az/el replace the target's in the row, and PNTERR is the angle between
+        the two (:func:`spinflip.daemon.mount.base.separation_deg`). Galactic and equatorial
+        coordinates stay the target's."""
         cfg, sch, grid = self.cfg, self.schedule, self.grid
         nchan = grid.nchan
         switched = sch.mode == "frequency"
@@ -85,6 +94,11 @@ class RowMaker:
                          False, cfg["calibration"]["main_beam_efficiency"], bad=bad)
         coord = pointing(t_mid)
         pos = coordinates.sky_position(coord, self.location, t_mid)
+        dish = reached(float(t_mid.unix)) if reached is not None else None
+        error_deg = float("nan")
+        if dish is not None:
+            error_deg = separation_deg(dish, AzEl(pos.az_deg, pos.el_deg))
+            pos = dataclasses.replace(pos, az_deg=dish.az_deg, el_deg=dish.el_deg)
         vframe = float(coordinates.vframe_lsrk_m_s(coord, self.location, t_mid))  # one time
         flagged = spec.flagged
         if spec.unit == "K" and not trusted:
@@ -131,6 +145,7 @@ class RowMaker:
             uncovered_fraction=float(np.mean(~spec.covered)),
             sk_fraction=fl.sk_cells / (fl.blocks * nchan) if fl.blocks else 0.0,
             n_impulse=int(fl.impulses), n_carrier=int(verdict.n_carrier),
+            pointing_error_deg=error_deg,
         )
         return row, verdict.log
 

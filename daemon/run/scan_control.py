@@ -1,5 +1,5 @@
 """Control commands (pause, resume, stop, start, new_scan, point, set_integration, annotate,
-calibrate): submitted from the control socket's thread, applied by the main loop between
+calibrate; for plans: plan, skip, abort, park, pointed): submitted from the control socket's thread, applied by the main loop between
 blocks (:meth:`ScanControl.apply_pending`), so that no command races the data flow.
 
 A command refused (wrong state, pointing too low) answers with one line and changes nothing; a
@@ -10,15 +10,19 @@ from __future__ import annotations
 
 import queue
 import threading
+import time as _time
+from collections.abc import Callable
 from typing import TYPE_CHECKING, Any
 
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.live.schema import State
+from spinflip.daemon.mount.base import AzEl
 from spinflip.daemon.sky.pointing import Pointing
 from spinflip.daemon.storage.items import Note
 
 if TYPE_CHECKING:
     from spinflip.daemon.run.observation import Daemon
+    from spinflip.daemon.run.plan_runner import PlanRunner
 
 
 def as_words(args: dict) -> str:
@@ -46,6 +50,20 @@ class ScanControl:
             raise CommandError(box["error"])
         return box["result"]
 
+    def call(self, fn: Callable[[], Any], timeout_s: float = 30.0) -> Any:
+        """Run ``fn`` in the main loop between blocks and wait for its result (from another
+        thread, e.g. the plan runner). Returns None at once when the daemon is stopping (the
+        main loop no longer applies anything); an exception of ``fn`` is raised here."""
+        box: dict[str, Any] = {"done": threading.Event()}
+        self.commands.put((fn, {}, box))
+        deadline = _time.monotonic() + timeout_s
+        while not box["done"].wait(0.1):
+            if self.loop.stop_event.is_set() or _time.monotonic() > deadline:
+                return None
+        if "raised" in box:
+            raise box["raised"]
+        return box.get("result")
+
     def apply_pending(self) -> None:
         """Apply every command waiting (called by the main loop)."""
         loop = self.loop
@@ -54,6 +72,13 @@ class ScanControl:
                 cmd, args, box = self.commands.get_nowait()
             except queue.Empty:
                 return
+            if callable(cmd):                 # a call from another thread of the daemon
+                try:
+                    box["result"] = cmd()
+                except Exception as exc:
+                    box["raised"] = exc
+                box["done"].set()
+                continue
             try:
                 box["result"] = self._apply(cmd, args)
                 if cmd != "annotate":
@@ -68,6 +93,18 @@ class ScanControl:
     def _apply(self, cmd: str, args: dict) -> dict:
         loop = self.loop
         state = loop.state
+        runner = loop.runner if loop.runner is not None and not loop.runner.finished.is_set() \
+            else None
+        if cmd in ("start", "stop", "new_scan", "point") and runner is not None:
+            what = f"plan {runner.plan.name!r}" if runner.progress is not None else \
+                f"pointing.driver = '{loop.mount.driver}'"
+            raise ValueError(f"{cmd}: {what} is running: skip or abort it first (spinflip ctl "
+                             "abort), or load a plan (spinflip ctl plan path=FILE)")
+        if cmd in ("skip", "abort", "park", "pointed", "plan"):
+            return self._plan_command(cmd, args, runner)
+        if cmd == "resume" and runner is not None and runner.phase == "parked":
+            runner.resume()
+            return {"state": str(loop.state), "scan": loop.scan_name}
         if cmd == "pause":
             if state != State.OBSERVING:
                 raise ValueError(f"pause: the daemon is {state}, not observing")
@@ -132,3 +169,25 @@ class ScanControl:
         loop.restart_stream()
         if loop.state != State.IDLE:
             loop.open_scan(t)
+
+    def _plan_command(self, cmd: str, args: dict, runner: PlanRunner | None) -> dict:
+        """plan, skip, abort, park, pointed."""
+        loop = self.loop
+        if cmd == "plan":
+            loop.load_plan(str(args["path"]))
+        elif cmd == "pointed":
+            if loop.mount.driver != "manual":
+                raise ValueError(f"pointed: pointing.driver = '{loop.mount.driver}': only a "
+                                 "dish pointed by hand (driver = 'manual') is confirmed")
+            az, el = args.get("az_deg"), args.get("el_deg")
+            if (az is None) != (el is None):
+                raise ValueError("pointed: give both az_deg and el_deg, or neither (the dish "
+                                 "is where it was asked to point)")
+            loop.mount.confirm(None if az is None else AzEl(float(az), float(el)))
+        elif runner is None:
+            if cmd != "park":
+                raise ValueError(f"{cmd}: no plan is running")
+            loop.park_now()
+        else:
+            runner.command(cmd)
+        return {"state": str(loop.state), "scan": loop.scan_name}

@@ -9,6 +9,7 @@ end:
   is az/el pairs, linearly interpolated in azimuth, wrapping at 360 deg);
 * at least ``sun_avoid_deg`` from the Sun (the strongest source in the sky at 1420 MHz; 15 deg is
   common practice);
+* within the rotator's limits (``rotator.az_range``, ``el_range``) when there is one;
 * ending before the plan's end (or ``start + max_hours``).
 
 Among the visits that pass, ``order = "scheduler"`` takes the one that sets soonest (the
@@ -25,6 +26,7 @@ Positions come from :mod:`spinflip.daemon.sky.coordinates` (astropy, no refracti
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -46,14 +48,34 @@ class Limits:
     settle_s: float = 5.0
     step_s: float = 300.0                            # how far the clock moves when all are down
     max_hours: float = 24.0                          # the window when the plan gives no end
+    az_range: tuple[float, float] | None = None      # the rotator's limits (None: none)
+    el_range: tuple[float, float] | None = None
 
 
 def limits_from_config(cfg: dict) -> Limits:
     """The :class:`Limits` of the ``[pointing]`` section."""
     p = cfg["pointing"]
+    rot = cfg["rotator"] if p["driver"] == "rotator" else None
     return Limits(min_elevation_deg=p["min_elevation"], sun_avoid_deg=p["sun_avoid_deg"],
                   horizon=tuple((float(a), float(e)) for a, e in p["horizon"]),
-                  slew_deg_s=p["slew_deg_s"], settle_s=p["settle_s"])
+                  slew_deg_s=p["slew_deg_s"], settle_s=p["settle_s"],
+                  az_range=tuple(rot["az_range"]) if rot else None,   # type: ignore[arg-type]
+                  el_range=tuple(rot["el_range"]) if rot else None)   # type: ignore[arg-type]
+
+
+def outside_mount(limits: Limits, az_deg: np.ndarray, el_deg: np.ndarray) -> np.ndarray:
+    """bool: positions the rotator cannot reach (azimuth tried as az, az - 360 and az + 360)."""
+    az = np.asarray(az_deg, dtype=float)
+    out = np.zeros(az.shape, dtype=bool)
+    if limits.az_range is not None:
+        lo, hi = limits.az_range
+        a = az % 360.0
+        out |= ~(((a >= lo) & (a <= hi)) | ((a - 360 >= lo) & (a - 360 <= hi))
+                 | ((a + 360 >= lo) & (a + 360 <= hi)))
+    if limits.el_range is not None:
+        lo, hi = limits.el_range
+        out |= (np.asarray(el_deg) < lo) | (np.asarray(el_deg) > hi)
+    return out
 
 
 @dataclass(frozen=True)
@@ -83,6 +105,10 @@ class Entry:
                 "az_end_deg": _none(self.az_end_deg), "el_end_deg": _none(self.el_end_deg),
                 "slew_s": self.slew_s, "sun_distance_deg": _none(self.sun_distance_deg),
                 "status": self.status, "reason": self.reason}
+
+
+def _range(r: tuple[float, float] | None) -> str:
+    return "any" if r is None else f"{r[0]:g}..{r[1]:g}"
 
 
 def _none(x: float) -> float | None:
@@ -130,7 +156,8 @@ def azel(targets: list[Target], location: EarthLocation, times: Time
 
 
 def schedule(plan: Plan, location: EarthLocation, start: Time, limits: Limits,
-             park: tuple[float, float] | None = None) -> list[Entry]:
+             park: tuple[float, float] | None = None,
+             done: Callable[[Target, int], bool] | None = None) -> list[Entry]:
     """The plan's visits in the order they would be observed, then the skipped ones.
 
     Parameters
@@ -140,13 +167,16 @@ def schedule(plan: Plan, location: EarthLocation, start: Time, limits: Limits,
     start : UTC time the schedule starts
     limits : elevation, Sun, horizon and mount limits
     park : (az, el) where the dish is at the start (None: the first slew is not counted)
+    done : callable(target, visit) -> True for a visit that has ended already (a plan resumed
+        or under way): left out
     """
     t0 = start
     if plan.start is not None and Time(plan.start, scale="utc") > t0:
         t0 = Time(plan.start, scale="utc")
     t_end = (Time(plan.end, scale="utc") if plan.end is not None
              else t0 + TimeDelta(limits.max_hours * 3600.0, format="sec"))
-    todo = [_Visit(t, k) for t in plan.targets for k in range(1, t.repeat + 1)]
+    todo = [_Visit(t, k) for t in plan.targets for k in range(1, t.repeat + 1)
+            if done is None or not done(t, k)]
     done: list[Entry] = []
     now, here = t0, park
     while todo and now < t_end:
@@ -192,15 +222,20 @@ def _pick(todo: list[_Visit], location: EarthLocation, now: Time,
                                         np.radians(np.reshape(sel, offs.shape))))
     mask = horizon_el_deg(limits.horizon, az)
     low = el < limits.min_elevation_deg
+    unreachable = outside_mount(limits, az, el)
     hidden = el < mask
     sunny = sun < limits.sun_avoid_deg
     late = (now + TimeDelta(slew + dur, format="sec")) > t_end
-    ok = ~(low | hidden | sunny).any(axis=1) & ~late
+    ok = ~(low | hidden | sunny | unreachable).any(axis=1) & ~late
     why_low = [bool(row.any()) for row in low]
     why_hidden = [bool(row.any()) for row in hidden]
     why_sun = [bool(row.any()) for row in sunny]
-    for v, lo, hi, su in zip(todo, why_low, why_hidden, why_sun, strict=True):
-        if lo:
+    why_mount = [bool(row.any()) for row in unreachable]
+    for v, lo, hi, su, mo in zip(todo, why_low, why_hidden, why_sun, why_mount, strict=True):
+        if mo and not lo:
+            v.reasons.add(f"outside the rotator's limits (az {_range(limits.az_range)}, el "
+                          f"{_range(limits.el_range)} deg) whenever its turn came")
+        elif lo:
             v.reasons.add(f"below the elevation limit of {limits.min_elevation_deg:g} deg "
                           "whenever its turn came")
         elif hi:

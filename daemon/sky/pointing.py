@@ -23,15 +23,22 @@ class Pointing:
     position at any time; ``frame = "auto"`` picks a Galactic-plane longitude above the
     horizon at ``t_start`` (:func:`spinflip.daemon.sky.coordinates.best_plane_longitude`)."""
 
-    def __init__(self, cfg: dict, location: EarthLocation, t_start: Time):
+    def __init__(self, cfg: dict, location: EarthLocation, t_start: Time | None):
         p = cfg["pointing"]
         self.frame, self.lon, self.lat = p["frame"], p["lon"], p["lat"]
         if self.frame == "auto":
+            assert t_start is not None, "frame 'auto' picks a longitude for a time"
             self.frame, self.lon, self.lat = "galactic", coordinates.best_plane_longitude(
                 location, t_start, p["min_elevation"]), 0.0
         self.location = location
         self.object = p["object"] or object_name(self.frame, self.lon, self.lat)
 
+    @classmethod
+    def at(cls, frame: str, lon_deg: float, lat_deg: float, location: EarthLocation,
+           object_: str = "") -> Pointing:
+        """A fixed position in ``frame`` (galactic, radec or azel; no "auto")."""
+        return cls({"pointing": {"frame": frame, "lon": float(lon_deg), "lat": float(lat_deg),
+                                 "object": object_, "min_elevation": 0.0}}, location, None)
 
     def __call__(self, t: Time) -> SkyCoord:
         return coordinates.pointing_coord(self.frame, self.lon, self.lat, self.location, t)

@@ -9,7 +9,11 @@ guessed from its attributes:
 * a sky that depends on the pointing (the simulator): :meth:`Source.set_pointing` (safe from any
   thread; a source that does not need it ignores it);
 * reopening after a :class:`SourceError` (the dongle unplugged): :meth:`Source.can_reopen`,
-  :meth:`Source.reopen`.
+  :meth:`Source.reopen`;
+* a clock of its own (the simulator under ``--fast``): :meth:`Source.set_real_time` holds it to
+  the wall clock while a plan waits on the mount, :meth:`Source.skip` jumps it ahead while a
+  plan waits for a target to rise; a source in real time (the dongle) ignores the one and
+  refuses the other (:class:`WallClock`).
 
 ``read`` returns None when a finite source ends. Choose one with :func:`make_source`; all three
 (sim, rtlsdr, replay) look the same to the rest.
@@ -68,6 +72,26 @@ class Source(Protocol):
     def reopen(self) -> None:
         """Open the source again after a :class:`SourceError` (SourceError if still absent)."""
         ...
+
+    def set_real_time(self, on: bool) -> None:
+        """Pace the samples to the wall clock (True) or as the source was started (False)."""
+        ...
+
+    def skip(self, seconds: float) -> bool:
+        """Move the source's time ahead by ``seconds`` without samples in between; False when
+        it runs on the wall clock and cannot."""
+        ...
+
+
+class WallClock:
+    """The clock capabilities of a source whose time is the wall clock's (the dongle, a
+    replayed capture): always real time, never skipped."""
+
+    def set_real_time(self, on: bool) -> None:
+        pass
+
+    def skip(self, seconds: float) -> bool:
+        return False
 
 
 class FiresNoiseSource:

@@ -66,7 +66,7 @@ import numpy as np
 from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.switching import Schedule
-from spinflip.daemon.sources.base import FiresNoiseSource, SourceError
+from spinflip.daemon.sources.base import FiresNoiseSource, SourceError, WallClock
 from spinflip.daemon.sources.sample_clock import SampleClock
 
 if TYPE_CHECKING:
@@ -146,7 +146,7 @@ def _describe_rc(rc: int) -> str:
     return f"librtlsdr error {rc}" + (f" {name}" if name else "")
 
 
-class RtlSdrSource(FiresNoiseSource):
+class RtlSdrSource(FiresNoiseSource, WallClock):
     """Blocks from an RTL-SDR dongle, read asynchronously into a ring of transfers.
 
     Parameters

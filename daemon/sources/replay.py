@@ -22,13 +22,13 @@ from spinflip.daemon.calibration.noise_source import CalControl
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.dsp.block import SIG, Block
 from spinflip.daemon.dsp.switching import Schedule
-from spinflip.daemon.sources.base import SourceError
+from spinflip.daemon.sources.base import SourceError, WallClock
 
 if TYPE_CHECKING:
     from astropy.coordinates import SkyCoord
 
 
-class ReplaySource:
+class ReplaySource(WallClock):
     kind = "replay"
 
     def __init__(self, cfg: dict, fast: bool = False):

@@ -21,6 +21,13 @@ Signal model, per block of samples at LO frequency f_LO (baseband frequency f, s
   DC offset (the spike at the LO), optional interference (a steady carrier, an intermittent
   carrier, impulsive bursts), garbage for a few ms after each retune, then 8-bit quantisation
   with clipping at the rails; the input level follows the tuner gain setting.
+
+Time: simulated time is ``sim.start`` plus the samples made so far; in real time the samples
+are paced to the wall clock, under ``--fast`` they come as fast as they can be made. A plan
+holds a fast simulator to the wall clock while it waits on the mount
+(:meth:`SimSource.set_real_time`: a slew or the observer takes as long as it takes) and jumps it
+ahead while it waits for a target to rise (:meth:`SimSource.skip`). The beam points wherever
+:meth:`SimSource.set_pointing` last said (a plan passes where the dish really points).
 """
 
 from __future__ import annotations
@@ -150,6 +157,11 @@ class SimSource(FiresNoiseSource):
         self.load: str | None = None   # None (the sky), "hot" or "cold"
         self._pointing_lock = threading.Lock()
         self.pointing: Callable[[Time], SkyCoord] | None = None   # set_pointing(): callable(time) -> SkyCoord
+        self._pointing_version = 0   # a new pointing is a new sky
+        self._pace_lock = threading.Lock()
+        self._paced = not fast       # held to the wall clock
+        self._anchor: tuple[float, float] | None = None   # (monotonic s, simulated s) of pacing
+        self._skip_s = 0.0           # simulated time skipped (a plan waiting under --fast)
         self._sky_cache: dict[tuple, tuple[np.ndarray, dict]] = {}
         self._tones: dict = {}    # (baseband Hz, samples) -> exp(2 pi i f k / fs), for carriers
         self._index = 0
@@ -159,7 +171,8 @@ class SimSource(FiresNoiseSource):
     # -- the sky ---------------------------------------------------------------------------
     def _sky_psd(self, t: Time, lo_hz: float) -> tuple[np.ndarray, dict]:
         """(Antenna + receiver temperature in K over the chunk's baseband grid, position)."""
-        bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz, self.load)
+        bucket = (round((t - self.t_start).sec / _SKY_REFRESH_S), lo_hz, self.load,
+                  self._pointing_version)
         if bucket in self._sky_cache:
             return self._sky_cache[bucket]
         sim = self.cfg["sim"]
@@ -245,6 +258,7 @@ class SimSource(FiresNoiseSource):
     # -- the Source interface --------------------------------------------------------------
     def open(self) -> None:
         self._wall0 = _time.monotonic()
+        self._anchor = (self._wall0, 0.0) if self._paced else None
         # live ("now", real time): stamped like a dongle's samples, from the monotonic clock
         # anchored to the system clock, whose steps are noticed (sample_clock); a set start
         # date is simulated time, which no clock step touches
@@ -260,6 +274,25 @@ class SimSource(FiresNoiseSource):
     def set_pointing(self, pointing: Callable[[Time], SkyCoord] | None) -> None:
         with self._pointing_lock:
             self.pointing = pointing
+            self._pointing_version += 1
+
+    def set_real_time(self, on: bool) -> None:
+        """Pace to the wall clock from the next block (True), or back to how the simulator was
+        started (False: as fast as it can under ``--fast``)."""
+        with self._pace_lock:
+            on = bool(on) or not self.fast
+            if on and not self._paced:
+                self._anchor = None      # anchored at the next block
+            self._paced = on
+
+    def skip(self, seconds: float) -> bool:
+        """Jump simulated time ahead by ``seconds`` from the next block (``--fast`` only)."""
+        if not self.fast or seconds <= 0:
+            return False
+        with self._pace_lock:
+            self._skip_s += float(seconds)
+            self._anchor = None
+        return True
 
     def can_reopen(self) -> bool:
         return False
@@ -274,7 +307,12 @@ class SimSource(FiresNoiseSource):
         sch = self.schedule
         phase = sch.phase_of_block(i)
         lo = sch.lo_of(phase)
-        t_rel = i * self.block_samples / self.fs
+        with self._pace_lock:
+            t_rel = self._skip_s + i * self.block_samples / self.fs
+            paced = self._paced
+            if paced and self._anchor is None:
+                self._anchor = (_time.monotonic(), t_rel)
+            anchor = self._anchor
         hop = sch.is_hop(i)
         if self._fire.is_set():
             self._fire.clear()
@@ -284,9 +322,10 @@ class SimSource(FiresNoiseSource):
         if cal_state is not None:
             self.diode_on = cal_state   # a failed switch leaves the diode as it was
         x = self._samples(t_rel, lo, hop)
-        if not self.fast:
-            assert self._wall0 is not None, "read() after open()"
-            delay = self._wall0 + t_rel + self.block_samples / self.fs - _time.monotonic()
+        if paced:
+            assert anchor is not None, "set above"
+            delay = anchor[0] + (t_rel - anchor[1]) + self.block_samples / self.fs \
+                - _time.monotonic()
             if delay > 0:
                 _time.sleep(delay)
         t0, step = float(self.t_start.unix) + t_rel, 0.0

@@ -66,7 +66,7 @@ DATA_UNITS = ("K", "count")
 _SUFFIX_UNITS = {"_HZ": "Hz", "_K": "K", "_S": "s", "_DEG": "deg", "_MS": "m/s"}
 #: Units of the extra columns the daemon writes (FITS keyword names cannot carry a suffix).
 EXTRA_UNITS = {"RA": "deg", "DEC": "deg", "CRVAL1A": "m/s", "CDELT1A": "m/s", "TSYSAGE": "s",
-               "CALTIME": "s", "UNKNTIME": "s"}
+               "CALTIME": "s", "UNKNTIME": "s", "PNTERR": "deg"}
 #: Header keywords the FITS table structure owns (indexed ones: NAXISn, TTYPEn, ...).
 _STRUCTURAL_EXACT = {"SIMPLE", "XTENSION", "BITPIX", "PCOUNT", "GCOUNT", "TFIELDS", "EXTEND",
                      "THEAP", "END", "COMMENT", "HISTORY", "CONTINUE"}

@@ -47,3 +47,26 @@ def try_lock(fd: int) -> bool:
     except BlockingIOError:
         return False
     return True
+
+
+def replace_atomically(path: Path, data: bytes) -> None:
+    """Put ``data`` at ``path`` whole or not at all, surviving a power cut: write
+    ``<path>.tmp``, fsync it, ``os.replace`` it onto ``path`` (atomic within one file system)
+    and fsync the folder (common practice on POSIX). A failed write leaves the old file."""
+    path = Path(path)
+    tmp = path.with_name(path.name + ".tmp")
+    try:
+        fd = os.open(tmp, os.O_WRONLY | os.O_CREAT | os.O_TRUNC, 0o644)
+        try:
+            write_all(fd, data)
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+        os.replace(tmp, path)
+    except BaseException:
+        try:
+            tmp.unlink()
+        except OSError:
+            pass
+        raise
+    fsync_dir(path.parent)

@@ -40,6 +40,7 @@ def row_columns(row: Row) -> dict:
         "UNCOVFR": row.uncovered_fraction,
         "SKFRAC": row.sk_fraction,
         "NIMPULSE": int(row.n_impulse), "NCARRIER": int(row.n_carrier),
+        "PNTERR": row.pointing_error_deg,
     })
     return out
 

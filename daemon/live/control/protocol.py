@@ -162,6 +162,20 @@ COMMANDS: Mapping[str, CommandSpec] = MappingProxyType({
     "annotate": CommandSpec("add a note to the log and the event stream", MappingProxyType({
         "text": ArgSpec("text", "the note, one line", min_chars=1, max_chars=500),
     })),
+    "plan": CommandSpec("load an observing plan file and run it", MappingProxyType({
+        "path": ArgSpec("text", "the plan's TOML file, as the daemon's host sees it",
+                        min_chars=1, max_chars=4096),
+    })),
+    "skip": CommandSpec("end the plan's current visit and go on with the next"),
+    "abort": CommandSpec("end the plan: the current visit closed, the dish parked"),
+    "park": CommandSpec("park the dish; a plan waits for resume"),
+    "pointed": CommandSpec("the dish is pointed where the daemon asked (manual driver); "
+                           "az_deg, el_deg: where it really points", MappingProxyType({
+        "az_deg": ArgSpec("number", "azimuth reached, deg", required=False, lo=-360.0,
+                          hi=720.0),
+        "el_deg": ArgSpec("number", "elevation reached, deg", required=False, lo=-5.0,
+                          hi=90.0),
+    })),
 })
 
 
