@@ -9,7 +9,10 @@ Layout of :func:`screen` (W x H cells, at least 80 x 24)::
 
     top bar: spinflip, station/object, daemon state, scan, link age
     [STALE banner, 3 lines, or the "waiting for data" line, when so]
+    [POINT THE DISH prompt of the manual driver, when it waits for the observer]
     progress: integration bar, scan bar (percent, elapsed/total, ETA)
+    [mount: driver, state, az/el reached and target, error, detail; with a driver]
+    [plan: name, step, ETA, counts; now: target, phase, visit bar; next | skipped]
     +-------------------------------------------+----------------------+
     | spectrum: legend line, then the plot      | link (wide screens)  |
     | (latest integration and running average,  | Tsys now + history   |
@@ -28,7 +31,8 @@ Notes
 Colour comes only from styles; every piece of information is also in the characters, so a
 console with ``no_color=True`` or ``color_system=None`` loses nothing: flagged channels and
 flagged waterfall cells are drawn as 'x', waterfall levels as shades of block characters,
-warnings as words ("STALE", "WARN", "ERROR"). The average and the latest integration share
+warnings as words ("STALE", "WARN", "ERROR"), states as words ("SLEWING", "WAITING",
+"FAULT"). The plan, mount and prompt panels are :mod:`spinflip.tui.plan_panel`. The average and the latest integration share
 the plot; without colour they differ by weight (average bold, integration dim) and both are
 named in the legend.
 
@@ -70,6 +74,7 @@ from .cells import (
     rule,
     text_lines,
 )
+from .plan_panel import mount_height, mount_panel, plan_height, plan_panel, prompt_panel
 from .state import ViewState
 
 #: Waterfall shades from low to high, and the mark of a flagged cell.
@@ -93,6 +98,11 @@ KEYS = (("g", "start"), ("x", "stop"), ("c", "calibrate"), ("n", "new scan"),
         ("a", "axis"), ("q", "quit"))
 KEYS_SHORT = (("g", "start"), ("x", "stop"), ("c", "cal"), ("n", "scan"), ("a", "axis"),
               ("q", "quit"))
+#: The key of the manual driver (shown only when the daemon has one), before "q".
+KEY_POINTED = ("p", "pointed")
+
+#: Style of the daemon's state in the top bar (the state is written out in capitals too).
+STATE_STYLE = {"slewing": "bold cyan", "waiting": S_WAIT, "reconnecting": S_WAIT}
 
 
 # ----------------------------------------------------------------------------------------------
@@ -119,6 +129,28 @@ def _target(state: ViewState) -> str:
     return ": ".join(p for p in (station, obj) if p)
 
 
+def state_words(state: ViewState) -> str:
+    """The daemon's state for people: "OBSERVING", ...; under a plan "SLEWING to OBJECT",
+    and "WAITING" with what for when the plan or the driver says ("WAITING for you", "for
+    a target to rise", "parked", "for the rotator")."""
+    what = str((state.status or {}).get("state", "?"))
+    words = what.upper()
+    plan = state.plan or {}
+    mount = state.mount or {}
+    if what == "slewing" and plan.get("object"):
+        words += f" to {plan['object']}"
+    elif what == "waiting":
+        if state.awaits_observer():
+            words += " for you"
+        elif plan.get("phase") == "deferred":
+            words += ": nothing up yet"
+        elif plan.get("phase") == "parked" or mount.get("state") == "parked":
+            words += ": parked"
+        elif mount.get("state") == "fault":
+            words += " for the rotator"
+    return words
+
+
 # ----------------------------------------------------------------------------------------------
 # top bar, link, help
 # ----------------------------------------------------------------------------------------------
@@ -143,7 +175,8 @@ def top_bar(state: ViewState, width: int) -> Text:
         left.append(target, style=S_VALUE)
     if state.status:
         left.append("  ")
-        left.append(state.status.get("state", "?").upper(), style="bold")
+        left.append(state_words(state),
+                    style=STATE_STYLE.get(state.status.get("state", ""), "bold"))
     scan = (state.progress or {}).get("scan") or (state.status or {}).get("scan")
     if scan:
         left.append("  scan ", style=S_LABEL)
@@ -217,7 +250,8 @@ def link_panel(state: ViewState, width: int) -> Text:
 
 
 def help_line(state: ViewState, width: int | None = None) -> Text:
-    """The keys (g start, x stop, c calibrate, n new scan, a axis, q quit) and the last reply.
+    """The keys (g start, x stop, c calibrate, n new scan, a axis, [p pointed,] q quit) and
+    the last reply; "p pointed" only when the daemon's pointing driver is manual.
 
     Parameters
     ----------
@@ -231,7 +265,10 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
     rich.text.Text
         One line.
     """
-    keys = KEYS_SHORT if width is not None and width < 100 else KEYS
+    keys: tuple[tuple[str, str], ...] = KEYS_SHORT if width is not None and width < 100 \
+        else KEYS
+    if (state.mount or {}).get("driver") == "manual":
+        keys = keys[:-1] + (KEY_POINTED,) + keys[-1:]
     other = "MHz" if state.axis == "velocity" else "km/s"
     t = Text()
     for i, (key, what) in enumerate(keys):
@@ -354,6 +391,9 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
             msg = Text("no spectrum yet" + (f": daemon {what}" if what else ""), style=S_WAIT)
             if what == "idle":
                 msg.append(" (g starts an observation)", style=S_LABEL)
+            elif what in ("slewing", "waiting"):
+                msg = Text("no spectrum yet: " + state_words(state), style=S_WAIT)
+                msg.append(" (nothing is observed meanwhile)", style=S_LABEL)
         return _centred(msg, width, height)
 
     unit = specs[-1].get("unit", "K")
@@ -389,6 +429,9 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     legend.append(f" flagged {nflag} ch", style=S_LABEL)
     if uncovered:
         legend.append(f"  {uncovered} ch not covered", style=S_LABEL)
+    what = (state.status or {}).get("state")
+    if what in ("slewing", "waiting"):         # the plot is the last spectrum: none comes now
+        legend.append(f"  {str(what).upper()}", style=STATE_STYLE[what])
     if state.is_stale():
         legend.append("  STALE", style=S_STALE)
     allx = np.concatenate(xs)
@@ -822,7 +865,10 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     Notes
     -----
     Rows, top to bottom: top bar (1), link (3 lines when stale, 1 while waiting, 0 else),
-    progress (2), main area, events (3 at 24 rows, growing to 8 at 50 rows), help (1). The
+    the manual driver's prompt (2 or 3 lines while it waits for the observer, else 0),
+    progress (2), mount (1 or 2 lines with a pointing driver, else 0), plan (3 or more with a
+    running plan, leaving the main area 12 rows where it can, else 0), main area, events (3
+    at 24 rows, growing to 8 at 50 rows), help (1). The
     main area is the spectrum plot on the left and a side column (:func:`side_width`) with,
     on screens of 40 rows or more, the link line; Tsys; receiver; interference taking what
     is left (a waterfall row per integration).
@@ -833,9 +879,17 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     big = height >= 40
     if state.is_stale() or not state.has_data():
         lines += link_lines
+    if state.awaits_observer():
+        lines += text_lines(prompt_panel(state, width))
     lines += text_lines(progress_panel(state, width, ascii))
+    mount_h = mount_height(state, height)
+    if mount_h:
+        lines += text_lines(mount_panel(state, width, mount_h))
     n_events = int(min(8, max(3, 3 + (height - MIN_HEIGHT) // 5)))
     n_events = min(n_events, max(3, len(state.events) + 1))
+    plan_h = plan_height(state, height - len(lines) - n_events - 1)
+    if plan_h:
+        lines += text_lines(plan_panel(state, width, plan_h, ascii))
     main_h = height - len(lines) - n_events - 1
     if main_h < 8:                                        # tiny terminal: events give way
         n_events = max(0, n_events - (8 - main_h))

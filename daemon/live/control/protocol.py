@@ -162,6 +162,7 @@ COMMANDS: Mapping[str, CommandSpec] = MappingProxyType({
     "annotate": CommandSpec("add a note to the log and the event stream", MappingProxyType({
         "text": ArgSpec("text", "the note, one line", min_chars=1, max_chars=500),
     })),
+    "pointed": CommandSpec("the dish is pointed where the daemon asked (manual driver); az_deg, el_deg: where it really points", {"az_deg": ArgSpec("number", "azimuth reached, deg", required=False, lo=-360, hi=720), "el_deg": ArgSpec("number", "elevation reached, deg", required=False, lo=-5, hi=90)}),
 })
 
 
