@@ -181,6 +181,7 @@ def test_mount_panel_says_where_the_dish_is_and_should_be(width):
     assert "az 181.2° el 42.0°" in text and "az 181.5° el 42.2°" in text
     assert "0.31°" in text and "rotator at tcp://127.0.0.1:4533" in text
     assert ("target az 181.5°" in text) is (width >= 100)      # words where there is room
+    assert plan_panel.mount_height(state, width, 48) == (2 if width < 160 else 1)  # no blank
     unknown = planned_state(mount_object(az_deg=None, el_deg=None, error_deg=None))
     assert "az —° el —°" in render(plan_panel.mount_panel(unknown, width, 1), width, 4)
 
@@ -188,7 +189,7 @@ def test_mount_panel_says_where_the_dish_is_and_should_be(width):
 def test_a_fault_comes_first_in_the_error_style():
     why = "rotator at tcp://127.0.0.1:4533 did not answer for 10 s"
     state = planned_state(mount_object(state="fault", detail=why))
-    assert plan_panel.mount_height(state, 24) == 2
+    assert plan_panel.mount_height(state, 80, 24) == 2
     panel = plan_panel.mount_panel(state, 80, 2)
     text = render(panel, 80, 4)
     assert text.splitlines()[0].startswith("mount rotator FAULT  " + why)
@@ -198,7 +199,7 @@ def test_a_fault_comes_first_in_the_error_style():
 
 def test_no_driver_no_mount_lines():
     state = planned_state(mount_object(driver="none", state="idle"))
-    assert plan_panel.mount_height(state, 48) == 0
+    assert plan_panel.mount_height(state, 160, 48) == 0
     assert "mount" not in render(panels.screen(state, 100, 30), 100, 30)
 
 

@@ -882,7 +882,7 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     if state.awaits_observer():
         lines += text_lines(prompt_panel(state, width))
     lines += text_lines(progress_panel(state, width, ascii))
-    mount_h = mount_height(state, height)
+    mount_h = mount_height(state, width, height)
     if mount_h:
         lines += text_lines(mount_panel(state, width, mount_h))
     n_events = int(min(8, max(3, 3 + (height - MIN_HEIGHT) // 5)))

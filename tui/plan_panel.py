@@ -267,16 +267,15 @@ def _mount_items(state: ViewState, width: int) -> list[Text]:
     return items
 
 
-def mount_height(state: ViewState, screen_height: int) -> int:
-    """Rows of the mount panel: 0 without a driver, else 1; 2 when the driver is at fault,
-    and on screens of 30 rows or more when there is a detail the prompt does not show."""
+def mount_height(state: ViewState, width: int, screen_height: int) -> int:
+    """Rows of the mount panel ``width`` cells wide: 0 without a driver; else the lines its
+    items need, at most 1, or 2 when the driver is at fault or the screen has 30 rows or
+    more (room for the detail)."""
     if not has_mount(state):
         return 0
-    m = state.mount or {}
-    if m.get("state") == "fault" or (screen_height >= 30 and m.get("detail")
-                                      and not state.awaits_observer()):
-        return 2
-    return 1
+    fault = (state.mount or {}).get("state") == "fault"
+    cap = 2 if fault or screen_height >= 30 else 1
+    return min(cap, len(pack(_mount_items(state, width), width)))
 
 
 def mount_panel(state: ViewState, width: int, height: int) -> Text:
