@@ -15,6 +15,7 @@ g     ``start`` observing
 x     ``stop`` observing (the scan is closed; the daemon stays up)
 c     ``calibrate`` with ``method=noise_source`` (fire the noise source now)
 n     ``new_scan``
+p     ``pointed``: the dish is where the manual driver asked (the screen prompts for it)
 a     velocity <-> frequency axis (here only, nothing is sent)
 q     quit
 ====  ==========================================================
@@ -127,6 +128,7 @@ KEY_COMMANDS: dict[str, tuple[str, dict | None]] = {
     "x": ("stop", None),
     "c": ("calibrate", {"method": "noise_source"}),
     "n": ("new_scan", None),
+    "p": ("pointed", None),
 }
 #: The key that toggles the spectral axis, and the key that quits.
 KEY_AXIS = "a"

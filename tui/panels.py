@@ -9,7 +9,10 @@ Layout of :func:`screen` (W x H cells, at least 80 x 24)::
 
     top bar: spinflip, station/object, daemon state, scan, link age
     [STALE banner, 3 lines, or the "waiting for data" line, when so]
+    [POINT THE DISH prompt of the manual driver, when it waits for the observer]
     progress: integration bar, scan bar (percent, elapsed/total, ETA)
+    [mount: driver, state, az/el reached and target, error, detail; with a driver]
+    [plan: name, step, ETA, counts; now: target, phase, visit bar; next | skipped]
     +-------------------------------------------+----------------------+
     | spectrum: legend line, then the plot      | link (wide screens)  |
     | (latest integration and running average,  | Tsys now + history   |
@@ -28,7 +31,8 @@ Notes
 Colour comes only from styles; every piece of information is also in the characters, so a
 console with ``no_color=True`` or ``color_system=None`` loses nothing: flagged channels and
 flagged waterfall cells are drawn as 'x', waterfall levels as shades of block characters,
-warnings as words ("STALE", "WARN", "ERROR"). The average and the latest integration share
+warnings as words ("STALE", "WARN", "ERROR"), states as words ("SLEWING", "WAITING",
+"FAULT"). The plan, mount and prompt panels are :mod:`spinflip.tui.plan_panel`. The average and the latest integration share
 the plot; without colour they differ by weight (average bold, integration dim) and both are
 named in the legend.
 
@@ -38,7 +42,6 @@ GB (10^9 bytes), deg.
 
 from __future__ import annotations
 
-import datetime as _dt
 import math
 from collections.abc import Iterable
 
@@ -46,24 +49,33 @@ import numpy as np
 from rich.text import Text
 
 from .braille import Series, plot
+from .cells import (
+    S_AVERAGE,
+    S_FLAGGED,
+    S_INTEGRATION,
+    S_LABEL,
+    S_RULE,
+    S_SEVERITY,
+    S_STALE,
+    S_TITLE,
+    S_VALUE,
+    S_WAIT,
+    SEVERITY_WORD,
+    bar,
+    block,
+    elapsed_total,
+    fit,
+    format_age,
+    format_duration,
+    hms,
+    kv,
+    num,
+    pack,
+    rule,
+    text_lines,
+)
+from .plan_panel import mount_height, mount_panel, plan_height, plan_panel, prompt_panel
 from .state import ViewState
-
-# ----------------------------------------------------------------------------------------------
-# styles (colour is decoration only: see the module Notes)
-# ----------------------------------------------------------------------------------------------
-S_TITLE = "bold"
-S_RULE = "dim"
-S_LABEL = "dim"
-S_VALUE = "bold"
-S_AVERAGE = "bold green"
-S_INTEGRATION = "dim cyan"
-S_FLAGGED = "bold red"
-S_BAR_DONE = "green"
-S_BAR_TODO = "dim"
-S_STALE = "bold reverse red"
-S_WAIT = "bold yellow"
-S_SEVERITY = {"info": "", "warning": "bold yellow", "error": "bold reverse red"}
-SEVERITY_WORD = {"info": "info", "warning": "WARN", "error": "ERROR"}
 
 #: Waterfall shades from low to high, and the mark of a flagged cell.
 SHADES = "·░▒▓█"
@@ -86,106 +98,16 @@ KEYS = (("g", "start"), ("x", "stop"), ("c", "calibrate"), ("n", "new scan"),
         ("a", "axis"), ("q", "quit"))
 KEYS_SHORT = (("g", "start"), ("x", "stop"), ("c", "cal"), ("n", "scan"), ("a", "axis"),
               ("q", "quit"))
+#: The key of the manual driver (shown only when the daemon has one), before "q".
+KEY_POINTED = ("p", "pointed")
+
+#: Style of the daemon's state in the top bar (the state is written out in capitals too).
+STATE_STYLE = {"slewing": "bold cyan", "waiting": S_WAIT, "reconnecting": S_WAIT}
 
 
 # ----------------------------------------------------------------------------------------------
-# small text tools
+# what the state says
 # ----------------------------------------------------------------------------------------------
-def _fit(text: Text | str, width: int) -> Text:
-    """One line exactly ``width`` cells: cut with an ellipsis or padded with spaces."""
-    t = Text(text) if isinstance(text, str) else text.copy()
-    t.no_wrap = True
-    t.truncate(max(0, width), overflow="ellipsis", pad=True)
-    return t
-
-
-def _block(lines: list, width: int, height: int) -> Text:
-    """Lines as one Text of exactly ``height`` lines of ``width`` cells (cut or padded)."""
-    rows = [_fit(line, width) for line in lines[:max(0, height)]]
-    rows += [_fit("", width) for _ in range(max(0, height) - len(rows))]
-    out = Text("\n").join(rows)
-    out.no_wrap = True
-    out.overflow = "crop"
-    out.end = "\n"
-    return out
-
-
-def _lines(text: Text) -> list[Text]:
-    """The lines of a Text (no trailing empty line)."""
-    out = list(text.split("\n", allow_blank=True))
-    if out and str(text).endswith("\n"):
-        out.pop()
-    return out
-
-
-def _rule(title: str | Text, width: int, fill: str = "─") -> Text:
-    """A section title: "── title ──────" across ``width`` cells."""
-    t = Text(fill * 2 + " ", style=S_RULE)
-    t.append_text(Text(title, style=S_TITLE) if isinstance(title, str) else title)
-    t.append(" ")
-    if t.cell_len < width:
-        t.append(fill * (width - t.cell_len), style=S_RULE)
-    return _fit(t, width)
-
-
-def _pack(items: list[Text], width: int, sep: str = "  ") -> list[Text]:
-    """Items greedily packed into lines no wider than ``width`` (an item never split)."""
-    lines, cur = [], None
-    for item in items:
-        if cur is None:
-            cur = item.copy()
-        elif cur.cell_len + len(sep) + item.cell_len <= width:
-            cur.append(sep)
-            cur.append_text(item)
-        else:
-            lines.append(cur)
-            cur = item.copy()
-    if cur is not None:
-        lines.append(cur)
-    return lines
-
-
-def _kv(label: str, value: str) -> Text:
-    """"label value" with the label dim and the value bold."""
-    t = Text(label + " ", style=S_LABEL) if label else Text()
-    t.append(value, style=S_VALUE)
-    return t
-
-
-def format_duration(seconds: float | None) -> str:
-    """A duration for people: "17 s", "9 min 05 s", "2 h 03 min"; "?" when not known."""
-    if seconds is None or not math.isfinite(seconds):
-        return "?"
-    s = max(0.0, float(seconds))
-    if s < 60.0:
-        return f"{s:.0f} s"
-    if s < 3600.0:
-        m, r = divmod(int(round(s)), 60)
-        return f"{m} min {r:02d} s"
-    h, r = divmod(int(round(s)), 3600)
-    return f"{h} h {r // 60:02d} min"
-
-
-def format_age(seconds: float) -> str:
-    """An age: one decimal below 10 s ("0.4 s"), whole seconds above ("17 s")."""
-    return f"{seconds:.1f} s" if seconds < 10.0 else format_duration(seconds)
-
-
-def _hms(time_utc: str) -> str:
-    """HH:MM:SS of a wire time (UTC), or the text itself if it is not one."""
-    try:
-        return _dt.datetime.fromisoformat(time_utc.replace("Z", "+00:00")).strftime("%H:%M:%S")
-    except (ValueError, AttributeError):
-        return str(time_utc)[:8]
-
-
-def _num(value: float | None, fmt: str, unit: str) -> str:
-    """A number with its unit, or "— unit" when it is not known."""
-    if value is None or (isinstance(value, float) and not math.isfinite(value)):
-        return f"—{unit}" if unit == "°" else f"— {unit}".rstrip()
-    return f"{value:{fmt}}{unit}" if unit == "°" else f"{value:{fmt}} {unit}".rstrip()
-
-
 def _tsys_now_k(state: ViewState) -> float | None:
     """Latest system temperature, K: the status's, else the latest spectrum's."""
     for src in (state.status, state.spectrum):
@@ -205,6 +127,28 @@ def _target(state: ViewState) -> str:
         obj = obj or state.status.get("pointing", {}).get("object", "")
         station = station or state.status.get("station", "")
     return ": ".join(p for p in (station, obj) if p)
+
+
+def state_words(state: ViewState) -> str:
+    """The daemon's state for people: "OBSERVING", ...; under a plan "SLEWING to OBJECT",
+    and "WAITING" with what for when the plan or the driver says ("WAITING for you", "for
+    a target to rise", "parked", "for the rotator")."""
+    what = str((state.status or {}).get("state", "?"))
+    words = what.upper()
+    plan = state.plan or {}
+    mount = state.mount or {}
+    if what == "slewing" and plan.get("object"):
+        words += f" to {plan['object']}"
+    elif what == "waiting":
+        if state.awaits_observer():
+            words += " for you"
+        elif plan.get("phase") == "deferred":
+            words += ": nothing up yet"
+        elif plan.get("phase") == "parked" or mount.get("state") == "parked":
+            words += ": parked"
+        elif mount.get("state") == "fault":
+            words += " for the rotator"
+    return words
 
 
 # ----------------------------------------------------------------------------------------------
@@ -231,7 +175,8 @@ def top_bar(state: ViewState, width: int) -> Text:
         left.append(target, style=S_VALUE)
     if state.status:
         left.append("  ")
-        left.append(state.status.get("state", "?").upper(), style="bold")
+        left.append(state_words(state),
+                    style=STATE_STYLE.get(state.status.get("state", ""), "bold"))
     scan = (state.progress or {}).get("scan") or (state.status or {}).get("scan")
     if scan:
         left.append("  scan ", style=S_LABEL)
@@ -247,10 +192,10 @@ def top_bar(state: ViewState, width: int) -> Text:
         right = Text("live ", style=S_LABEL)
         right.append(format_age(age), style=S_VALUE)
     gap = width - right.cell_len - 1
-    line = _fit(left, max(0, gap))
+    line = fit(left, max(0, gap))
     line.append(" ")
     line.append_text(right)
-    return _fit(line, width)
+    return fit(line, width)
 
 
 def link_panel(state: ViewState, width: int) -> Text:
@@ -280,7 +225,7 @@ def link_panel(state: ViewState, width: int) -> Text:
     if not state.has_data():
         t = Text("… waiting for data from ", style=S_WAIT)
         t.append(endpoint, style="bold")
-        return _block([t], width, 1)
+        return block([t], width, 1)
     age = state.age_s()
     assert age is not None          # has_data(): a message has arrived
     if state.is_stale():
@@ -290,7 +235,7 @@ def link_panel(state: ViewState, width: int) -> Text:
         pad = max(0, width - len(msg))
         middle = Text("!" * (pad // 2) + msg + "!" * (pad - pad // 2), style=S_STALE)
         border = Text(("! STALE " * (width // 8 + 1))[:width], style=S_STALE)
-        return _block([border, middle, border.copy()], width, 3)
+        return block([border, middle, border.copy()], width, 3)
     t = Text("link ", style=S_LABEL)
     t.append(endpoint)
     t.append("  last ", style=S_LABEL)
@@ -301,11 +246,12 @@ def link_panel(state: ViewState, width: int) -> Text:
         t.append(f"  dropped {ndrop}", style="yellow")
     if not state.connected:
         t.append("  (disconnected)", style="bold yellow")
-    return _block([t], width, 1)
+    return block([t], width, 1)
 
 
 def help_line(state: ViewState, width: int | None = None) -> Text:
-    """The keys (g start, x stop, c calibrate, n new scan, a axis, q quit) and the last reply.
+    """The keys (g start, x stop, c calibrate, n new scan, a axis, [p pointed,] q quit) and
+    the last reply; "p pointed" only when the daemon's pointing driver is manual.
 
     Parameters
     ----------
@@ -319,7 +265,10 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
     rich.text.Text
         One line.
     """
-    keys = KEYS_SHORT if width is not None and width < 100 else KEYS
+    keys: tuple[tuple[str, str], ...] = KEYS_SHORT if width is not None and width < 100 \
+        else KEYS
+    if (state.mount or {}).get("driver") == "manual":
+        keys = keys[:-1] + (KEY_POINTED,) + keys[-1:]
     other = "MHz" if state.axis == "velocity" else "km/s"
     t = Text()
     for i, (key, what) in enumerate(keys):
@@ -330,7 +279,7 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
     if state.reply:
         t.append("  » ", style=S_LABEL)
         t.append(state.reply, style=S_VALUE)
-    return _fit(t, width) if width is not None else t
+    return fit(t, width) if width is not None else t
 
 
 # ----------------------------------------------------------------------------------------------
@@ -350,7 +299,7 @@ def _centred(text: Text, width: int, height: int) -> Text:
     line = Text(" " * pad)
     line.append_text(text)
     rows = [Text("")] * (max(0, height - 1) // 2) + [line]
-    return _block(rows, width, height)
+    return block(rows, width, height)
 
 
 #: Characters of the plot's left axis (braille and ASCII plots), used to find its column.
@@ -442,6 +391,9 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
             msg = Text("no spectrum yet" + (f": daemon {what}" if what else ""), style=S_WAIT)
             if what == "idle":
                 msg.append(" (g starts an observation)", style=S_LABEL)
+            elif what in ("slewing", "waiting"):
+                msg = Text("no spectrum yet: " + state_words(state), style=S_WAIT)
+                msg.append(" (nothing is observed meanwhile)", style=S_LABEL)
         return _centred(msg, width, height)
 
     unit = specs[-1].get("unit", "K")
@@ -477,6 +429,9 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     legend.append(f" flagged {nflag} ch", style=S_LABEL)
     if uncovered:
         legend.append(f"  {uncovered} ch not covered", style=S_LABEL)
+    what = (state.status or {}).get("state")
+    if what in ("slewing", "waiting"):         # the plot is the last spectrum: none comes now
+        legend.append(f"  {str(what).upper()}", style=STATE_STYLE[what])
     if state.is_stale():
         legend.append("  STALE", style=S_STALE)
     allx = np.concatenate(xs)
@@ -484,13 +439,13 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     if x_range[1] <= x_range[0]:
         x_range = (x_range[0] - 0.5, x_range[0] + 0.5)
     if width < 30 or height < 8:
-        return _block([legend], width, height)
-    body = _lines(plot(series, width, height - 2, x_range=x_range, x_label=x_label,
+        return block([legend], width, height)
+    body = text_lines(plot(series, width, height - 2, x_range=x_range, x_label=x_label,
                        y_label=unit, x_ticks=max(2, width // 16),
                        y_ticks=max(2, min(6, (height - 2) // 4)), ascii=ascii))
     axis_col = _axis_column([line.plain for line in body[:-1]])
     if axis_col is None:                       # not expected: keep the plot, mark nothing
-        return _block([legend] + body, width, height)
+        return block([legend] + body, width, height)
     cells = width - axis_col - 1
     marks = np.zeros(cells, dtype=bool)
     for x, mask in flags:
@@ -499,7 +454,7 @@ def spectrum_panel(state: ViewState, width: int, height: int, ascii: bool = Fals
     strip.append("|" if ascii else "\u2502", style=S_RULE)
     for m in marks:
         strip.append(FLAG_MARK if m else " ", style=S_FLAGGED if m else "")
-    return _block([legend] + body[:-1] + [strip, body[-1]], width, height)
+    return block([legend] + body[:-1] + [strip, body[-1]], width, height)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -559,11 +514,11 @@ def tsys_panel(state: ViewState, width: int, height: int) -> Text:
     """
     now = _tsys_now_k(state)
     title = Text("Tsys ", style=S_TITLE)
-    title.append(_num(now, ".1f", "K"), style="bold cyan")
+    title.append(num(now, ".1f", "K"), style="bold cyan")
     src = (state.status or {}).get("tsys_source")
     if src and width >= 40:
         title.append(f" ({src})", style=S_LABEL)
-    lines = [_rule(title, width)]
+    lines = [rule(title, width)]
     hist = [t for _, t in state.tsys_history]
     rows = height - 1
     label = None
@@ -579,27 +534,12 @@ def tsys_panel(state: ViewState, width: int, height: int) -> Text:
             lines += [Text("no Tsys history yet", style=S_LABEL)] + [Text("")] * (rows - 1)
     if label is not None:
         lines.append(label)
-    return _block(lines, width, height)
+    return block(lines, width, height)
 
 
 # ----------------------------------------------------------------------------------------------
 # progress
 # ----------------------------------------------------------------------------------------------
-def _bar(fraction: float, width: int, ascii: bool = False) -> Text:
-    """A bar ``width`` cells long, ``fraction`` (0..1) of it filled."""
-    done = int(round(min(1.0, max(0.0, fraction)) * width))
-    full, empty = ("#", "-") if ascii else ("█", "░")
-    t = Text(full * done, style=S_BAR_DONE)
-    t.append(empty * (width - done), style=S_BAR_TODO)
-    return t
-
-
-def _elapsed_total(elapsed_s: float, total_s: float) -> str:
-    """"12.6/30.0 s", or in minutes above 1000 s."""
-    if total_s >= 1000.0:
-        return f"{elapsed_s / 60:.1f}/{total_s / 60:.1f} min"
-    return f"{elapsed_s:.1f}/{total_s:.1f} s"
-
 
 def _progress_line(label: str, elapsed_s: float, total_s: float | None, eta_s: float | None,
                    width: int, ascii: bool) -> Text:
@@ -607,19 +547,19 @@ def _progress_line(label: str, elapsed_s: float, total_s: float | None, eta_s: f
     if total_s is None or total_s <= 0:
         tail = Text(f" {format_duration(elapsed_s)} observed, no end set", style=S_VALUE)
         head.append_text(tail)
-        return _fit(head, width)
+        return fit(head, width)
     frac = elapsed_s / total_s
     tail = Text(f" {100 * frac:3.0f} %", style=S_VALUE)
-    tail.append(f"  {_elapsed_total(elapsed_s, total_s)}")
+    tail.append(f"  {elapsed_total(elapsed_s, total_s)}")
     tail.append("  ETA ", style=S_LABEL)
     tail.append(format_duration(eta_s), style=S_VALUE)
     bar_w = width - head.cell_len - tail.cell_len - 1
     line = head
     line.append(" ")
     if bar_w >= 4:
-        line.append_text(_bar(frac, bar_w, ascii))
+        line.append_text(bar(frac, bar_w, ascii))
     line.append_text(tail)
-    return _fit(line, width)
+    return fit(line, width)
 
 
 def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
@@ -648,7 +588,7 @@ def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
     if not p:
         what = (state.status or {}).get("state")
         msg = "no progress yet" + (f": daemon {what}" if what else "")
-        return _block([Text(msg, style=S_LABEL), Text("")], width, 2)
+        return block([Text(msg, style=S_LABEL), Text("")], width, 2)
     label_w = max(len(f"int #{p.get('integration', 0)}"), 4) + 1
     int_e = float(p.get("integration_elapsed_s", 0.0))
     int_t = float(p.get("integration_total_s", 0.0))
@@ -659,7 +599,7 @@ def progress_panel(state: ViewState, width: int, ascii: bool = False) -> Text:
     else:
         second = _progress_line("scan".ljust(label_w), float(p.get("scan_elapsed_s", 0.0)),
                                 p.get("scan_total_s"), p.get("eta_s"), width, ascii)
-    return _block([first, second], width, 2)
+    return block([first, second], width, 2)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -752,30 +692,30 @@ def rfi_panel(state: ViewState, width: int, height: int, ascii: bool = False) ->
     from the status: the daemon's counters since start (impulses, carrier onsets, SK cells).
     The waterfall leaves the uncovered channels out.
     """
-    lines = [_rule("interference", width)]
+    lines = [rule("interference", width)]
     spec = state.spectrum
     items = []
     rfi_frac, uncovered = state.rfi_fractions()
     if spec:
         if rfi_frac is not None:
-            items = [_kv("interference flagged", f"{100 * rfi_frac:.1f} %")]
+            items = [kv("interference flagged", f"{100 * rfi_frac:.1f} %")]
             if uncovered is not None:
-                cov = _kv("coverage", f"{100 * uncovered:.1f} %")
+                cov = kv("coverage", f"{100 * uncovered:.1f} %")
                 cov.append(" uncovered", style=S_LABEL)
                 items.append(cov)
         else:
-            items = [_kv("flagged", f"{100 * spec.get('flagged_fraction', 0.0):.1f} %")]
-        items += [_kv("imp", f"{spec.get('nimpulse', 0)}"),
-                  _kv("car", f"{spec.get('ncarrier', 0)}"),
-                  _kv("blanked", f"{100 * spec.get('blanked_fraction', 0.0):.2f} %")]
+            items = [kv("flagged", f"{100 * spec.get('flagged_fraction', 0.0):.1f} %")]
+        items += [kv("imp", f"{spec.get('nimpulse', 0)}"),
+                  kv("car", f"{spec.get('ncarrier', 0)}"),
+                  kv("blanked", f"{100 * spec.get('blanked_fraction', 0.0):.2f} %")]
     else:
         items = [Text("flagged — % (no integration yet)", style=S_LABEL)]
     rfi = (state.status or {}).get("rfi")
     if rfi and height >= 8:
-        items.append(_kv("since start: imp", str(rfi.get("impulses", 0))))
-        items.append(_kv("carrier onsets", str(rfi.get("carrier_onsets", 0))))
-        items.append(_kv("SK cells", str(rfi.get("sk_cells", 0))))
-    readout = _pack(items, width)
+        items.append(kv("since start: imp", str(rfi.get("impulses", 0))))
+        items.append(kv("carrier onsets", str(rfi.get("carrier_onsets", 0))))
+        items.append(kv("SK cells", str(rfi.get("sk_cells", 0))))
+    readout = pack(items, width)
     keep = max(1, min(len(readout), height - 3 if height >= 5 else height - 1))
     lines += readout[:keep]
     rows_left = height - len(lines)
@@ -784,7 +724,7 @@ def rfi_panel(state: ViewState, width: int, height: int, ascii: bool = False) ->
         rows_left -= 1
     shown = ~state.uncovered_channels(spec) if spec else None
     lines += waterfall_rows(state.waterfall, width, rows_left, ascii, shown)
-    return _block(lines, width, height)
+    return block(lines, width, height)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -818,39 +758,39 @@ def receiver_panel(state: ViewState, width: int) -> Text:
     if glon is None and pointing.get("frame") == "galactic":
         glon, glat = pointing.get("lon_deg"), pointing.get("lat_deg")
     items = [
-        _kv("az", _num(spec.get("azimuth_deg"), ".1f", "°")) + _kv(" el", _num(
+        kv("az", num(spec.get("azimuth_deg"), ".1f", "°")) + kv(" el", num(
             spec.get("elevation_deg"), ".1f", "°")),
-        _kv("l", _num(glon, ".2f", "°")) + _kv(" b", _num(glat, ".2f", "°")),
+        kv("l", num(glon, ".2f", "°")) + kv(" b", num(glat, ".2f", "°")),
     ]
     if width >= 44 and spec.get("ra_deg") is not None:
-        items.append(_kv("RA", _num(spec.get("ra_deg"), ".2f", "°"))
-                     + _kv(" Dec", _num(spec.get("dec_deg"), ".2f", "°")))
+        items.append(kv("RA", num(spec.get("ra_deg"), ".2f", "°"))
+                     + kv(" Dec", num(spec.get("dec_deg"), ".2f", "°")))
     lo_hz, rate_hz = st.get("lo_hz"), st.get("sample_rate_hz")
-    items.append(_kv("LO", _num(None if lo_hz is None else lo_hz / 1e6, ".3f", "MHz")))
-    items.append(_kv("gain", _num(st.get("gain_db"), ".1f", "dB")))
-    items.append(_kv("", _num(None if rate_hz is None else rate_hz / 1e6, ".2f", "MS/s")))
+    items.append(kv("LO", num(None if lo_hz is None else lo_hz / 1e6, ".3f", "MHz")))
+    items.append(kv("gain", num(st.get("gain_db"), ".1f", "dB")))
+    items.append(kv("", num(None if rate_hz is None else rate_hz / 1e6, ".2f", "MS/s")))
     lost, received = st.get("samples_lost"), st.get("samples_received")
     lost_text = ("—" if lost is None else f"{lost}") + " samples"
     if lost and received:
         lost_pct = 100.0 * lost / (lost + received)
         lost_text += f" ({lost_pct:.2f} %)" if lost_pct >= 0.01 else " (<0.01 %)"
-    items.append(_kv("lost", lost_text))
+    items.append(kv("lost", lost_text))
     disk = st.get("disk_free_bytes")
-    items.append(_kv("disk", _num(None if disk is None else disk / 1e9, ".1f", "GB free")))
+    items.append(kv("disk", num(None if disk is None else disk / 1e9, ".1f", "GB free")))
     if st.get("writing") == "holding":
-        items.append(_kv("WRITING HELD", f"{st.get('held_integrations', 0)} in memory"))
+        items.append(kv("WRITING HELD", f"{st.get('held_integrations', 0)} in memory"))
     elif st.get("writing") == "failed":
-        items.append(_kv("WRITING FAILED", "daemon stopping"))
+        items.append(kv("WRITING FAILED", "daemon stopping"))
     failures = st.get("worker_failures") or {}
     if failures:
-        items.append(_kv("THREAD FAILED", ", ".join(f"{name} ×{n}" for name, n in
+        items.append(kv("THREAD FAILED", ", ".join(f"{name} ×{n}" for name, n in
                                                      sorted(failures.items()))))
     if width >= 44 and st:
-        items.append(_kv("source", str(st.get("source", "?"))))
-        items.append(_kv("queue", str(st.get("queue_depth", 0))))
-        items.append(_kv("up", format_duration(st.get("uptime_s"))))
-    lines = [_rule("receiver", width)] + _pack(items, width)
-    return _block(lines, width, len(lines))
+        items.append(kv("source", str(st.get("source", "?"))))
+        items.append(kv("queue", str(st.get("queue_depth", 0))))
+        items.append(kv("up", format_duration(st.get("uptime_s"))))
+    lines = [rule("receiver", width)] + pack(items, width)
+    return block(lines, width, len(lines))
 
 
 # ----------------------------------------------------------------------------------------------
@@ -873,18 +813,18 @@ def events_panel(state: ViewState, width: int, height: int) -> Text:
     """
     lines = []
     if height >= 3:
-        lines.append(_rule(f"events ({len(state.events)})", width))
+        lines.append(rule(f"events ({len(state.events)})", width))
     room = height - len(lines)
     shown = list(state.events)[-room:] if room > 0 else []
     for time_utc, severity, text in shown:
-        t = Text(_hms(time_utc) + " ", style=S_LABEL)
+        t = Text(hms(time_utc) + " ", style=S_LABEL)
         t.append(f"{SEVERITY_WORD.get(severity, severity):5s}",
                  style=S_SEVERITY.get(severity, ""))
         t.append(" " + text)
         lines.append(t)
     if not shown and room > 0:
         lines.append(Text("no events yet", style=S_LABEL))
-    return _block(lines, width, height)
+    return block(lines, width, height)
 
 
 # ----------------------------------------------------------------------------------------------
@@ -925,20 +865,31 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     Notes
     -----
     Rows, top to bottom: top bar (1), link (3 lines when stale, 1 while waiting, 0 else),
-    progress (2), main area, events (3 at 24 rows, growing to 8 at 50 rows), help (1). The
+    the manual driver's prompt (2 or 3 lines while it waits for the observer, else 0),
+    progress (2), mount (1 or 2 lines with a pointing driver, else 0), plan (3 or more with a
+    running plan, leaving the main area 12 rows where it can, else 0), main area, events (3
+    at 24 rows, growing to 8 at 50 rows), help (1). The
     main area is the spectrum plot on the left and a side column (:func:`side_width`) with,
     on screens of 40 rows or more, the link line; Tsys; receiver; interference taking what
     is left (a waterfall row per integration).
     """
     width, height = max(1, int(width)), max(1, int(height))
     lines = [top_bar(state, width)]
-    link_lines = _lines(link_panel(state, width))
+    link_lines = text_lines(link_panel(state, width))
     big = height >= 40
     if state.is_stale() or not state.has_data():
         lines += link_lines
-    lines += _lines(progress_panel(state, width, ascii))
+    if state.awaits_observer():
+        lines += text_lines(prompt_panel(state, width))
+    lines += text_lines(progress_panel(state, width, ascii))
+    mount_h = mount_height(state, width, height)
+    if mount_h:
+        lines += text_lines(mount_panel(state, width, mount_h))
     n_events = int(min(8, max(3, 3 + (height - MIN_HEIGHT) // 5)))
     n_events = min(n_events, max(3, len(state.events) + 1))
+    plan_h = plan_height(state, height - len(lines) - n_events - 1)
+    if plan_h:
+        lines += text_lines(plan_panel(state, width, plan_h, ascii))
     main_h = height - len(lines) - n_events - 1
     if main_h < 8:                                        # tiny terminal: events give way
         n_events = max(0, n_events - (8 - main_h))
@@ -948,19 +899,19 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     plot_w = width - side_w - 1
     side: list[Text] = []
     if big and not (state.is_stale() or not state.has_data()):
-        side += _lines(link_panel(state, side_w))
+        side += text_lines(link_panel(state, side_w))
     tsys_h = 3 if main_h < 30 else 6
-    receiver = _lines(receiver_panel(state, side_w))
+    receiver = text_lines(receiver_panel(state, side_w))
     rfi_min = 4
     room_receiver = max(0, main_h - len(side) - tsys_h - rfi_min)
-    side += _lines(tsys_panel(state, side_w, tsys_h))
+    side += text_lines(tsys_panel(state, side_w, tsys_h))
     side += receiver[:room_receiver]
-    side += _lines(rfi_panel(state, side_w, max(0, main_h - len(side)), ascii))
-    side = [_fit(s, side_w) for s in side[:main_h]]
-    side += [_fit("", side_w) for _ in range(main_h - len(side))]
-    left = _lines(spectrum_panel(state, plot_w, main_h, ascii)) if main_h else []
+    side += text_lines(rfi_panel(state, side_w, max(0, main_h - len(side)), ascii))
+    side = [fit(s, side_w) for s in side[:main_h]]
+    side += [fit("", side_w) for _ in range(main_h - len(side))]
+    left = text_lines(spectrum_panel(state, plot_w, main_h, ascii)) if main_h else []
     lines += _side_by_side(left, side)
     if n_events:
-        lines += _lines(events_panel(state, width, n_events))
+        lines += text_lines(events_panel(state, width, n_events))
     lines.append(help_line(state, width))
-    return _block(lines[:height], width, height)
+    return block(lines[:height], width, height)

@@ -15,8 +15,10 @@ spectrum "integration" ``spectrum`` (header + arrays); its ``data`` row and its
                        ``flagged`` mask appended to ``waterfall``
 spectrum "average"     ``average`` (header + arrays)
 status                 ``status`` (header); ``tsys_k`` (when not null) appended to
-                       ``tsys_history`` as (arrival time in s, Tsys in K)
-progress               ``progress`` (header)
+                       ``tsys_history`` as (arrival time in s, Tsys in K); ``mount``
+                       = its ``mount`` object, None when it has none
+progress               ``progress`` (header); ``plan`` = its ``plan`` object, None
+                       when it has none or it is null
 event                  (time_utc, severity, text) appended to ``events``
 any                    ``connected = True``, ``last_message_s`` = arrival time
 =====================  ===========================================================
@@ -33,6 +35,12 @@ the last one.
 
 A spectrum is kept as a dict: the header's fields, with ``"arrays"`` replaced by a dict
 name -> NumPy array (``flagged`` as bool) and ``"units"`` holding name -> unit of each array.
+
+A plan and a pointing driver are optional (wire docstring: ``progress.plan``,
+``status.mount``): a daemon without them, or older than them, sends neither, and ``plan`` and
+``mount`` stay None. Each message replaces the last of its topic whole, so a progress without
+``plan`` after one with it means the plan is over, and a status without ``mount`` means no
+driver.
 
 Flagged is not all interference: with frequency switching folded, the channels at one band
 edge have no partner in the other phase and are flagged as not covered. The status's ``rfi``
@@ -115,6 +123,11 @@ class ViewState:
         Data older than this are stale, s.
     replays_ignored : int
         Replayed messages ignored because this state already had them.
+    mount : dict or None
+        The latest status's ``mount`` object (the pointing driver and where the dish is);
+        None: no driver, or a daemon that does not send one.
+    plan : dict or None
+        The latest progress's ``plan`` object (where a running plan is); None: no plan.
     """
 
     spectrum: dict | None = None
@@ -132,6 +145,8 @@ class ViewState:
     now_s: float = 0.0
     stale_after_s: float = 3.0
     replays_ignored: int = 0
+    mount: dict | None = None
+    plan: dict | None = None
     _replays: ReplayFilter = field(default_factory=ReplayFilter, repr=False)
 
     def apply(self, message: schema.Message, now_s: float) -> None:
@@ -166,11 +181,15 @@ class ViewState:
                 self.spectrum = spec
         elif topic == "status":
             self.status = dict(header)
+            mount = header.get("mount")
+            self.mount = dict(mount) if isinstance(mount, dict) else None
             tsys_k = header.get("tsys_k")
             if tsys_k is not None and math.isfinite(tsys_k):
                 self.tsys_history.append((float(now_s), float(tsys_k)))
         elif topic == "progress":
             self.progress = dict(header)
+            plan = header.get("plan")
+            self.plan = dict(plan) if isinstance(plan, dict) else None
         elif topic == "event":
             item = (header.get("time_utc", ""), header.get("severity", "info"),
                     header.get("text", ""))
@@ -181,6 +200,12 @@ class ViewState:
         self.connected = True
         self.last_message_s = float(now_s)
         self.now_s = float(now_s)
+
+    def awaits_observer(self) -> bool:
+        """True when the daemon waits for the observer to point the dish by hand (the
+        manual driver in state "waiting"); ``p`` (the ``pointed`` command) answers it."""
+        m = self.mount or {}
+        return m.get("driver") == "manual" and m.get("state") == "waiting"
 
     def rfi_fractions(self) -> tuple[float | None, float | None]:
         """(fraction flagged for interference, fraction not covered by the fold) of the newest
