@@ -346,10 +346,11 @@ def test_no_answer_within_answer_s_then_answers_again(own_rotctld):
         assert time.monotonic() - t0 >= 0.3
         assert str(err.value) == f"rotator at {own_rotctld.endpoint}: no answer to 'p' within 0.3 s"
         cancel = threading.Event()
-        threading.Timer(5.0, cancel.set).start()
+        timer = threading.Timer(10.0, cancel.set)           # a bound, should it never answer
+        timer.start()
         own_rotctld.resume()
         assert mount.wait_until_answering(cancel)
-        cancel.set()
+        timer.cancel()
     finally:
         own_rotctld.resume()
 
