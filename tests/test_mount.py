@@ -18,7 +18,14 @@ import pytest
 from rotctld_server import Rotctld
 
 from spinflip.daemon import config
-from spinflip.daemon.mount.base import AzEl, Mount, MountCancelled, MountError, separation_deg
+from spinflip.daemon.mount.base import (
+    AzEl,
+    Mount,
+    MountCancelled,
+    MountError,
+    PointAgain,
+    separation_deg,
+)
 from spinflip.daemon.mount.beam import beam_fwhm_deg, tracking_step_deg
 from spinflip.daemon.mount.factory import make_mount
 from spinflip.daemon.mount.fixed import FixedMount
@@ -431,11 +438,17 @@ def test_manual_track_holds_the_pointed_position_until_the_target_leaves_half_th
     pointed = mount.acquire(lambda: AzEl(100.0, 30.0), threading.Event())
     t.join()
     assert mount.track(AzEl(100.0, 32.0)) == pointed          # 2 deg < 2.42 deg: still on it
-    with pytest.raises(MountError) as err:
-        mount.track(AzEl(100.0, 33.0))
+    with pytest.raises(PointAgain) as err:                    # a MountError the runner
+        mount.track(AzEl(100.0, 33.0))                        # answers by asking again
     assert str(err.value) == ("manual pointing: the target has moved 3.0 deg from where the dish "
                               "was pointed (more than half the beam, 2.4 deg): point again")
-    assert mount.status().state == "fault"
+    assert mount.status().state == "tracking" and mount.status().detail == str(err.value)
+    seen: list = []                                           # and it can be pointed again
+    t = confirm_soon(mount, None, seen)
+    assert mount.acquire(lambda: AzEl(100.0, 33.0), threading.Event()) == AzEl(100.0, 33.0)
+    t.join()
+    assert seen[0].state == "waiting"
+    assert mount.track(AzEl(100.0, 33.5)) == AzEl(100.0, 33.0)
 
 
 def test_manual_refuses_below_the_horizon_and_parks_by_asking():

@@ -32,6 +32,11 @@ class MountError(RuntimeError):
     """The mount failed: no answer, a refusal, never arrived, outside its limits. One line."""
 
 
+class PointAgain(MountError):
+    """A dish that does not track (pointed by hand) is too far from its moving target: the
+    observer must point it again. Not a fault: the visit goes on after."""
+
+
 class MountCancelled(Exception):
     """The wait was cancelled (skip, abort, park, stop): not a fault."""
 

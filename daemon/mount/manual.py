@@ -4,7 +4,8 @@
 waits until the observer confirms from another thread (:meth:`ManualMount.confirm`, which the
 control command calls) with the asked position or where the dish really points. While
 observing, the dish stays where it was pointed and the sky moves on: :meth:`ManualMount.track`
-fails once the target is more than half the beam FWHM away, so the runner asks again.
+raises :class:`~spinflip.daemon.mount.base.PointAgain` once the target is more than half the
+beam FWHM away, so the runner asks again.
 """
 
 from __future__ import annotations
@@ -13,7 +14,14 @@ import math
 import threading
 from collections.abc import Callable
 
-from spinflip.daemon.mount.base import AzEl, MountCancelled, MountError, MountStatus, separation_deg
+from spinflip.daemon.mount.base import (
+    AzEl,
+    MountCancelled,
+    MountError,
+    MountStatus,
+    PointAgain,
+    separation_deg,
+)
 from spinflip.daemon.mount.beam import beam_fwhm_deg
 
 #: How often a waiting acquire looks at its cancel event, s.
@@ -110,15 +118,15 @@ class ManualMount:
             self._target = want
             pointed = self._pointed
         if pointed is None:
-            raise MountError("manual pointing: the dish has not been pointed: point it first")
+            raise PointAgain("manual pointing: the dish has not been pointed yet: point it")
         off = separation_deg(pointed, want)
         if off > self.tolerance_deg:
             line = (f"manual pointing: the target has moved {off:.1f} deg from where the dish "
                     f"was pointed (more than half the beam, {self.tolerance_deg:.1f} deg): "
                     "point again")
             with self._lock:
-                self._state, self._detail = "fault", line
-            raise MountError(line)
+                self._detail = line               # not a fault: the runner asks again
+            raise PointAgain(line)
         return pointed
 
     def park(self) -> AzEl | None:
