@@ -157,6 +157,22 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "sun_avoid_deg": Key(15.0, float, 0, 90, doc="plans keep this far from the Sun, deg"),
         "slew_deg_s": Key(2.0, float, 0.01, 30, doc="slew speed per axis for plans, deg/s"),
         "settle_s": Key(5.0, float, 0, 600, doc="time after a slew before observing, s"),
+        "driver": Key("none", str, choices=("none", "manual", "rotator"),
+                      doc="what points the dish: nothing (a fixed dish), the observer by hand, "
+                      "or a rotator behind rotctld ([rotator])"),
+    },
+    "rotator": {
+        "endpoint": Key("127.0.0.1:4533", str, doc="rotctld's TCP endpoint, host:port"),
+        "tolerance_deg": Key(1.0, float, 0.01, 30, doc="on target when this close, deg"),
+        "timeout_s": Key(120.0, float, 1, 3600, doc="longest a slew may take, s"),
+        "answer_s": Key(3.0, float, 0.1, 60, doc="longest wait for one answer of rotctld, s"),
+        "poll_s": Key(0.5, float, 0.05, 10, doc="position read this often while slewing, s"),
+        "track_fraction": Key(0.1, float, 0.01, 1, doc="re-command when the target has moved "
+                              "this fraction of the beam FWHM (at most tolerance_deg / 2)"),
+        "az_range": Key([0.0, 360.0], list, doc="the rotator's azimuth limits [lo, hi], deg "
+                        "(within -180..540)"),
+        "el_range": Key([0.0, 90.0], list, doc="the rotator's elevation limits [lo, hi], deg"),
+        "park": Key([0.0, 90.0], list, doc="park position [az, el], deg (inside the limits)"),
     },
     "output": {
         "dir": Key("spinflip-data", str),
@@ -180,6 +196,8 @@ def defaults() -> dict[str, dict[str, Any]]:
 def _check(section: str, key: str, value: Any) -> Any:
     spec = SCHEMA[section][key]
     where = f"{section}.{key}"
+    if (section, key) in _PAIRS:
+        return _check_pair(where, value, *_PAIRS[section, key])
     ok_type = isinstance(value, spec.kind) and not (spec.kind is not bool and isinstance(value, bool))
     if spec.kind is float and isinstance(value, int) and not isinstance(value, bool):
         value, ok_type = float(value), True
@@ -189,6 +207,10 @@ def _check(section: str, key: str, value: Any) -> Any:
         raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     if spec.kind is str and section in ("site", "pointing") and not (value.isascii() and value.isprintable()):
         raise ConfigError(f"config {where} = {quoted(value)}: expected printable ASCII (it goes into FITS headers)")
+    if section == "rotator" and key == "endpoint" and isinstance(value, str):
+        if split_host_port(value) is None:
+            raise ConfigError(f"config {where} = {quoted(value)}: expected host:port with a port "
+                              "from 1 to 65535, e.g. '127.0.0.1:4533'")
     if spec.kind is list:
         if key == "spurs_hz":
             return _check_numbers(where, value)
@@ -200,6 +222,43 @@ def _check(section: str, key: str, value: Any) -> Any:
     if spec.lo is not None and value < spec.lo or spec.hi is not None and value > spec.hi:
         raise ConfigError(f"config {where} = {quoted(value)}: expected {spec.allowed()}")
     return value
+
+
+#: Keys that are one pair of numbers: (what the pair is, lowest, highest, the first < the second).
+_PAIRS: dict[tuple[str, str], tuple[str, float, float, bool]] = {
+    ("rotator", "az_range"): ("[lo, hi] in deg", -180.0, 540.0, True),
+    ("rotator", "el_range"): ("[lo, hi] in deg", 0.0, 90.0, True),
+    ("rotator", "park"): ("[az, el] in deg", -180.0, 540.0, False),
+}
+
+
+def _check_pair(where: str, value: Any, what: str, lo: float, hi: float, ordered: bool) -> list:
+    """One pair of finite numbers within [lo, hi] (and first < second when ``ordered``);
+    ``rotator.park``'s elevation is held to 0..90."""
+    ok = (isinstance(value, list) and len(value) == 2
+          and all(isinstance(x, (int, float)) and not isinstance(x, bool) and math.isfinite(x)
+                  for x in value))
+    if ok and ordered:
+        ok = lo <= value[0] < value[1] <= hi
+    elif ok:
+        ok = lo <= value[0] <= hi and 0.0 <= value[1] <= 90.0
+    if not ok:
+        rule = (f"{lo:g} <= lo < hi <= {hi:g}" if ordered
+                else f"az from {lo:g} to {hi:g}, el from 0 to 90")
+        raise ConfigError(f"config {where} = {quoted(value)}: expected {what}, {rule}")
+    return [float(value[0]), float(value[1])]
+
+
+def split_host_port(text: str) -> tuple[str, int] | None:
+    """``"host:port"`` (``"[::1]:4533"`` for IPv6) as ``(host, port)``, or None when it is not
+    one (no host, or a port that is not a whole number from 1 to 65535)."""
+    host, sep, port = text.rpartition(":")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    if (not sep or not host or not host.isascii() or not host.isprintable() or " " in host
+            or not port.isdigit() or not port.isascii() or not 1 <= int(port) <= 65535):
+        return None
+    return host, int(port)
 
 
 def _check_horizon(where: str, value: list) -> list:
@@ -316,6 +375,12 @@ def _cross_checks(cfg: dict) -> None:
     if cfg["publish"]["data"] and cfg["publish"]["data"] == cfg["publish"]["control"]:
         raise ConfigError(f"config publish.control = {cfg['publish']['control']!r}: must differ "
                           "from publish.data")
+    rot = cfg["rotator"]
+    (az_lo, az_hi), (el_lo, el_hi), (park_az, park_el) = rot["az_range"], rot["el_range"], rot["park"]
+    if not (az_lo <= park_az <= az_hi and el_lo <= park_el <= el_hi):
+        raise ConfigError(f"config rotator.park = [{park_az:g}, {park_el:g}]: must lie inside "
+                          f"rotator.az_range = [{az_lo:g}, {az_hi:g}] and rotator.el_range = "
+                          f"[{el_lo:g}, {el_hi:g}]")
     if cfg["baseline"]["mode"] == "windows" and not cfg["baseline"]["windows_km_s"]:
         raise ConfigError("config baseline.windows_km_s is empty: baseline.mode = 'windows' needs "
                           "at least one line-free [lo, hi] window in km/s")

@@ -1,7 +1,7 @@
 #!/usr/bin/env bash
 # Set up spinflip in a virtual environment (.venv) on Debian / Raspberry Pi OS, Python >= 3.11.
-# Idempotent: a second run only checks. Installs python3-venv, tmux and gcc with apt-get when
-# missing (tmux and gcc only for the tests).
+# Idempotent: a second run only checks. Installs python3-venv, tmux, gcc and libhamlib-utils with
+# apt-get when missing (tmux, gcc and libhamlib-utils only for the tests).
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PY=${PYTHON:-python3}
@@ -31,6 +31,12 @@ if ! command -v cc >/dev/null && command -v apt-get >/dev/null; then
   SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
   { $SUDO apt-get update -qq && $SUDO apt-get install -y -qq gcc libc6-dev; } \
     || echo "setup: could not install gcc: tests/test_rtlsdr_emulated.py will fail without it" >&2
+fi
+if ! command -v rotctld >/dev/null && command -v apt-get >/dev/null; then
+  echo "setup: installing libhamlib-utils with apt-get (the pointing tests drive its rotctld)" >&2
+  SUDO=""; [ "$(id -u)" -ne 0 ] && SUDO="sudo"
+  { $SUDO apt-get update -qq && $SUDO apt-get install -y -qq libhamlib-utils; } \
+    || echo "setup: could not install libhamlib-utils: tests/test_mount.py will fail without rotctld" >&2
 fi
 stamp=.venv/.spinflip-installed
 if [ ! -f "$stamp" ] || [ pyproject.toml -nt "$stamp" ]; then

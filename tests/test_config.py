@@ -146,3 +146,56 @@ def test_a_huge_file_is_refused_before_it_is_parsed(tmp_path):
     f.write_text("# " + "x" * 2_000_000 + "\n")
     with pytest.raises(config.ConfigError, match="larger than 1000 kB"):
         config.load(f)
+
+
+# -- pointing drivers (issue 14, part 4) ---------------------------------------------------------
+@pytest.mark.parametrize("text, message", [
+    ("[pointing]\ndriver = 'telescope'\n",
+     "config pointing.driver = 'telescope': expected one of 'none', 'manual', 'rotator'"),
+    ("[rotator]\nendpoint = 'localhost'\n",
+     "config rotator.endpoint = 'localhost': expected host:port with a port from 1 to 65535, "
+     "e.g. '127.0.0.1:4533'"),
+    ("[rotator]\nendpoint = 'localhost:70000'\n",
+     "config rotator.endpoint = 'localhost:70000': expected host:port with a port from 1 to "
+     "65535, e.g. '127.0.0.1:4533'"),
+    ("[rotator]\ntolerance_deg = 0\n",
+     "config rotator.tolerance_deg = 0.0: expected a number from 0.01 to 30"),
+    ("[rotator]\ntimeout_s = 0.5\n", "config rotator.timeout_s = 0.5: expected a number from 1 to 3600"),
+    ("[rotator]\nanswer_s = 61\n", "config rotator.answer_s = 61.0: expected a number from 0.1 to 60"),
+    ("[rotator]\npoll_s = 0.01\n", "config rotator.poll_s = 0.01: expected a number from 0.05 to 10"),
+    ("[rotator]\ntrack_fraction = 2\n",
+     "config rotator.track_fraction = 2.0: expected a number from 0.01 to 1"),
+    ("[rotator]\naz_range = [180, 0]\n",
+     "config rotator.az_range = [180, 0]: expected [lo, hi] in deg, -180 <= lo < hi <= 540"),
+    ("[rotator]\naz_range = [-200, 200]\n",
+     "config rotator.az_range = [-200, 200]: expected [lo, hi] in deg, -180 <= lo < hi <= 540"),
+    ("[rotator]\naz_range = 360\n",
+     "config rotator.az_range = 360: expected [lo, hi] in deg, -180 <= lo < hi <= 540"),
+    ("[rotator]\nel_range = [0, 95]\n",
+     "config rotator.el_range = [0, 95]: expected [lo, hi] in deg, 0 <= lo < hi <= 90"),
+    ("[rotator]\npark = [0, 'up']\n",
+     "config rotator.park = [0, 'up']: expected [az, el] in deg, az from -180 to 540, el from 0 to 90"),
+    ("[rotator]\naz_range = [0, 180]\npark = [270, 90]\n",
+     "config rotator.park = [270, 90]: must lie inside rotator.az_range = [0, 180] and "
+     "rotator.el_range = [0, 90]"),
+    ("[rotator]\nel_range = [10, 80]\n",
+     "config rotator.park = [0, 90]: must lie inside rotator.az_range = [0, 360] and "
+     "rotator.el_range = [10, 80]"),
+])
+def test_pointing_driver_and_rotator_keys_are_checked(tmp_path, text, message):
+    f = tmp_path / "c.toml"
+    f.write_text(text)
+    with pytest.raises(config.ConfigError) as err:
+        config.load(f)
+    assert str(err.value) == message
+
+
+def test_rotator_keys_are_read(tmp_path):
+    f = tmp_path / "c.toml"
+    f.write_text("[pointing]\ndriver = 'rotator'\n[rotator]\nendpoint = '[::1]:4533'\n"
+                 "az_range = [-180, 450]\nel_range = [5, 85]\npark = [-90, 85]\n")
+    cfg = config.load(f)
+    assert cfg["pointing"]["driver"] == "rotator"
+    assert cfg["rotator"]["az_range"] == [-180.0, 450.0] and cfg["rotator"]["park"] == [-90.0, 85.0]
+    assert config.split_host_port(cfg["rotator"]["endpoint"]) == ("::1", 4533)
+    assert config.load(None)["pointing"]["driver"] == "none"

@@ -1,1 +1,2 @@
-"""Pointing drivers: a rotator behind rotctld, a hand-pointed dish, a fixed one (base.py)."""
+"""Pointing drivers: a rotator behind rotctld, a hand-pointed dish, a fixed one (base.py);
+the one for ``[pointing] driver`` from ``factory.make_mount``."""
