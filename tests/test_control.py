@@ -222,7 +222,8 @@ def test_size_limit_is_inclusive():
 def test_commands_table_is_complete():
     # The command set of issue5_shared.md, each with a one-line description.
     assert set(COMMANDS) == {"status", "start", "stop", "pause", "resume", "new_scan",
-                             "calibrate", "point", "set_integration", "annotate", "pointed"}
+                             "calibrate", "point", "set_integration", "annotate", "plan", "skip", "abort", "park",
+                             "pointed"}
     for spec in COMMANDS.values():
         assert spec.doc and "\n" not in spec.doc
         for arg in spec.args.values():

@@ -26,12 +26,13 @@ from spinflip.daemon.mount.base import (
     PointAgain,
     separation_deg,
 )
-from spinflip.daemon.mount.beam import beam_fwhm_deg, tracking_step_deg
+from spinflip.daemon.mount.beam import tracking_step_deg
 from spinflip.daemon.mount.factory import make_mount
 from spinflip.daemon.mount.fixed import FixedMount
 from spinflip.daemon.mount.manual import ManualMount
 from spinflip.daemon.mount.rotator import RotatorMount, command_az
 from spinflip.daemon.mount.rotctld import RotctldClient
+from spinflip.daemon.sky.beam import beamwidth_deg as beam_fwhm_deg
 
 
 class RecordingClient(RotctldClient):

@@ -66,6 +66,8 @@ Kalberla, P. M. W. et al. 2005, A&A 440, 775 (Leiden/Argentine/Bonn HI survey; f
 
 from __future__ import annotations
 
+__all__ = ["DEFAULT_BEAMWIDTH_FACTOR", "beamwidth_deg"]  # re-exported: the beam lives in sky/beam.py
+
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
@@ -76,13 +78,11 @@ from spinflip.daemon.products.line_integral import (
     K_TOTAL_POWER,
     radiometer_noise_k,
 )
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
+from spinflip.daemon.sky.beam import DEFAULT_BEAMWIDTH_FACTOR, beamwidth_deg
 
 #: Boltzmann constant, J/K (exact, SI 2019).
 BOLTZMANN_J_K = 1.380649e-23
 
-#: HPBW = factor lambda / D for a tapered dish illumination (common practice).
-DEFAULT_BEAMWIDTH_FACTOR = 1.2
 
 
 def db_to_linear(value_db: float) -> float:
@@ -181,29 +181,6 @@ def friis_cascade_k(noise_temps_k: Sequence[float], gains: Sequence[float]) -> C
         after.append(g_before)
     return Cascade(total_k=math.fsum(contributions), contributions_k=tuple(contributions),
                    gains_before=tuple(before), cumulative_gains=tuple(after))
-
-
-def beamwidth_deg(dish_diameter_m: float, freq_hz: float = HI_REST_FREQ_HZ,
-                  factor: float = DEFAULT_BEAMWIDTH_FACTOR) -> float:
-    """Half-power beam width HPBW = factor lambda / D, degrees.
-
-    Parameters
-    ----------
-    dish_diameter_m : float
-        Aperture diameter D, m (> 0).
-    freq_hz : float
-        Frequency, Hz (default the HI line, 1420.405751768 MHz); lambda = c / freq.
-    factor : float
-        1.2 for a usual edge-tapered illumination (common practice); 1.02 would be a uniformly
-        illuminated circular aperture.
-
-    Returns
-    -------
-    float
-        HPBW, degrees.
-    """
-    wavelength_m = C_M_S / float(freq_hz)                   # lambda = c / nu
-    return math.degrees(float(factor) * wavelength_m / float(dish_diameter_m))
 
 
 def noise_power_dbm(noise_temp_k: float, bandwidth_hz: float, gain_db: float = 0.0) -> float:

@@ -1,26 +1,9 @@
-"""The beam of the dish at the HI line, and the tracking step a pointing driver works to.
-
-The half-power beam width of a parabolic dish is ``FWHM = k * lambda / D`` rad. ``k`` depends
-on how the feed illuminates the aperture: about 1.02 for a uniform one, more for a tapered
-one; ``k = 1.2`` is common practice for the edge tapers of small dishes (values from memory,
-standard antenna texts). The simulator uses the same width (``sources/sim.py``).
-"""
+"""The tracking step a pointing driver works to, from the beam width
+(:func:`spinflip.daemon.sky.beam.beamwidth_deg`)."""
 
 from __future__ import annotations
 
-import math
-
-from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
-
-#: The factor k in FWHM = k * lambda / D (a tapered illumination; common practice).
-BEAM_FACTOR = 1.2
-
-
-def beam_fwhm_deg(dish_diameter_m: float) -> float:
-    """Half-power beam width at 1420.405751768 MHz of a dish of this diameter, deg
-    (``1.2 * lambda / D``; lambda = c / f = 0.2111 m)."""
-    lam = C_M_S / HI_REST_FREQ_HZ
-    return math.degrees(BEAM_FACTOR * lam / dish_diameter_m)
+from spinflip.daemon.sky.beam import beamwidth_deg
 
 
 def tracking_step_deg(cfg: dict) -> float:
@@ -32,5 +15,5 @@ def tracking_step_deg(cfg: dict) -> float:
     the tolerance keeps a commanded position within the tolerance of the target.
     """
     rot = cfg["rotator"]
-    fwhm = beam_fwhm_deg(cfg["site"]["dish_diameter_m"])
+    fwhm = beamwidth_deg(cfg["site"]["dish_diameter_m"])
     return min(rot["track_fraction"] * fwhm, rot["tolerance_deg"] / 2.0)

@@ -11,7 +11,7 @@ import threading
 from collections.abc import Callable
 
 from spinflip.daemon.mount.base import AzEl, MountStatus
-from spinflip.daemon.mount.beam import beam_fwhm_deg
+from spinflip.daemon.sky.beam import beamwidth_deg
 
 
 class FixedMount:
@@ -21,7 +21,7 @@ class FixedMount:
 
     def __init__(self, cfg: dict) -> None:
         #: Half the beam FWHM, as for a hand-pointed dish (nothing is compared against it here).
-        self.tolerance_deg = beam_fwhm_deg(cfg["site"]["dish_diameter_m"]) / 2.0
+        self.tolerance_deg = beamwidth_deg(cfg["site"]["dish_diameter_m"]) / 2.0
         self._lock = threading.Lock()
         self._state = "idle"
         self._pos: AzEl | None = None

@@ -22,7 +22,7 @@ from spinflip.daemon.mount.base import (
     PointAgain,
     separation_deg,
 )
-from spinflip.daemon.mount.beam import beam_fwhm_deg
+from spinflip.daemon.sky.beam import beamwidth_deg
 
 #: How often a waiting acquire looks at its cancel event, s.
 CANCEL_POLL_S = 0.05
@@ -50,7 +50,7 @@ class ManualMount:
 
     def __init__(self, cfg: dict, prompt: Callable[[str], None]) -> None:
         self.prompt = prompt
-        self.beam_fwhm_deg = beam_fwhm_deg(cfg["site"]["dish_diameter_m"])
+        self.beam_fwhm_deg = beamwidth_deg(cfg["site"]["dish_diameter_m"])
         #: The target may drift this far from where the dish was pointed: half the beam FWHM.
         self.tolerance_deg = self.beam_fwhm_deg / 2.0
         self._lock = threading.Lock()

@@ -72,8 +72,8 @@ from spinflip.daemon.dsp.spectrometer import FlagSettings, Integration, Spectrom
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.messages import RunningAverage, spectrum_message
 from spinflip.daemon.live.schema import State
-from spinflip.daemon.mount.factory import make_mount
 from spinflip.daemon.mount.base import Mount, MountCancelled, MountError
+from spinflip.daemon.mount.factory import make_mount
 from spinflip.daemon.products.row import Row
 from spinflip.daemon.products.scan_average import scan_products
 from spinflip.daemon.rfi.interference import Interference
@@ -454,10 +454,10 @@ class Daemon:
         visit.scan = self.scan_name
         self.state = State.OBSERVING
         self._next_firing_s = math.inf
-        if t.cal_interval_s is not None and self.source.can_fire_noise_source() \
-                and self.tsys_plan.kind == "noise_source":
-            self.source.request_firing()              # a fresh T_sys on each target
-            self._next_firing_s = float(self.now().unix) + t.cal_interval_s
+        if self.source.can_fire_noise_source() and self.tsys_plan.kind == "noise_source":
+            self.source.request_firing()     # a fresh T_sys on each target (common practice)
+            if t.cal_interval_s is not None:
+                self._next_firing_s = float(self.now().unix) + t.cal_interval_s
 
     def _count_visit(self, visit: Visit, block: Block) -> None:
         """One more on-source block; the visit ends at its on-source time."""

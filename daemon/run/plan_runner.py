@@ -197,6 +197,7 @@ class PlanRunner:
     # -- the thread ------------------------------------------------------------------------
     def run(self) -> None:
         loop = self.loop
+        self._find_dish()
         while not loop.stop_event.is_set() and not self.finished.is_set():
             if self.phase == "parked":
                 self._wait_for_resume()
@@ -229,6 +230,26 @@ class PlanRunner:
         finally:
             self.visit = None
 
+    def _find_dish(self) -> None:
+        """Before the first schedule: where the rotator is (the first slew counts), waiting
+        for it to answer (said once when it does not at once)."""
+        if self.mount.driver != "rotator" or self._dish() is not None:
+            return
+        self.phase = "waiting"
+        loop = self.loop
+        loop.source.set_real_time(True)
+        slow = threading.Timer(2 * loop.cfg["rotator"]["answer_s"], lambda: loop.event(
+            "warning", f"the rotator at {loop.cfg['rotator']['endpoint']} does not answer: "
+            f"plan {self.plan.name!r} waits for it"))
+        slow.daemon = True
+        slow.start()
+        try:
+            self.mount.wait_until_answering(self.cancel)
+        finally:
+            slow.cancel()
+            loop.source.set_real_time(False)
+        self.phase = "deferred"
+
     # -- steps of a visit ------------------------------------------------------------------
     def _next(self) -> Entry | None:
         """The first scheduled visit from now (None: nothing left that can be observed)."""
@@ -240,7 +261,7 @@ class PlanRunner:
         here = self._dish()
         entries = schedule(self.plan, self.loop.location, self.loop.now(), self.limits,
                            park=(here.az_deg, here.el_deg) if here is not None else None,
-                           done=self._ended)
+                           ended=self._ended)
         self.upcoming = [e for e in entries if e.status == "scheduled"]
         self.skipped = [e for e in entries if e.status == "skipped"]
         return self.upcoming[0] if self.upcoming else None

@@ -17,6 +17,7 @@ from typing import TYPE_CHECKING, Any
 from spinflip.daemon.config import ConfigError
 from spinflip.daemon.live.schema import State
 from spinflip.daemon.mount.base import AzEl
+from spinflip.daemon.mount.manual import ManualMount
 from spinflip.daemon.sky.pointing import Pointing
 from spinflip.daemon.storage.items import Note
 
@@ -176,14 +177,14 @@ class ScanControl:
         if cmd == "plan":
             loop.load_plan(str(args["path"]))
         elif cmd == "pointed":
-            if loop.mount.driver != "manual":
+            if not isinstance(loop.mount, ManualMount):
                 raise ValueError(f"pointed: pointing.driver = '{loop.mount.driver}': only a "
                                  "dish pointed by hand (driver = 'manual') is confirmed")
             az, el = args.get("az_deg"), args.get("el_deg")
             if (az is None) != (el is None):
                 raise ValueError("pointed: give both az_deg and el_deg, or neither (the dish "
                                  "is where it was asked to point)")
-            loop.mount.confirm(None if az is None else AzEl(float(az), float(el)))
+            loop.mount.confirm(None if az is None or el is None else AzEl(float(az), float(el)))
         elif runner is None:
             if cmd != "park":
                 raise ValueError(f"{cmd}: no plan is running")

@@ -59,8 +59,8 @@ def limits_from_config(cfg: dict) -> Limits:
     return Limits(min_elevation_deg=p["min_elevation"], sun_avoid_deg=p["sun_avoid_deg"],
                   horizon=tuple((float(a), float(e)) for a, e in p["horizon"]),
                   slew_deg_s=p["slew_deg_s"], settle_s=p["settle_s"],
-                  az_range=tuple(rot["az_range"]) if rot else None,   # type: ignore[arg-type]
-                  el_range=tuple(rot["el_range"]) if rot else None)   # type: ignore[arg-type]
+                  az_range=(rot["az_range"][0], rot["az_range"][1]) if rot else None,
+                  el_range=(rot["el_range"][0], rot["el_range"][1]) if rot else None)
 
 
 def outside_mount(limits: Limits, az_deg: np.ndarray, el_deg: np.ndarray) -> np.ndarray:
@@ -157,7 +157,7 @@ def azel(targets: list[Target], location: EarthLocation, times: Time
 
 def schedule(plan: Plan, location: EarthLocation, start: Time, limits: Limits,
              park: tuple[float, float] | None = None,
-             done: Callable[[Target, int], bool] | None = None) -> list[Entry]:
+             ended: Callable[[Target, int], bool] | None = None) -> list[Entry]:
     """The plan's visits in the order they would be observed, then the skipped ones.
 
     Parameters
@@ -167,7 +167,7 @@ def schedule(plan: Plan, location: EarthLocation, start: Time, limits: Limits,
     start : UTC time the schedule starts
     limits : elevation, Sun, horizon and mount limits
     park : (az, el) where the dish is at the start (None: the first slew is not counted)
-    done : callable(target, visit) -> True for a visit that has ended already (a plan resumed
+    ended : callable(target, visit) -> True for a visit that has ended already (a plan resumed
         or under way): left out
     """
     t0 = start
@@ -176,7 +176,7 @@ def schedule(plan: Plan, location: EarthLocation, start: Time, limits: Limits,
     t_end = (Time(plan.end, scale="utc") if plan.end is not None
              else t0 + TimeDelta(limits.max_hours * 3600.0, format="sec"))
     todo = [_Visit(t, k) for t in plan.targets for k in range(1, t.repeat + 1)
-            if done is None or not done(t, k)]
+            if ended is None or not ended(t, k)]
     done: list[Entry] = []
     now, here = t0, park
     while todo and now < t_end:

@@ -49,6 +49,7 @@ from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.samples import complex_to_u8
 from spinflip.daemon.dsp.switching import Schedule
 from spinflip.daemon.sky import coordinates
+from spinflip.daemon.sky.beam import beamwidth_deg
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sources.base import FiresNoiseSource, SourceError
 from spinflip.daemon.sources.galaxy import ModelGalaxy
@@ -144,8 +145,7 @@ class SimSource(FiresNoiseSource):
         self._live = start == "now"
         self.clock: SampleClock | None = None
         self.galaxy = ModelGalaxy()
-        lam = C_M_S / HI_REST_FREQ_HZ
-        self.beam_fwhm_deg = float(np.degrees(1.2 * lam / site["dish_diameter_m"]))
+        self.beam_fwhm_deg = beamwidth_deg(site["dish_diameter_m"])
         self.base_freq = scipy.fft.fftfreq(_CHUNK, 1.0 / self.fs)
         self.bandpass = tuner_bandpass(self.base_freq, self.fs)
         self.amplitude = _RMS_REF * 10 ** ((src["gain"] - _GAIN_REF_DB) / 20)
