@@ -160,6 +160,7 @@ def scan_header(cfg: dict, schedule: Schedule, source_kind: str, block_s: float,
     head = {
         "TELESCOP": site["telescope"], "SITENAME": site["name"],
         "SITELAT": site["lat"], "SITELONG": site["lon"], "SITEELEV": site["height_m"],
+        "DISHDIAM": site["dish_diameter_m"],
         "SPECSYS": "TOPOCENT", "SSYSOBS": "TOPOCENT", "VELDEF": "RADI-LSR", "BUNIT": unit,
         "CTYPE1A": "VRAD", "CUNIT1A": "m/s", "SPECSYSA": "LSRK",
         "SOURCE": source_kind, "SWMODE": sch.mode, "SWOFFSET": sch.shift_channels *
