@@ -55,6 +55,19 @@ def build_parser() -> argparse.ArgumentParser:
                    "and exit; a plan interrupted by a restart resumes where it stopped")
     r.add_argument("--sample-rate", type=float, metavar="HZ", help="overrides [source] sample_rate")
     r.add_argument("--center-freq", type=float, metavar="HZ", help="overrides [source] center_freq")
+    rd = sub.add_parser("reduce", help="scans to stacks, the l-v diagram, the rotation curve and "
+                        "a face-on HI map")
+    rd.add_argument("folders", nargs="+", metavar="DIR", help="folders of scans (searched "
+                    "recursively; journals left by a crash too)")
+    rd.add_argument("--out", metavar="DIR", help="output folder (default DIR/reduced of the first)")
+    rd.add_argument("--constants", default="iau1985", metavar="NAME",
+                    help="Galactic constants: iau1985 (R0 8.5 kpc, 220 km/s) or maser2014 "
+                    "(8.34 kpc, 240 km/s)")
+    rd.add_argument("--curve", default="flat", metavar="flat|measured",
+                    help="rotation curve for the kinematic distances: flat at Theta0 or the one "
+                    "measured (default flat)")
+    rd.add_argument("--jobs", type=int, metavar="N", help="worker processes (default: the cores)")
+    rd.add_argument("--json", action="store_true", help="a JSON summary on standard output")
     lo = sub.add_parser("loads", help="hot/cold-load (Y-factor) calibration, guided step by step")
     lo.add_argument("--config", metavar="FILE", help="TOML configuration (every key has a default)")
     lo.add_argument("--source", metavar="SRC", help="sim or rtlsdr (overrides [source] kind)")
@@ -178,6 +191,28 @@ def _cmd_run(args: argparse.Namespace) -> int:
         _report_saved(daemon.result, daemon.out_dir)
     if result.lost_samples:
         print(f"warning: {result.lost_samples} samples lost", file=sys.stderr)
+    return 0
+
+
+def _cmd_reduce(args: argparse.Namespace) -> int:
+    from spinflip.reduce.command import reduce_folders
+    if args.jobs is not None and args.jobs < 1:
+        raise ValueError(f"--jobs {args.jobs}: expected 1 or more")
+    warnings: list[str] = []
+
+    def warn(text: str) -> None:
+        warnings.append(text)
+        print(f"warning: {text}", file=sys.stderr)
+    result = reduce_folders(args.folders, args.out, args.constants, args.curve, args.jobs,
+                            progress=not args.json and sys.stderr.isatty(), warn=warn)
+    if args.json:
+        print(json.dumps(result.as_json(), indent=2))
+    else:
+        print(f"reduced {result.scans_used} scans ({result.rows_used} rows) into "
+              f"{result.targets} targets and {result.points} tangent points in "
+              f"{result.seconds:.1f} s; {len(result.left_out)} files left out")
+        for f in result.files:
+            print(f"wrote {f}")
     return 0
 
 
@@ -316,7 +351,7 @@ def _cmd_bench(args: argparse.Namespace) -> int:
 
 def main(argv: Sequence[str] | None = None) -> int:
     args = build_parser().parse_args(argv)
-    handler = {"run": _cmd_run, "loads": _cmd_loads, "inspect": _cmd_inspect, "plan": _cmd_plan,
+    handler = {"run": _cmd_run, "reduce": _cmd_reduce, "loads": _cmd_loads, "inspect": _cmd_inspect, "plan": _cmd_plan,
                "bench": _cmd_bench, "ctl": _cmd_ctl, "keys": _cmd_keys,
                "watch": _cmd_watch, "demo": _cmd_demo,
                "collect": _cmd_collect, "chain": _cmd_chain, "doctor": _cmd_doctor,

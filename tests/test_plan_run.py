@@ -344,11 +344,13 @@ def test_bad_plan_files_give_one_line_exit_2_and_write_nothing(tmp_path, text, w
 
 
 def test_a_fixed_dish_refuses_a_plan_of_moving_targets(tmp_path):
+    """With a dongle (the simulator's dish follows any target); refused before it is opened."""
     plan = tmp_path / "p.toml"
     plan.write_text('name = "x"\n[[target]]\nframe = "galactic"\nlon = 30\nlat = 0\n'
                     'seconds = 5\n')
-    res = run_cli_inprocess(["run", "--plan", str(plan), "--fast", "--config",
-                             str(station_config(tmp_path, "none")), "--out",
+    cfg = station_config(tmp_path, "none", extra='[calibration]\ntsys_from = "fixed"\n')
+    res = run_cli_inprocess(["run", "--plan", str(plan), "--source", "rtlsdr", "--config",
+                             str(cfg), "--out",
                              str(tmp_path / "out")])
     assert res.returncode == 2
     assert "pointing.driver = 'none' is a fixed dish" in res.stderr

@@ -123,9 +123,10 @@ def check_output_dir(path: Path) -> Path:
     return path
 
 
-def check_plan_for_mount(plan: Plan, driver: str) -> None:
-    """A fixed dish (driver "none") observes drift targets only: refuse others in one line."""
-    if driver != "none":
+def check_plan_for_mount(plan: Plan, driver: str, source_kind: str) -> None:
+    """A fixed dish (driver "none") observes drift targets only: refuse others in one line.
+    The simulator's dish follows any target (for demos, tests and simulated surveys)."""
+    if driver != "none" or source_kind == "sim":
         return
     for t in plan.targets:
         if t.frame != "azel":
@@ -174,7 +175,7 @@ class Daemon:
             raise ConfigError("source.kind = 'replay' replays a capture whose pointing is fixed:"
                               " plans and pointing drivers need the simulator or a dongle")
         if plan is not None:
-            check_plan_for_mount(plan, self.mount.driver)
+            check_plan_for_mount(plan, self.mount.driver, self.source.kind)
             self.runner = self._runner_for(plan, exit_at_end=True)
         elif self.mount.driver != "none":          # the dish goes to [pointing] first
             self.runner = self._runner_for(self._pointing_plan(), exit_at_end=False)
@@ -411,7 +412,7 @@ class Daemon:
         if self.runner is not None and not self.runner.finished.is_set():
             raise ValueError(f"plan: plan {self.runner.plan.name!r} is running: abort it first")
         plan = load_plan(path)
-        check_plan_for_mount(plan, self.mount.driver)
+        check_plan_for_mount(plan, self.mount.driver, self.source.kind)
         if self.scan_name is not None:
             self.end_integration("a plan was loaded")
             self.close_scan()
