@@ -148,7 +148,7 @@ def reduce_folders(folders: Sequence[str | Path], out: str | Path | None = None,
             warn("--curve measured: fewer than two tangent points; the face-on map uses a flat "
                  "curve")
         else:
-            rc = tangent.curve_function(points, consts)
+            rc = tangent.interpolated_curve(points, consts)
     facemap = faceon.face_on_map(stacks, consts, rc)
     result.faceon_left_out = dict(facemap.left_out)
     image = lv.lv_image(stacks)
