@@ -86,6 +86,7 @@ from spinflip.daemon.products.baseline import fit_baseline
 from spinflip.daemon.products.line_integral import column_density_cm2, integrated_intensity_k_km_s
 from spinflip.daemon.products.scan_average import expected_emission, fill_short_gaps
 from spinflip.daemon.sky.hi_line import C_M_S
+from spinflip.daemon.sky.kinematics import expected_velocity_range_km_s
 from spinflip.reduce.grouping import group_object
 from spinflip.reduce.profile import Stack
 from spinflip.reduce.scans import ScanRows, mean_position_deg
@@ -186,7 +187,8 @@ def _accumulate(scan: ScanRows, s_factor: float, grid: np.ndarray, num: np.ndarr
     k_first = np.where(neg, nchan - 1.0, 0.0)
     v_first = (scan.vel_crval_m_s / 1e3 + (k_first + 1.0 - scan.crpix) * dv)   # lowest v
     p = (grid[None, :] - v_first[:, None]) / np.abs(dv)[:, None]   # ascending index
-    eps = 1e-9
+    eps = 1e-6                               # a millionth of a channel: on the channel
+    p = np.where(np.abs(p - np.rint(p)) < eps, np.rint(p), p)
     covered = (p >= -eps) & (p <= nchan - 1 + eps)
     k0 = np.clip(np.floor(p), 0, nchan - 2).astype(np.int64)
     f = np.clip(p - k0, 0.0, 1.0)
@@ -307,14 +309,16 @@ def stack_target_details(scans: Sequence[ScanRows], *, grid_step_km_s: float | N
     sigma = sigma * scale
 
     # line integral over the expected emission range, clipped to the grid
-    if line.any():
-        half = 0.5 * (grid[1] - grid[0])
-        wlo = float(grid[line].min() - half)
-        whi = float(grid[line].max() + half)
-        filled, _n = fill_short_gaps(resid, line)      # gaps of <= 8 channels, as the daemon
-        sig_f, _n = fill_short_gaps(sigma, line)
-        window = line & np.isfinite(filled)
-        line_window = (wlo, whi)
+    half = 0.5 * (grid[1] - grid[0])
+    lo, hi = expected_velocity_range_km_s(glon, glat)
+    lo, hi = max(lo, float(grid[0] - half)), min(hi, float(grid[-1] + half))
+    if lo < hi:
+        ov = _overlap_widths(grid, lo, hi)
+        inside = ov > 0
+        filled, _n = fill_short_gaps(resid, inside)      # gaps of <= 8 channels, as the daemon
+        sig_f, _n = fill_short_gaps(sigma, inside)
+        window = inside & np.isfinite(filled)
+        line_window = (lo, hi)
     else:
         window = np.zeros(ng, dtype=bool)
         line_window = (math.nan, math.nan)
@@ -322,7 +326,6 @@ def stack_target_details(scans: Sequence[ScanRows], *, grid_step_km_s: float | N
         integral = integrated_intensity_k_km_s(np.where(window, filled, 0.0), grid,
                                                good=window, v_range_km_s=line_window)
         w_k_km_s = integral.integral_k_km_s
-        ov = _overlap_widths(grid, *line_window)
         w_err = float(np.sqrt(np.sum((np.where(window, sig_f, 0.0) * ov) ** 2)))
     else:
         w_k_km_s, w_err = math.nan, math.nan
