@@ -27,6 +27,7 @@ from collections.abc import Callable, Iterator, Sequence
 from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 from spinflip.reduce import faceon, grouping, lv, outputs, scans, stack, tangent
 from spinflip.reduce.constants import CONSTANTS, GalacticConstants
@@ -80,7 +81,10 @@ def _stack_group(paths: Sequence[str]) -> tuple[Stack | None, list[tuple[str, st
             rows.append(item)
     if not rows:
         return None, bad
-    return stack.stack_target(rows), bad
+    try:
+        return stack.stack_target(rows), bad
+    except ValueError as exc:            # one line: what made the group unusable
+        return None, bad + [(", ".join(Path(p).name for p in paths), str(exc))]
 
 
 def reduce_folders(folders: Sequence[str | Path], out: str | Path | None = None,
@@ -105,7 +109,12 @@ def reduce_folders(folders: Sequence[str | Path], out: str | Path | None = None,
     except OSError as exc:
         raise ReduceError(f"--out {out_dir}: cannot be made ({exc.strerror or exc})") from None
     result = ReduceResult(out=out_dir)
-    paths = scans.scan_paths(dirs, skip=out_dir)
+    paths: list[Path] = []
+    for item in scans.find_scan_files(dirs):
+        if isinstance(item, scans.Unusable):
+            result.left_out.append((str(item.path), item.reason))
+        elif out_dir.resolve() not in item.resolve().parents:    # not our own products
+            paths.append(item)
     if not paths:
         raise ReduceError(f"{', '.join(str(d) for d in dirs)}: no spinflip scan "
                           "(scan-*.fits or scan-*.journal) found")
@@ -120,7 +129,14 @@ def reduce_folders(folders: Sequence[str | Path], out: str | Path | None = None,
                 result.left_out.append((str(item.path), item.reason))
             else:
                 summaries.append(item)
-        usable = scans.same_rest_frequency(summaries, result.left_out)
+        check = scans.RestFrequencyCheck()
+        usable = []
+        for summary in summaries:
+            bad = check(summary.path, summary.restfreq_hz)
+            if bad is not None:
+                result.left_out.append((str(bad.path), bad.reason))
+            else:
+                usable.append(summary)
         groups = grouping.group_by_target(usable)
         task = bar.add_task("stacking targets", total=len(groups))
         stacks: list[Stack] = []
@@ -153,7 +169,7 @@ def reduce_folders(folders: Sequence[str | Path], out: str | Path | None = None,
     result.faceon_left_out = dict(facemap.left_out)
     image = lv.lv_image(stacks)
     # 3. the files
-    from spinflip.reduce import plots      # matplotlib only here
+    from spinflip.reduce import plots  # matplotlib only here
     result.files.append(outputs.write_fits(out_dir / "reduction.fits", stacks, points, facemap,
                                            consts))
     result.files.extend(outputs.write_csvs(out_dir, stacks, points, facemap))
@@ -195,7 +211,7 @@ class _progress:
 
     def __init__(self, show: bool):
         self.show = show
-        self.bar = None
+        self.bar: Any = None
 
     def __enter__(self) -> _progress:
         if self.show:

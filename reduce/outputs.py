@@ -30,11 +30,11 @@ import numpy as np
 from astropy.io import fits
 
 from spinflip import __version__
+from spinflip.daemon.storage.durable import replace_atomically
 from spinflip.reduce.constants import GalacticConstants
 from spinflip.reduce.faceon import FaceOnMap
 from spinflip.reduce.profile import Stack
 from spinflip.reduce.tangent import TerminalPoint
-from spinflip.daemon.storage.durable import replace_atomically
 
 #: rotation-curve.csv: the columns the issue names first, then the rest.
 ROTATION_COLUMNS = ("glon_deg", "r_kpc", "v_terminal_km_s", "theta_km_s", "theta_err_km_s",
@@ -45,7 +45,7 @@ TARGET_COLUMNS = ("object", "glon_deg", "glat_deg", "n_scans", "n_rows", "exposu
                   "v_line_hi_km_s")
 
 
-def _csv(path: Path, header: Sequence[str], rows: list[Sequence]) -> Path:
+def _csv(path: Path, header: Sequence[str], rows: Sequence[Sequence]) -> Path:
     """Write a CSV file whole (atomically): a header line, then the rows."""
     import io
     buf = io.StringIO()
@@ -107,7 +107,7 @@ def write_fits(path: Path, stacks: Sequence[Stack], points: Sequence[TerminalPoi
             ("W", "D", "K km/s"), ("W_ERR", "D", "K km/s"), ("NHI", "D", "cm-2"),
             ("NHI_ERR", "D", "cm-2"), ("VLINE1", "D", "km/s"), ("VLINE2", "D", "km/s"),
             ("BLORDER", "J", None), ("PROFILE", "A16", None)]
-    values = list(zip(*[(s.object, s.glon_deg, s.glat_deg, s.n_scans, s.n_rows, s.exposure_s,
+    values: list = list(zip(*[(s.object, s.glon_deg, s.glat_deg, s.n_scans, s.n_rows, s.exposure_s,
                          s.w_k_km_s, s.w_err_k_km_s, s.nhi_cm2, s.nhi_err_cm2,
                          s.line_window_km_s[0], s.line_window_km_s[1], s.baseline_order,
                          f"PROFILE {i + 1}") for i, s in enumerate(stacks)], strict=True)) \
@@ -163,9 +163,9 @@ def write_fits(path: Path, stacks: Sequence[Stack], points: Sequence[TerminalPoi
         hdus.append(img)
     tmp = path.with_name(path.name + ".part")
     fits.HDUList(hdus).writeto(tmp, overwrite=True)
-    data = tmp.read_bytes()
+    blob = tmp.read_bytes()
     tmp.unlink()
-    replace_atomically(path, data)
+    replace_atomically(path, blob)
     return path
 
 

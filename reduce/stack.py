@@ -45,7 +45,10 @@ fit, sigma is scaled by the measured noise: the robust rms (1.4826 MAD) of the r
 units of their predicted sigma, corrected for the degrees of freedom of the fit
 (sqrt(n / (n - order - 1))). This folds in what the radiometer prediction leaves out (the
 switching factor of a folded spectrum, the channel's equivalent noise bandwidth, residual
-interference). With fewer, sigma stays the radiometer prediction;
+interference). With fewer (a folded spectrum whose line and ghosts fill the band), the scale
+comes from the robust rms of channel-to-channel differences, which an HI profile barely
+changes over one channel; only when that cannot be had either does sigma stay the radiometer
+prediction;
 :attr:`StackDetails.noise_source` says which ("measured" or "radiometer").
 
 Brightness temperature
@@ -102,7 +105,8 @@ class StackDetails:
     """How a stack was made, beside the :class:`~spinflip.reduce.profile.Stack` itself.
 
     ``noise_source``: "measured" (sigma scaled by ``noise_scale`` = measured / predicted rms
-    over ``n_line_free`` line-free channels) or "radiometer" (``noise_scale`` 1).
+    over ``n_line_free`` line-free channels), "differences" (no line-free stretch: scaled by the
+    robust rms of channel-to-channel differences) or "radiometer" (``noise_scale`` 1).
     ``predicted_rms_k``/``measured_rms_k``: median predicted sigma and the measured rms over
     the line-free channels (NaN when not measured). ``line_free`` marks them on the grid;
     ``line_window`` the channels of the line window. ``baseline_rms_k``: rms of the residuals
@@ -304,8 +308,22 @@ def stack_target_details(scans: Sequence[ScanRows], *, grid_step_km_s: float | N
             scale, source = float(ratio), "measured"
             meas_rms = pred_rms * scale
     elif scale_noise:
-        notes.append(f"noise from the radiometer equation: {n_lf} line-free channels, "
-                     f"need {max(int(min_line_free), n_par + 2)} to measure it")
+        # no line-free stretch (a folded spectrum whose line and ghosts fill the band): the
+        # noise from channel-to-channel differences, d_j = T_j+1 - T_j, var d = s_j^2 + s_j+1^2
+        # for independent channels; an HI profile changes little over one channel, so the
+        # differences are noise (common practice); robust against the line's steep edges
+        ok = np.isfinite(tb) & np.isfinite(sigma) & (sigma > 0)
+        both = ok[1:] & ok[:-1]
+        if both.sum() >= max(int(min_line_free), 8):
+            d = (tb[1:] - tb[:-1])[both] / np.hypot(sigma[1:], sigma[:-1])[both]
+            ratio = robust_sigma(d)
+            if math.isfinite(ratio) and ratio > 0:
+                scale, source = float(ratio), "differences"
+                pred_rms = float(np.median(sigma[ok]))
+                meas_rms = pred_rms * scale
+        if source == "radiometer":
+            notes.append(f"noise from the radiometer equation: {n_lf} line-free channels, "
+                         f"need {max(int(min_line_free), n_par + 2)} to measure it")
     sigma = sigma * scale
 
     # line integral over the expected emission range, clipped to the grid
