@@ -878,7 +878,7 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     is left (a waterfall row per integration).
     """
     if state.view == "survey":
-        from .survey_panel import survey_screen   # it imports this module
+        from .survey_panel import survey_screen  # it imports this module
         return survey_screen(state, width, height, ascii)
     width, height = max(1, int(width)), max(1, int(height))
     lines = [top_bar(state, width)]

@@ -107,7 +107,8 @@ def stack_from_average(spec: dict) -> Stack:
         :data:`LINE_FREE_FRACTION` of the finite channels at each end) subtracted; sigma_k =
         the rms of the residuals in those windows (ddof 2) for every finite channel; weight
         1/sigma^2; W and N(HI) (optically thin: N = 1.823e18 W cm^-2, Dickey & Lockman 1990,
-        ARA&A 28, 215) over the channels between the windows.
+        ARA&A 28, 215) over the channels between the windows, flagged ones bridged by linear
+        interpolation.
 
     Raises
     ------
@@ -143,8 +144,10 @@ def stack_from_average(spec: dict) -> Stack:
     sigma = float(np.sqrt(np.sum(resid ** 2) / max(1, resid.size - 2)))
     inner = finite[n_free:-n_free]
     step = float(np.mean(dv))
-    w = float(np.nansum(tb[inner]) * step)
-    w_err = float(sigma * step * math.sqrt(inner.size))
+    span = np.arange(inner[0], inner[-1] + 1) if inner.size else inner
+    filled = np.interp(v[span], v[finite], tb[finite])        # flagged channels bridged
+    w = float(np.sum(filled) * step)
+    w_err = float(sigma * step * math.sqrt(span.size))
     sigma_k = np.where(np.isfinite(tb), sigma, np.nan)
     weight = np.where(np.isfinite(tb) & (sigma > 0), 1.0 / max(sigma, 1e-30) ** 2, 0.0)
     window = (float(v[inner[0]]), float(v[inner[-1]])) if inner.size else (math.nan, math.nan)

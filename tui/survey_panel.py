@@ -123,10 +123,10 @@ def lv_map(survey: SurveyState, width: int, height: int, ascii: bool = False) ->
     cells = np.full((lons.size, rows_n), np.nan)
     for i, e in enumerate(entries):
         assert e.tb_k is not None
-        t = e.tb_k.astype(float)
-        ok = in_map & np.isfinite(t)
+        tb = e.tb_k.astype(float)
+        ok = in_map & np.isfinite(tb)
         n = np.bincount(row_of[ok], minlength=rows_n)
-        s = np.bincount(row_of[ok], weights=t[ok], minlength=rows_n)
+        s = np.bincount(row_of[ok], weights=tb[ok], minlength=rows_n)
         cells[i] = np.where(n > 0, s / np.maximum(n, 1), np.nan)
     shown = cells[np.unique(show[show >= 0])] if (show >= 0).any() else cells
     finite = shown[np.isfinite(shown)]
@@ -148,18 +148,18 @@ def lv_map(survey: SurveyState, width: int, height: int, ascii: bool = False) ->
     title.append(f"  {TERMINAL_MARK}", style=S_TERMINAL)
     title.append(" terminal v", style=S_LABEL)
     lines = [title]
-    tick_rows = {}
-    for t, label in zip(tick_vals, tick_text, strict=True):
-        tick_rows.setdefault(min(rows_n - 1, max(0, int((v_hi - t) // dv_row))), label)
+    tick_rows: dict[int, str] = {}
+    for tv, text in zip(tick_vals, tick_text, strict=True):
+        tick_rows.setdefault(min(rows_n - 1, max(0, int((v_hi - tv) // dv_row))), text)
     top_label = "" if 0 in tick_rows else "km/s"      # the gutter's unit, where free
     axis, tick_mark = ("|", "+") if ascii else ("│", "┤")
     for r in range(rows_n):
-        label = tick_rows.get(r)
+        label = tick_rows.get(r, "")
         if r == 0 and top_label:
             line = Text(top_label.rjust(gutter), style=S_LABEL)
             line.append(axis, style=S_LABEL)
         else:
-            line = Text((label or "").rjust(gutter), style=S_LABEL)
+            line = Text(label.rjust(gutter), style=S_LABEL)
             line.append(tick_mark if label else axis, style=S_LABEL)
         for c in range(n_cols):
             i = int(show[c])
@@ -177,13 +177,13 @@ def lv_map(survey: SurveyState, width: int, height: int, ascii: bool = False) ->
     free_from = 0
     lticks = [t for t in nice_ticks(right, left, max(1, min(8, n_cols // 8)))
               if right <= t <= left]
-    for t, label in reversed(list(zip(lticks, tick_labels(lticks), strict=True))):
-        c = int((left - t) / col_deg)   # largest l first: left to right
-        start = min(max(c - len(label) // 2, 0), n_cols - len(label))
-        if start < free_from or start + len(label) > n_cols - 3:
+    for lt, ltext in reversed(list(zip(lticks, tick_labels(lticks), strict=True))):
+        c = int((left - lt) / col_deg)   # largest l first: left to right
+        start = min(max(c - len(ltext) // 2, 0), n_cols - len(ltext))
+        if start < free_from or start + len(ltext) > n_cols - 3:
             continue
-        bottom[start:start + len(label)] = list(label)
-        free_from = start + len(label) + 1
+        bottom[start:start + len(ltext)] = list(ltext)
+        free_from = start + len(ltext) + 1
     bottom[-2:] = list("l°") if not ascii else list(" l")
     lines.append(Text(" " * (gutter + 1) + "".join(bottom), style=S_LABEL))
     return block(lines, width, height)
@@ -263,7 +263,7 @@ def survey_screen(state: ViewState, width: int, height: int, ascii: bool = False
 
     Calls ``state.survey.refresh(state.now_s)`` first (throttled reduction).
     """
-    from .panels import help_line, top_bar     # panels dispatches here: import when drawn
+    from .panels import help_line, top_bar  # panels dispatches here: import when drawn
 
     width, height = max(1, int(width)), max(1, int(height))
     state.survey.refresh(state.now_s)
