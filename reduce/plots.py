@@ -231,7 +231,7 @@ def rotation_curve_figure(points: Iterable[TerminalPointLike],
     ax.set_xlabel(LABEL_R)
     ax.set_ylabel(LABEL_THETA)
     ax.set_title(f"Rotation curve by the tangent-point method ({len(pts)} points)")
-    ax.legend(loc="lower right", fontsize="small",
+    ax.legend(loc="best", fontsize="small",
               title=f"{consts.name}: {consts.reference}", title_fontsize="small")
     fig.tight_layout()
     return fig
