@@ -17,6 +17,9 @@ c     ``calibrate`` with ``method=noise_source`` (fire the noise source now)
 n     ``new_scan``
 p     ``pointed``: the dish is where the manual driver asked (the screen prompts for it)
 a     velocity <-> frequency axis (here only, nothing is sent)
+v     the normal screen <-> the survey view: the l-v diagram of the scan averages so far,
+      the terminal velocities and the rotation curve (reduced here, in the viewer; see
+      :mod:`spinflip.tui.survey`)
 q     quit
 ====  ==========================================================
 
@@ -130,8 +133,10 @@ KEY_COMMANDS: dict[str, tuple[str, dict | None]] = {
     "n": ("new_scan", None),
     "p": ("pointed", None),
 }
-#: The key that toggles the spectral axis, and the key that quits.
+#: The key that toggles the spectral axis, the one that toggles the survey view, and the
+#: key that quits.
 KEY_AXIS = "a"
+KEY_VIEW = "v"
 KEY_QUIT = "q"
 
 
@@ -484,7 +489,8 @@ class WatchSession:
 
     # keys --------------------------------------------------------------------------------
     def handle_keys(self, keys: str) -> None:
-        """Act on each key of ``keys``: a command, the axis, quit; others are ignored."""
+        """Act on each key of ``keys``: a command, the axis, the view, quit; others are
+        ignored."""
         for key in keys.lower():
             if key == KEY_QUIT:
                 self.quit.set()
@@ -492,6 +498,9 @@ class WatchSession:
             if key == KEY_AXIS:
                 with self.lock:
                     self.state.toggle_axis()
+            elif key == KEY_VIEW:
+                with self.lock:
+                    self.state.toggle_view()
             elif key in KEY_COMMANDS:
                 cmd, args = KEY_COMMANDS[key]
                 self.send(cmd, args)

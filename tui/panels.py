@@ -95,9 +95,9 @@ MIN_WIDTH = 80
 MIN_HEIGHT = 24
 
 KEYS = (("g", "start"), ("x", "stop"), ("c", "calibrate"), ("n", "new scan"),
-        ("a", "axis"), ("q", "quit"))
+        ("a", "axis"), ("v", "survey"), ("q", "quit"))
 KEYS_SHORT = (("g", "start"), ("x", "stop"), ("c", "cal"), ("n", "scan"), ("a", "axis"),
-              ("q", "quit"))
+              ("v", "survey"), ("q", "quit"))
 #: The key of the manual driver (shown only when the daemon has one), before "q".
 KEY_POINTED = ("p", "pointed")
 
@@ -250,8 +250,9 @@ def link_panel(state: ViewState, width: int) -> Text:
 
 
 def help_line(state: ViewState, width: int | None = None) -> Text:
-    """The keys (g start, x stop, c calibrate, n new scan, a axis, [p pointed,] q quit) and
-    the last reply; "p pointed" only when the daemon's pointing driver is manual.
+    """The keys (g start, x stop, c calibrate, n new scan, a axis, v survey, [p pointed,]
+    q quit) and the last reply; "p pointed" only when the daemon's pointing driver is manual;
+    in the survey view "v" says "main" (the key goes back).
 
     Parameters
     ----------
@@ -275,6 +276,8 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
         if i:
             t.append("  ")
         t.append(f"[{key}]", style="bold reverse")
+        if key == "v" and state.view == "survey":
+            what = "main"
         t.append(f"{what}{'→' + other if key == 'a' else ''}", style=S_LABEL)
     if state.reply:
         t.append("  » ", style=S_LABEL)
@@ -864,7 +867,8 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
 
     Notes
     -----
-    Rows, top to bottom: top bar (1), link (3 lines when stale, 1 while waiting, 0 else),
+    In the survey view (``state.view == "survey"``, key ``v``) the screen is
+    :func:`spinflip.tui.survey_panel.survey_screen` instead. Rows, top to bottom: top bar (1), link (3 lines when stale, 1 while waiting, 0 else),
     the manual driver's prompt (2 or 3 lines while it waits for the observer, else 0),
     progress (2), mount (1 or 2 lines with a pointing driver, else 0), plan (3 or more with a
     running plan, leaving the main area 12 rows where it can, else 0), main area, events (3
@@ -873,6 +877,9 @@ def screen(state: ViewState, width: int, height: int, ascii: bool = False) -> Te
     on screens of 40 rows or more, the link line; Tsys; receiver; interference taking what
     is left (a waterfall row per integration).
     """
+    if state.view == "survey":
+        from .survey_panel import survey_screen  # it imports this module
+        return survey_screen(state, width, height, ascii)
     width, height = max(1, int(width)), max(1, int(height))
     lines = [top_bar(state, width)]
     link_lines = text_lines(link_panel(state, width))

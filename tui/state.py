@@ -13,7 +13,9 @@ message                effect
 =====================  ===========================================================
 spectrum "integration" ``spectrum`` (header + arrays); its ``data`` row and its
                        ``flagged`` mask appended to ``waterfall``
-spectrum "average"     ``average`` (header + arrays)
+spectrum "average"     ``average`` (header + arrays); also given to ``survey``
+                       (:class:`~spinflip.tui.survey.SurveyState`: the newest average
+                       of each target, for the survey view)
 status                 ``status`` (header); ``tsys_k`` (when not null) appended to
                        ``tsys_history`` as (arrival time in s, Tsys in K); ``mount``
                        = its ``mount`` object, None when it has none
@@ -61,8 +63,12 @@ import numpy as np
 from spinflip.daemon.live import schema
 from spinflip.daemon.live.replays import ReplayFilter
 
+from .survey import SurveyState
+
 #: The axes the spectrum can be drawn against (toggled by :meth:`ViewState.toggle_axis`).
 AXES = ("velocity", "frequency")
+#: The screens (toggled by :meth:`ViewState.toggle_view`): the normal one, the survey view.
+VIEWS = ("main", "survey")
 
 #: How many of each kind of history the state keeps.
 EVENTS_KEPT = 50
@@ -128,6 +134,11 @@ class ViewState:
         None: no driver, or a daemon that does not send one.
     plan : dict or None
         The latest progress's ``plan`` object (where a running plan is); None: no plan.
+    view : str
+        "main" (the normal screen) or "survey" (the l-v diagram and rotation curve so far).
+    survey : SurveyState
+        The newest "average" spectrum of each target and what the survey view reduced from
+        them (bounded; see :mod:`spinflip.tui.survey`).
     """
 
     spectrum: dict | None = None
@@ -147,6 +158,8 @@ class ViewState:
     replays_ignored: int = 0
     mount: dict | None = None
     plan: dict | None = None
+    view: str = "main"
+    survey: SurveyState = field(default_factory=SurveyState, repr=False)
     _replays: ReplayFilter = field(default_factory=ReplayFilter, repr=False)
 
     def apply(self, message: schema.Message, now_s: float) -> None:
@@ -171,6 +184,7 @@ class ViewState:
             spec = _spectrum_dict(message)
             if header.get("kind") == "average":
                 self.average = spec
+                self.survey.take(spec)
             else:
                 if not _same_integration(self.spectrum, spec):
                     arrays = spec["arrays"]
@@ -255,6 +269,10 @@ class ViewState:
     def toggle_axis(self) -> None:
         """Switch the spectrum's x axis between LSRK velocity and sky frequency."""
         self.axis = "frequency" if self.axis == "velocity" else "velocity"
+
+    def toggle_view(self) -> None:
+        """Switch between the normal screen and the survey view."""
+        self.view = "survey" if self.view == "main" else "main"
 
     def has_data(self) -> bool:
         """True once any message has arrived."""
