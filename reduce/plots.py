@@ -12,10 +12,10 @@ returns the path.
 Inputs are plain values with the documented attributes, so that this module depends on no
 other part of the reduction but the types it names:
 
-- terminal-velocity points (:class:`TerminalPointLike`: ``glon_deg``, ``v_terminal_km_s``,
+- terminal-velocity points (:class:`TerminalPoint`: ``glon_deg``, ``v_terminal_km_s``,
   ``v_terminal_err_km_s``, ``r_kpc``, ``theta_km_s``, ``theta_err_km_s``), such as
   ``spinflip.reduce.tangent.TerminalPoint``;
-- a face-on map (:class:`FaceOnMapLike`: ``x_edges_kpc``, ``y_edges_kpc``, ``density``,
+- a face-on map (:class:`FaceOnMap`: ``x_edges_kpc``, ``y_edges_kpc``, ``density``,
   ``unit``, ``quantity``, ``ambiguity``, ``consts``), such as
   ``spinflip.reduce.faceon.FaceOnMap``; ``density`` is indexed [x cell, y cell] (the
   convention of ``numpy.histogram2d``), in Galactocentric coordinates with the Galactic
@@ -28,7 +28,6 @@ import os
 import tempfile
 from collections.abc import Iterable
 from pathlib import Path
-from typing import Protocol
 
 import matplotlib
 
@@ -37,6 +36,9 @@ matplotlib.use("Agg")
 import numpy as np  # noqa: E402
 from matplotlib.figure import Figure  # noqa: E402
 from matplotlib.patches import Circle  # noqa: E402
+
+from spinflip.reduce.faceon import FaceOnMap  # noqa: E402
+from spinflip.reduce.tangent import TerminalPoint, keplerian_km_s  # noqa: E402
 
 from .constants import GalacticConstants  # noqa: E402
 from .lv import LvImage, wrap_glon_deg  # noqa: E402
@@ -55,29 +57,6 @@ LABEL_R = "R (kpc)"
 LABEL_THETA = "Theta (km/s)"
 LABEL_X = "x (kpc)"
 LABEL_Y = "y (kpc)"
-
-
-class TerminalPointLike(Protocol):
-    """What the plots read of a terminal-velocity point (``tangent.TerminalPoint``)."""
-
-    glon_deg: float
-    v_terminal_km_s: float
-    v_terminal_err_km_s: float
-    r_kpc: float
-    theta_km_s: float
-    theta_err_km_s: float
-
-
-class FaceOnMapLike(Protocol):
-    """What the plots read of a face-on map (``faceon.FaceOnMap``)."""
-
-    x_edges_kpc: np.ndarray
-    y_edges_kpc: np.ndarray
-    density: np.ndarray
-    unit: str
-    quantity: str
-    ambiguity: str
-    consts: GalacticConstants
 
 
 def _save(fig: Figure, path: str | os.PathLike) -> Path:
@@ -144,7 +123,7 @@ def lon_cells(glon_deg: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
     return np.array(edges), np.array(rows, dtype=int)
 
 
-def lv_figure(image: LvImage, points: Iterable[TerminalPointLike] = ()) -> Figure:
+def lv_figure(image: LvImage, points: Iterable[TerminalPoint] = ()) -> Figure:
     """The l-v diagram: longitude (deg, decreasing to the right) against LSRK velocity
     (km/s), colour = T_B (K) with a colour bar; terminal-velocity points marked with their
     velocity error bars."""
@@ -183,7 +162,7 @@ def lv_figure(image: LvImage, points: Iterable[TerminalPointLike] = ()) -> Figur
 
 
 def lv_png(path: str | os.PathLike, image: LvImage,
-           points: Iterable[TerminalPointLike] = ()) -> Path:
+           points: Iterable[TerminalPoint] = ()) -> Path:
     """Write the l-v diagram (:func:`lv_figure`) to ``path`` as PNG; returns the path."""
     return _save(lv_figure(image, points), path)
 
@@ -191,13 +170,7 @@ def lv_png(path: str | os.PathLike, image: LvImage,
 # ----------------------------------------------------------------------------------------------
 # rotation curve
 # ----------------------------------------------------------------------------------------------
-def keplerian_km_s(r_kpc: np.ndarray, r_in_kpc: float, theta_in_km_s: float) -> np.ndarray:
-    """The circular speed if all the mass were inside the innermost point:
-    Theta = Theta_in sqrt(R_in / R) (Kepler: Theta^2 = G M / R)."""
-    return theta_in_km_s * np.sqrt(r_in_kpc / np.asarray(r_kpc, dtype=float))
-
-
-def rotation_curve_figure(points: Iterable[TerminalPointLike],
+def rotation_curve_figure(points: Iterable[TerminalPoint],
                           consts: GalacticConstants) -> Figure:
     """Theta(R) with error bars, the Keplerian curve through the innermost point, Theta0 as
     a flat line and R0 marked; the legend names the constants and their reference.
@@ -237,7 +210,7 @@ def rotation_curve_figure(points: Iterable[TerminalPointLike],
     return fig
 
 
-def rotation_curve_png(path: str | os.PathLike, points: Iterable[TerminalPointLike],
+def rotation_curve_png(path: str | os.PathLike, points: Iterable[TerminalPoint],
                        consts: GalacticConstants) -> Path:
     """Write the rotation curve (:func:`rotation_curve_figure`) as PNG; returns the path."""
     return _save(rotation_curve_figure(points, consts), path)
@@ -246,7 +219,7 @@ def rotation_curve_png(path: str | os.PathLike, points: Iterable[TerminalPointLi
 # ----------------------------------------------------------------------------------------------
 # face-on map
 # ----------------------------------------------------------------------------------------------
-def _density_yx(facemap: FaceOnMapLike) -> np.ndarray:
+def _density_yx(facemap: FaceOnMap) -> np.ndarray:
     """The map's density as [y cell, x cell] for ``pcolormesh`` (it is [x, y])."""
     nx, ny = facemap.x_edges_kpc.size - 1, facemap.y_edges_kpc.size - 1
     d = np.asarray(facemap.density, dtype=float)
@@ -256,7 +229,7 @@ def _density_yx(facemap: FaceOnMapLike) -> np.ndarray:
     return d.T
 
 
-def faceon_figure(facemap: FaceOnMapLike) -> Figure:
+def faceon_figure(facemap: FaceOnMap) -> Figure:
     """The face-on map: x, y in kpc (equal aspect), colour = density with its unit, the Sun
     at (0, R0), the Galactic centre at (0, 0) and the solar circle marked."""
     r0 = facemap.consts.r0_kpc
@@ -266,26 +239,28 @@ def faceon_figure(facemap: FaceOnMapLike) -> Figure:
     vmin, vmax = _limits(data, 0.0, 99.5)
     mesh = ax.pcolormesh(facemap.x_edges_kpc, facemap.y_edges_kpc, np.ma.masked_invalid(data),
                          cmap=CMAP_DENSITY, vmin=vmin, vmax=vmax, shading="flat")
-    fig.colorbar(mesh, ax=ax, label=f"{facemap.quantity} ({facemap.unit})")
+    short = facemap.quantity.split(" (")[0]           # the details go under the map
+    fig.colorbar(mesh, ax=ax, label=f"{short} ({facemap.unit})")
     ax.add_patch(Circle((0.0, 0.0), r0, fill=False, ls="--", color="cyan", lw=1,
                         label=f"solar circle, R0 = {r0:g} kpc"))
     ax.plot([0.0], [r0], marker="*", ms=12, color="yellow", mec="black", ls="none",
             label="Sun")
-    ax.plot([0.0], [0.0], marker="+", ms=12, mew=2, color="white", ls="none",
+    ax.plot([0.0], [0.0], marker="X", ms=10, color="black", mec="white", ls="none",
             label="Galactic centre")
     ax.set_aspect("equal")
     ax.set_xlim(facemap.x_edges_kpc[0], facemap.x_edges_kpc[-1])
     ax.set_ylim(facemap.y_edges_kpc[0], facemap.y_edges_kpc[-1])
     ax.set_xlabel(LABEL_X)
     ax.set_ylabel(LABEL_Y)
-    ax.set_title(f"Face-on HI map ({facemap.consts.name}; near/far: {facemap.ambiguity})",
-                 fontsize="medium")
+    ax.set_title(f"Face-on HI map ({facemap.consts.name})", fontsize="medium")
+    fig.text(0.01, 0.01, f"{facemap.quantity}; near/far: {facemap.ambiguity}",
+             fontsize="x-small", wrap=True)
     ax.legend(loc="upper right", fontsize="small")
     fig.tight_layout()
     return fig
 
 
-def faceon_png(path: str | os.PathLike, facemap: FaceOnMapLike) -> Path:
+def faceon_png(path: str | os.PathLike, facemap: FaceOnMap) -> Path:
     """Write the face-on map (:func:`faceon_figure`) as PNG; returns the path."""
     return _save(faceon_figure(facemap), path)
 

@@ -34,7 +34,9 @@ Baseline and measured noise
 Line-free channels: outside the velocity range where HI toward the target's (l, b) can be
 (:func:`spinflip.daemon.sky.kinematics.expected_velocity_range_km_s`) and, when rows are folded
 frequency-switched spectra, outside that range moved by +- the switching offset (the fold's
-negative ghosts; :func:`spinflip.daemon.products.scan_average.expected_emission`). A polynomial
+negative ghosts; :func:`spinflip.daemon.products.scan_average.expected_emission`; in the
+stack those ghost channels outside the line window are left out, NaN with weight 0, as they
+hold no sky signal of their own). A polynomial
 (order ``baseline_order``, default 1) is fitted over them with the daemon's fit
 (:func:`spinflip.daemon.products.baseline.fit_baseline`, unweighted least squares with
 iterative 3-sigma clipping of what still stands out) and subtracted, when at least
@@ -351,6 +353,12 @@ def stack_target_details(scans: Sequence[ScanRows], *, grid_step_km_s: float | N
     nhi = float(column_density_cm2(w_k_km_s))
     nhi_err = float(column_density_cm2(w_err))
 
+    # the fold's ghosts outside the line window hold no sky signal of their own (negative
+    # copies of the line): left out of the profile, as the channels no row covered
+    ghost_only = ghosts & ~line
+    resid = np.where(ghost_only, np.nan, resid)
+    sigma = np.where(ghost_only, np.nan, sigma)
+    wsum = np.where(ghost_only, 0.0, wsum)
     stack = Stack(
         object=group_object(scans), glon_deg=glon, glat_deg=glat, v_km_s=grid, tb_k=resid,
         sigma_k=sigma, weight=wsum, exposure_s=exposure, n_rows=n_rows, n_scans=len(names),
