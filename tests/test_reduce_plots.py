@@ -228,3 +228,19 @@ def test_a_season_of_pictures_leaves_nothing_open(tmp_path):
         plots.rotation_curve_png(tmp_path / "rc.png", tangent_points(), IAU)
     assert plt.get_fignums() == [] and sorted(p.name for p in tmp_path.iterdir()) == \
         ["lv.png", "rc.png"]
+
+
+def test_the_daemon_never_imports_the_reduction_and_nothing_else_matplotlib():
+    """matplotlib is the pictures' only (DEVELOPERS.md): the daemon imports neither it nor
+    spinflip.reduce; the terminal UI (whose survey view uses the reduction's numpy code) does
+    not import matplotlib."""
+    import subprocess
+    import sys
+    code = ("import sys; import spinflip.daemon.run.observation, spinflip.cli; "
+            "a = ('matplotlib' in sys.modules, "
+            "any(m.startswith('spinflip.reduce') for m in sys.modules)); "
+            "import spinflip.tui.app, spinflip.tui.survey; "
+            "print(*a, 'matplotlib' in sys.modules)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=60)
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "False False False"

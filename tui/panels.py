@@ -258,8 +258,8 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
     ----------
     state : ViewState
     width : int, optional
-        Cells; when given the line is fitted to it and short key names are used below
-        100 cells so that the reply keeps some room.
+        Cells; when given the line is fitted to it; below 100 cells short key names are used
+        and the last reply comes first, so that it is never cut off.
 
     Returns
     -------
@@ -279,6 +279,13 @@ def help_line(state: ViewState, width: int | None = None) -> Text:
         if key == "v" and state.view == "survey":
             what = "main"
         t.append(f"{what}{'→' + other if key == 'a' else ''}", style=S_LABEL)
+    if state.reply and width is not None and width < 100:
+        # a narrow terminal: the newest reply first, the keys after it (cut at the edge)
+        first = Text()
+        first.append("» ", style=S_LABEL)
+        first.append(state.reply, style=S_VALUE)
+        first.append("  ")
+        return fit(first + t, width)
     if state.reply:
         t.append("  » ", style=S_LABEL)
         t.append(state.reply, style=S_VALUE)
