@@ -211,6 +211,10 @@ def _cmd_reduce(args: argparse.Namespace) -> int:
         print(f"reduced {result.scans_used} scans ({result.rows_used} rows) into "
               f"{result.targets} targets and {result.points} tangent points in "
               f"{result.seconds:.1f} s; {len(result.left_out)} files left out")
+        if result.faceon_left_out:
+            said = ", ".join(f"{n} {why.replace('_', ' ')}" for why, n in
+                             sorted(result.faceon_left_out.items()) if n)
+            print(f"face-on map: channels left out without a reliable distance: {said}")
         for f in result.files:
             print(f"wrote {f}")
     return 0

@@ -213,6 +213,14 @@ def _accumulate(scan: ScanRows, s_factor: float, grid: np.ndarray, num: np.ndarr
     return used.size, float(scan.exposure_s[used].sum()), used.tolist()
 
 
+def _both_sides(grid: np.ndarray, free: np.ndarray, line: np.ndarray) -> bool:
+    """Whether line-free channels lie below and above the line window."""
+    if not line.any() or not free.any():
+        return False
+    lo, hi = grid[line].min(), grid[line].max()
+    return bool(np.any(free & (grid < lo)) and np.any(free & (grid > hi)))
+
+
 def _ghost_shifts_km_s(scans: Sequence[ScanRows]) -> list[float]:
     """Velocity shifts of the fold ghosts: c |SWOFFSET| / RESTFREQ of folded scans, km/s."""
     out: set[float] = set()
@@ -280,6 +288,11 @@ def stack_target_details(scans: Sequence[ScanRows], *, grid_step_km_s: float | N
     # baseline
     fit = None
     order = int(baseline_order)
+    if order >= 1 and not _both_sides(grid, candidates, line):
+        # a slope fitted on one side of the line would be extrapolated across it (a few
+        # line-free channels at one band edge, as a folded spectrum leaves): an offset at most
+        notes.append("line-free channels on one side of the line only: baseline order 0")
+        order = 0
     if order >= 0 and candidates.sum() >= max(MIN_BASELINE_CHANNELS, 2 * (order + 1)):
         try:
             fit = fit_baseline(np.where(good, tb, 0.0), ~candidates, grid, order)

