@@ -51,6 +51,8 @@ from astropy.utils import iers
 from astropy.utils.exceptions import AstropyWarning
 from erfa import ErfaWarning
 
+from spinflip.daemon.sky import eop_cache
+
 # Never try to download Earth-orientation tables; use the bundled astropy-iers-data tables.
 iers.conf.auto_download = False
 # No age limit on the bundled table's predictions (astropy would refuse times past them).
@@ -77,6 +79,7 @@ def _quiet() -> Iterator[None]:
     and UT1-UTC, ERFA's "dubious year"): deprecations and other warnings still show.
     """
     with _ASTROPY_LOCK, warnings.catch_warnings():
+        eop_cache.install()   # the parsed table from the per-user cache (milliseconds)
         warnings.filterwarnings("ignore", category=iers.IERSWarning)
         warnings.filterwarnings("ignore", category=iers.IERSDegradedAccuracyWarning)
         warnings.filterwarnings("ignore", category=AstropyWarning,
@@ -370,15 +373,88 @@ def sky_position(coord: SkyCoord, location: EarthLocation, time: Time) -> SkyPos
                        float(d["AZIMUTH"]), float(d["ELEVATIO"]))
 
 
+# ICRS -> Galactic rotation matrix (ESA 1997, The Hipparcos and Tycho Catalogues, ESA SP-1200,
+# vol. 1, sec. 1.5.3): r_gal = _ICRS_TO_GAL @ r_icrs. Used only to choose a longitude.
+_ICRS_TO_GAL = np.array([[-0.0548755604, -0.8734370902, -0.4838350155],
+                         [+0.4941094279, -0.4448296300, +0.7469822445],
+                         [-0.8676661490, -0.1980763734, +0.4559837762]])
+
+
+def _rot(axis: int, angle_rad: float) -> np.ndarray:
+    """Rotation of the coordinate frame by ``angle_rad`` about axis 0 (x), 1 (y) or 2 (z)."""
+    c, s = np.cos(angle_rad), np.sin(angle_rad)
+    i, j = [(1, 2), (2, 0), (0, 1)][axis]
+    m = np.eye(3)
+    m[i, i] = m[j, j] = c
+    m[i, j], m[j, i] = s, -s
+    return m
+
+
+def galactic_azel_lowprec(glon_deg: npt.ArrayLike, glat_deg: npt.ArrayLike, lat_deg: float,
+                          lon_deg: float, jd_utc: float) -> tuple[np.ndarray, np.ndarray]:
+    """(azimuth, elevation) in deg of Galactic positions, closed form, to about 0.02 deg.
+
+    Good enough to choose a pointing, never written into data (rows use :func:`describe`).
+
+    Parameters
+    ----------
+    glon_deg, glat_deg : Galactic longitude and latitude, deg (arrays broadcast)
+    lat_deg, lon_deg : geodetic site latitude and east longitude, deg
+    jd_utc : Julian date (UTC, taken for UT1: 0.9 s at most, 0.004 deg)
+
+    Returns
+    -------
+    (az_deg, el_deg) : azimuth from north through east, elevation without refraction.
+
+    Notes
+    -----
+    r_J2000 = A^T r_gal (Hipparcos matrix above); precession to the date with the IAU 1976
+    angles (Lieske et al. 1977, A&A 58, 1): r_date = R3(-z) R2(theta) R3(-zeta) r_J2000,
+    T = (JD - 2451545) / 36525,
+    zeta = 2306.2181" T + 0.30188" T^2 + 0.017998" T^3, z = 2306.2181" T + 1.09468" T^2
+    + 0.018203" T^3, theta = 2004.3109" T - 0.42666" T^2 - 0.041833" T^3;
+    mean sidereal time GMST = 280.46061837 + 360.98564736629 d + 0.000387933 T^2 deg
+    (d = JD - 2451545; Meeus, Astronomical Algorithms, 2nd ed., eq. 12.4); hour angle
+    H = GMST + lon - alpha; sin el = sin phi sin delta + cos phi cos delta cos H,
+    az = atan2(-cos delta sin H, sin delta cos phi - cos delta cos H sin phi).
+    Left out: nutation (< 20"), annual and diurnal aberration (< 21"), UT1-UTC, polar motion.
+    """
+    gl, gb = np.broadcast_arrays(np.radians(glon_deg), np.radians(glat_deg))
+    r_gal = np.array([np.cos(gb) * np.cos(gl), np.cos(gb) * np.sin(gl), np.sin(gb)])
+    d = jd_utc - 2451545.0
+    t = d / 36525.0
+    arcsec = np.pi / (180.0 * 3600.0)
+    zeta = (2306.2181 * t + 0.30188 * t**2 + 0.017998 * t**3) * arcsec
+    z = (2306.2181 * t + 1.09468 * t**2 + 0.018203 * t**3) * arcsec
+    theta = (2004.3109 * t - 0.42666 * t**2 - 0.041833 * t**3) * arcsec
+    prec = _rot(2, -z) @ _rot(1, theta) @ _rot(2, -zeta)
+    x, y, zc = np.tensordot(prec @ _ICRS_TO_GAL.T, r_gal, axes=1)
+    ra = np.arctan2(y, x)
+    dec = np.arcsin(np.clip(zc, -1.0, 1.0))
+    gmst = np.radians((280.46061837 + 360.98564736629 * d + 0.000387933 * t**2) % 360.0)
+    h = gmst + np.radians(lon_deg) - ra
+    phi = np.radians(lat_deg)
+    sin_el = np.sin(phi) * np.sin(dec) + np.cos(phi) * np.cos(dec) * np.cos(h)
+    el = np.degrees(np.arcsin(np.clip(sin_el, -1.0, 1.0)))
+    az = np.degrees(np.arctan2(-np.cos(dec) * np.sin(h),
+                               np.sin(dec) * np.cos(phi) - np.cos(dec) * np.cos(h) * np.sin(phi)))
+    return az % 360.0, el
+
+
 def best_plane_longitude(location: EarthLocation, time: Time, min_elevation_deg: float) -> float:
     """A Galactic-plane longitude above the horizon at ``time`` for the default pointing.
 
     Prefers the first quadrant (l = 20..90 deg: strong, wide lines) when a part of it stands
     higher than ``min_elevation_deg + 15``; otherwise the highest point of the plane.
+    Elevations come from :func:`galactic_azel_lowprec` (a closed form, within about 0.02 deg
+    of astropy: plenty to choose among longitudes 5 deg apart, and no Earth-orientation table
+    to read on the way to the first block); the data rows' positions stay astropy's.
     """
     grid = np.arange(0.0, 360.0, 5.0)
-    _az, el_any = sky_to_azel("galactic", grid, np.zeros_like(grid), location, time)
-    el = np.asarray(el_any)         # an array of longitudes gives an array
+    geo = location.to_geodetic()
+    t = time.utc
+    _az, el = galactic_azel_lowprec(grid, np.zeros_like(grid), float(geo.lat.deg),
+                                    float(geo.lon.deg), float(t.jd1) + float(t.jd2))
     first = (grid >= 20) & (grid <= 90)
     if np.max(el[first]) > min_elevation_deg + 15:
         return float(grid[first][np.argmax(el[first])])
