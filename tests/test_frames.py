@@ -278,6 +278,35 @@ def test_best_plane_longitude_is_above_horizon():
         assert el > 10.0
 
 
+def test_lowprec_plane_elevations_and_choice_against_astropy():
+    """The closed-form Galactic -> horizontal rotation that chooses the 'auto' longitude,
+    checked against astropy (reference: astropy.coordinates AltAz, no refraction) over sites,
+    seasons and hours; and the longitude chosen is one astropy would choose."""
+    grid = np.arange(0.0, 360.0, 5.0)
+    chosen_differently = 0
+    for lat, lon in ((46.82, 8.37), (-33.9, 18.4), (60.0, -150.0), (0.5, 100.0)):
+        loc = coordinates.site_location(lat, lon, 500.0)
+        for k in range(8):
+            t = Time("2026-12-02T00:00:00") + (k * 7.3) * u.hour + (k * 41) * u.day
+            with _reference_quietly():
+                az_ref, el_ref = coordinates.sky_to_azel("galactic", grid, 0 * grid, loc, t)
+            az, el = coordinates.galactic_azel_lowprec(grid, 0 * grid, lat, lon,
+                                                       t.utc.jd1 + t.utc.jd2)
+            assert np.max(np.abs(el - el_ref)) < 0.03
+            daz = (az - az_ref + 180.0) % 360.0 - 180.0
+            assert np.max(np.abs(daz * np.cos(np.radians(el_ref)))) < 0.03
+            # the same rule as best_plane_longitude, on astropy's elevations
+            first = (grid >= 20) & (grid <= 90)
+            ref = (grid[first][np.argmax(el_ref[first])] if np.max(el_ref[first]) > 25.0
+                   else grid[np.argmax(el_ref)])
+            got = coordinates.best_plane_longitude(loc, t, 10.0)
+            if got != ref:   # only a near tie may go the other way
+                chosen_differently += 1
+                i_got, i_ref = int(got // 5), int(ref // 5)
+                assert abs(el_ref[i_got] - el_ref[i_ref]) < 0.05
+    assert chosen_differently <= 1
+
+
 # --------------------------------------------------------------------------------------------
 # offline Earth orientation
 # --------------------------------------------------------------------------------------------
