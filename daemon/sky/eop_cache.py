@@ -3,9 +3,9 @@
 Astropy parses the bundled IERS-A "finals" file (about 20 000 fixed-width lines) with its
 generic ASCII reader each time a process first needs UT1-UTC or polar motion: 0.6-1.8 s on a
 small computer, on the path to the first observed block. The parsed table's columns are the
-same every time as long as the installed astropy and astropy-iers-data are, so they are saved
-once as a NumPy archive and, in later processes, the same table (same columns, units, masks
-and metadata: the same numbers astropy would use) is rebuilt from it in milliseconds and
+same every time as long as the installed astropy and astropy-iers-data are, so the columns
+astropy's look-ups read are saved once as a NumPy archive and, in later processes, the table
+(same values, units, masks and metadata: the same numbers astropy would use) is rebuilt from it in milliseconds and
 handed to astropy (``iers.IERS_Auto.iers_table``), so every transform keeps astropy's own
 precision.
 
@@ -37,7 +37,13 @@ import numpy as np
 log = logging.getLogger("spinflip.frames")
 
 #: Format of the archive; bump it when the layout below changes.
-_FORMAT = 1
+_FORMAT = 2
+#: The columns astropy's look-ups read (``IERS.ut1_utc``, ``pm_xy``, ``dcip_xy`` and their
+#: status flags, by date): the IERS-A and IERS-B source columns (``*_A``, ``*_B``, errors)
+#: are only used while astropy combines them at parse time, so they are not kept (4 MB less
+#: of a daemon's memory).
+KEPT_COLUMNS = ("MJD", "UT1_UTC", "UT1Flag", "PM_x", "PM_y", "PolPMFlag", "dX_2000A",
+                "dY_2000A", "NutFlag")
 
 
 def cache_dir() -> Path:
@@ -92,7 +98,7 @@ def _to_arrays(table: object, key: str) -> dict[str, np.ndarray]:
     """The table's columns (data, unit, mask) and metadata as plain arrays."""
     arrays: dict[str, np.ndarray] = {}
     columns = []
-    for name in table.colnames:  # type: ignore[attr-defined]
+    for name in KEPT_COLUMNS:
         col = table[name]  # type: ignore[index]
         unit = getattr(col, "unit", None)
         data = np.asarray(getattr(col, "value", col) if unit is not None else col)
@@ -139,9 +145,9 @@ def _from_arrays(arrays: dict[str, np.ndarray], key: str) -> object:
             col = data
         names.append(c["name"])
         cols.append(col)
-    if not names or "MJD" not in names:
-        raise ValueError("no MJD column")
-    table = iers.IERS_Auto(cols, names=names, meta=header["meta"])
+    if tuple(names) != KEPT_COLUMNS:
+        raise ValueError("columns differ")
+    table = iers.IERS_Auto(cols, names=names, meta=header["meta"], copy=False)
     return table
 
 
@@ -187,7 +193,8 @@ def load_table() -> object:
 
     Returns
     -------
-    astropy.utils.iers.IERS_Auto : the table astropy's own ``IERS_Auto.open()`` returns.
+    astropy.utils.iers.IERS_Auto : the table astropy's own ``IERS_Auto.open()`` returns,
+    with the columns :data:`KEPT_COLUMNS`.
     """
     from astropy.utils import iers
 
@@ -195,8 +202,9 @@ def load_table() -> object:
     path = cache_path(key)
     table = _read(path, key)
     if table is None:
-        table = iers.IERS_Auto.read()
-        _write(path, _to_arrays(table, key))
+        arrays = _to_arrays(iers.IERS_Auto.read(), key)
+        _write(path, arrays)
+        table = _from_arrays(dict(arrays), key)   # the same table, cached or not
     return table
 
 
