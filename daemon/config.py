@@ -14,7 +14,7 @@ from pathlib import Path
 from typing import Any
 
 from spinflip.daemon.error_line import quoted
-from spinflip.daemon.sky.hi_line import HI_REST_FREQ_HZ
+from spinflip.daemon.sky.line_constants import HI_REST_FREQ_HZ
 from spinflip.daemon.toml_file import TomlFileError, read_toml
 
 

@@ -95,9 +95,18 @@ from spinflip.daemon.storage import archive
 from spinflip.daemon.storage.items import CloseScan, Note, OpenScan, TsysRecord
 from spinflip.daemon.storage.writer import ScanStore
 
-_QUEUE_BLOCKS = 8                # about 0.9 s of samples at 2.4 MS/s
+_QUEUE_SECONDS = 0.9             # blocks waiting for the main loop: about 0.9 s of samples
 _WATCHDOG_STALL_S = 10.0         # a main loop silent this long is hung: no more WATCHDOG=1
 _PARK_AT_EXIT_S = 10.0           # longest the daemon waits for the rotator to park as it stops
+
+
+def queue_blocks(block_s: float) -> int:
+    """Blocks the reader may queue: :data:`_QUEUE_SECONDS` of samples, at least 2.
+
+    Sized in time, so the memory it can hold follows the sample rate (8 blocks of 262 144
+    samples at 2.4 MS/s: 4 MB of raw bytes); a longer wait is a loss the reader counts.
+    """
+    return max(2, round(_QUEUE_SECONDS / block_s))
 
 
 @dataclass
@@ -223,7 +232,7 @@ class Daemon:
                                on_open=self._scan_opened, guard=self.supervisor.guard)
         self.reader = BlockReader(self.source, fast, self.stop_event, self.supervisor.guard,
                                   self.counters, cfg["source"]["reconnect_max_s"], self.log,
-                                  _QUEUE_BLOCKS)
+                                  queue_blocks(self.block_s))
         self.row_index = 0
         self.average = RunningAverage()
         self.last_row: Row | None = None

@@ -12,15 +12,11 @@ thin).
 import numpy as np
 import numpy.typing as npt
 
-#: Rest frequency of the HI hyperfine (spin-flip) transition, Hz (Hellwig et al. 1970).
-HI_REST_FREQ_HZ = 1_420_405_751.768
-
-#: Speed of light in vacuum, m/s (exact, SI).
-C_M_S = 299_792_458.0
-
-#: HI column density per unit line integral, cm^-2 per (K km/s), optically thin
-#: (Dickey & Lockman 1990): N_HI = 1.823e18 int T_B dv.
-HI_COLUMN_PER_K_KM_S_CM2 = 1.823e18
+from spinflip.daemon.sky.line_constants import (  # noqa: F401 - re-exported here
+    C_M_S,
+    HI_COLUMN_PER_K_KM_S_CM2,
+    HI_REST_FREQ_HZ,
+)
 
 
 def radio_velocity_m_s(freq_hz: npt.ArrayLike, rest_hz: float = HI_REST_FREQ_HZ) -> np.ndarray:
