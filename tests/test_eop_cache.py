@@ -23,6 +23,7 @@ def reads(monkeypatch, tmp_path, parsed):
     """The cache in a fresh folder; each parse astropy would do is counted (and served from
     the module's one parse, to keep the tests fast)."""
     monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+    monkeypatch.setattr(eop_cache, "PARSE_IN_CHILD", False)
     calls = []
 
     def read(*args, **kwargs):
@@ -124,3 +125,16 @@ def test_unwritable_cache_folder_still_works(reads, monkeypatch, tmp_path, parse
     _assert_same_table(parsed, eop_cache.load_table())
     assert len(reads) == 2                     # parsed each time, no error
     assert not (blocker / "spinflip").exists()
+
+
+def test_a_missing_cache_is_made_by_a_child_process(monkeypatch, tmp_path, parsed):
+    """The first start parses in a child, so this process never runs astropy's parser."""
+    monkeypatch.setenv("XDG_CACHE_HOME", str(tmp_path / "cache"))
+
+    def refuse(*args, **kwargs):
+        raise AssertionError("parsed in the daemon's own process")
+
+    monkeypatch.setattr(iers.IERS_Auto, "read", refuse)
+    table = eop_cache.load_table()
+    assert eop_cache.cache_path().is_file()
+    _assert_same_table(parsed, table)

@@ -17,7 +17,9 @@ the bundled file's path, size and modification time, so an upgrade makes a new f
 ones are removed). Inside, the key and a SHA-256 digest of the arrays are checked again; a
 file that fails to load or to check is ignored, logged once, and rebuilt. The file is written
 to a temporary name and renamed (atomic); a folder that cannot be written only costs the
-parse in every process.
+parse in every process. A missing file is made by a child process (``python -m
+spinflip.daemon.sky.eop_cache``), so the parser's memory never stays in the daemon; should
+that fail, the table is parsed in-process.
 """
 
 from __future__ import annotations
@@ -28,6 +30,8 @@ import io
 import json
 import logging
 import os
+import subprocess
+import sys
 import tempfile
 from importlib import metadata
 from pathlib import Path
@@ -188,6 +192,34 @@ def _write(path: Path, arrays: dict[str, np.ndarray]) -> None:
         log.info("Earth-orientation cache not written to %s (%s); parsing each start", path, exc)
 
 
+#: Parse in a child process when the cache is missing: the parser's tables and modules (some
+#: 60 MB) then never stay in the daemon's memory, even at the first start after an upgrade.
+PARSE_IN_CHILD = True
+
+
+def _build_in_child() -> bool:
+    """Parse and cache the table in a child Python; True when it says it wrote the file."""
+    try:
+        done = subprocess.run([sys.executable, "-m", "spinflip.daemon.sky.eop_cache"],
+                              capture_output=True, text=True, timeout=300)
+    except (OSError, subprocess.SubprocessError) as exc:
+        log.info("Earth-orientation table not parsed in a child process (%s)", exc)
+        return False
+    return done.returncode == 0
+
+
+def build() -> bool:
+    """Parse astropy's bundled table and write the cache file; True when it was written."""
+    from astropy.utils import iers
+
+    iers.conf.auto_download = False      # as in spinflip.daemon.sky.coordinates
+    iers.conf.auto_max_age = None
+    key = cache_key()
+    path = cache_path(key)
+    _write(path, _to_arrays(iers.IERS_Auto.read(), key))
+    return path.is_file()
+
+
 def load_table() -> object:
     """Astropy's parsed IERS table, from the cache when sound, else parsed and cached.
 
@@ -201,6 +233,8 @@ def load_table() -> object:
     key = cache_key()
     path = cache_path(key)
     table = _read(path, key)
+    if table is None and PARSE_IN_CHILD and _build_in_child():
+        table = _read(path, key)
     if table is None:
         arrays = _to_arrays(iers.IERS_Auto.read(), key)
         _write(path, arrays)
@@ -214,3 +248,10 @@ def install() -> None:
 
     if iers.IERS_Auto.iers_table is None:
         iers.IERS_Auto.iers_table = load_table()
+
+
+if __name__ == "__main__":    # the child of _build_in_child: exit 0 when the file was written
+    import warnings
+
+    warnings.simplefilter("ignore")
+    sys.exit(0 if build() else 1)
