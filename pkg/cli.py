@@ -132,6 +132,12 @@ def build_parser() -> argparse.ArgumentParser:
                         "subscribers: samples lost, RSS growth, CPU share")
     so.add_argument("--seconds", type=_positive_seconds, default=600.0, metavar="S",
                     help="how long (default 600)")
+    so.add_argument("--source", metavar="replay:FILE", help="replay a .cu8 capture in real time "
+                    "(looped) instead of the simulator: the daemon's own cost")
+    so.add_argument("--sample-rate", type=float, default=2.4e6, metavar="HZ",
+                    help="with --source: the capture's sample rate (default 2.4e6)")
+    so.add_argument("--channels", type=int, default=1024, metavar="N",
+                    help="with --source: spectrometer channels (default 1024)")
     so.add_argument("--json", action="store_true", help="machine-readable output")
     so.add_argument("--check", action="store_true",
                     help="exit 1 when a target is missed (samples or messages lost, RSS growth "
@@ -151,7 +157,22 @@ def _cmd_doctor(args: argparse.Namespace) -> int:
 
 def _cmd_soak(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.soak import soak_main
-    return soak_main(args.seconds, args.json, args.check)
+    from spinflip.daemon.sources.base import parse_source_option
+    replay = None
+    if args.source is not None:
+        src = parse_source_option(args.source)
+        if src["kind"] != "replay":
+            raise ValueError(f"--source {args.source}: soak takes replay:FILE (the simulator is "
+                             "the default)")
+        replay = src["path"]
+        if not Path(replay).expanduser().is_file():
+            raise ValueError(f"--source {args.source}: no such file")
+    cfg_check = {"source": {"sample_rate": args.sample_rate},
+                 "spectrometer": {"channels": args.channels}}
+    from spinflip.daemon import config as config_mod
+    config_mod.merge(config_mod.defaults(), cfg_check, origin="command line")
+    return soak_main(args.seconds, args.json, args.check, replay, args.sample_rate,
+                     args.channels)
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
