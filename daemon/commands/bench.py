@@ -96,7 +96,7 @@ def _run_ours(blocks: list[np.ndarray], ch: Channelizer) -> int:
     nchan = ch.nchan
     s1, s2, m = np.zeros(nchan), np.zeros(nchan), 0
     for b in blocks:
-        a1, a2, k = ch.sums(u8_to_complex(b))
+        a1, a2, k = ch.sums(ch.load_u8(b))
         s1 += a1
         s2 += a2
         m += k
