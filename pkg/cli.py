@@ -121,6 +121,10 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--json", action="store_true", help="machine-readable output")
     b.add_argument("--seconds", type=_positive_seconds, default=2.0,
                    help="seconds of 2.4 MS/s data per measurement (default 2)")
+    b.add_argument("--config", metavar="FILE", default=None,
+                   help="configuration whose sample rate and channels set the core share")
+    b.add_argument("--scaling", action="store_true",
+                   help="throughput and peak memory of both chains over 256 .. 16384 channels")
     ch = sub.add_parser("chain", help="receiver-chain budget: Friis cascade, Tsys, beam, "
                         "sensitivity, expected HI (hardware/profiles/*.toml)")
     ch.add_argument("file", metavar="FILE", help="a receiver-chain profile (TOML)")
@@ -369,7 +373,20 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 
 def _cmd_bench(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.bench import format_bench, run_bench
-    result = run_bench(seconds=args.seconds)
+    try:
+        from spinflip.daemon.config import load as load_config
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        print(f"spinflip bench: {exc}", file=sys.stderr)
+        return 2
+    if args.scaling:
+        from spinflip.daemon.commands.bench import BLOCK_SAMPLES, _noise_u8
+        from spinflip.daemon.commands.bench_stages import format_scaling, run_scaling
+        raw = _noise_u8(max(16384 * 4, int(args.seconds * 2.4e6)), 1)
+        result = run_scaling(raw, BLOCK_SAMPLES)
+        print(json.dumps(result, indent=2) if args.json else format_scaling(result))
+        return 0
+    result = run_bench(seconds=args.seconds, cfg=cfg)
     print(json.dumps(result, indent=2) if args.json else format_bench(result))
     return 0
 
