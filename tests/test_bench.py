@@ -8,6 +8,7 @@ from spinflip.daemon.commands.bench_stages import CORE_STAGES, PROFILE_STAGES, r
 
 def test_bench_reports_fraction_of_bare_fft_stage_profile_and_core_share():
     r = run_bench(seconds=0.05)
+    assert r["simulator"]["simulated_s_per_wall_s"] > 0 and r["simulator"]["sample_rate"] == 2.4e6
     assert set(r["fraction_of_bare_fft"]) == {"pfb", "fft"}
     for k in ("pfb", "fft"):
         frac = r["fraction_of_bare_fft"][k]

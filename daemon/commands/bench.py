@@ -190,6 +190,8 @@ def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e
         {pfb, fft} (throughput / 2.4 MS/s), ``ratio_vs_welch`` {pfb, fft},
         ``radiometer_efficiency`` {pfb, fft} (measured) and ``radiometer_efficiency_expected``
         {pfb, fft} (from the coefficients), ``enbw_bins`` and ``enbw_hz`` {pfb, fft},
+        ``simulator`` {simulated_s_per_wall_s, block_samples, sample_rate} (the simulator alone
+        under ``--fast``, :func:`spinflip.daemon.commands.bench_sim.simulator_speed`),
         ``spectrometer_msps`` {plain, flagged} (the daemon's PFB spectrometer without and with
         interference flagging), ``flagging_cost_share`` (t_flagged / t_plain - 1),
         ``nchan``, ``taps``, ``sample_rate``, ``seconds_of_data``, ``block_samples``,
@@ -224,7 +226,10 @@ def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e
     fs_cfg = float(cfg["source"]["sample_rate"])
     raw_cfg = _noise_u8(max(int(cfg["spectrometer"]["channels"]) * 4, int(seconds * fs_cfg)),
                         seed + 7)
+    from spinflip.daemon.commands.bench_sim import simulator_speed
+    sim = simulator_speed(min(3.0, max(0.5, seconds)))
     return {
+        "simulator": sim,
         "throughput_msps": {k: msps[k] for k in ("pfb", "fft", "bare_fft", "welch")},
         "fraction_of_bare_fft": {k: msps[k] / msps["bare_fft"] for k in ours},
         "stage_ns_per_sample": {k: stage_profile(blocks, chans[k]) for k in ours},
@@ -273,6 +278,8 @@ def format_bench(r: dict) -> str:
         f"    without {r['spectrometer_msps']['plain']:7.1f} MS/s, with "
         f"{r['spectrometer_msps']['flagged']:7.1f} MS/s: flagging adds "
         f"{100 * r['flagging_cost_share']:.0f} % to the DSP chain",
+        f"  simulator (default configuration, --fast): {r['simulator']['simulated_s_per_wall_s']:.1f} "
+        "simulated s per wall s",
         "  radiometer efficiency (1.0 = ideal radiometer of bandwidth ENBW):",
         f"    PFB     : {e['pfb']:.3f} measured, {ex['pfb']:.3f} expected, "
         f"ENBW {bw['pfb']:.3f} channels",
