@@ -70,6 +70,8 @@ SCHEMA: dict[str, dict[str, Key]] = {
         "ppm": Key(0, int, -200, 200, doc="crystal correction, parts per million"),
         "bias_tee": Key(False, bool, doc="power the LNA through the coax"),
         "path": Key("", str, doc="replay: .cu8 file"),
+        "replay_loop": Key(False, bool, doc="replay: start the file again at its end (soak "
+                           "tests of the daemon's own cost on a capture)"),
         "block_samples": Key(262144, int, 16384, 4194304, doc="complex samples per block"),
         "reconnect_max_s": Key(30.0, float, 1, 600, doc="rtlsdr: longest wait between attempts "
                                "to reopen a lost dongle, s (the wait doubles from 1 s)"),

@@ -121,6 +121,10 @@ def build_parser() -> argparse.ArgumentParser:
     b.add_argument("--json", action="store_true", help="machine-readable output")
     b.add_argument("--seconds", type=_positive_seconds, default=2.0,
                    help="seconds of 2.4 MS/s data per measurement (default 2)")
+    b.add_argument("--config", metavar="FILE", default=None,
+                   help="configuration whose sample rate and channels set the core share")
+    b.add_argument("--scaling", action="store_true",
+                   help="throughput and peak memory of both chains over 256 .. 16384 channels")
     ch = sub.add_parser("chain", help="receiver-chain budget: Friis cascade, Tsys, beam, "
                         "sensitivity, expected HI (hardware/profiles/*.toml)")
     ch.add_argument("file", metavar="FILE", help="a receiver-chain profile (TOML)")
@@ -132,6 +136,12 @@ def build_parser() -> argparse.ArgumentParser:
                         "subscribers: samples lost, RSS growth, CPU share")
     so.add_argument("--seconds", type=_positive_seconds, default=600.0, metavar="S",
                     help="how long (default 600)")
+    so.add_argument("--source", metavar="replay:FILE", help="replay a .cu8 capture in real time "
+                    "(looped) instead of the simulator: the daemon's own cost")
+    so.add_argument("--sample-rate", type=float, default=2.4e6, metavar="HZ",
+                    help="with --source: the capture's sample rate (default 2.4e6)")
+    so.add_argument("--channels", type=int, default=1024, metavar="N",
+                    help="with --source: spectrometer channels (default 1024)")
     so.add_argument("--json", action="store_true", help="machine-readable output")
     so.add_argument("--check", action="store_true",
                     help="exit 1 when a target is missed (samples or messages lost, RSS growth "
@@ -151,7 +161,22 @@ def _cmd_doctor(args: argparse.Namespace) -> int:
 
 def _cmd_soak(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.soak import soak_main
-    return soak_main(args.seconds, args.json, args.check)
+    from spinflip.daemon.sources.base import parse_source_option
+    replay = None
+    if args.source is not None:
+        src = parse_source_option(args.source)
+        if src["kind"] != "replay":
+            raise ValueError(f"--source {args.source}: soak takes replay:FILE (the simulator is "
+                             "the default)")
+        replay = src["path"]
+        if not Path(replay).expanduser().is_file():
+            raise ValueError(f"--source {args.source}: no such file")
+    cfg_check = {"source": {"sample_rate": args.sample_rate},
+                 "spectrometer": {"channels": args.channels}}
+    from spinflip.daemon import config as config_mod
+    config_mod.merge(config_mod.defaults(), cfg_check, origin="command line")
+    return soak_main(args.seconds, args.json, args.check, replay, args.sample_rate,
+                     args.channels)
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
@@ -350,7 +375,20 @@ def _cmd_inspect(args: argparse.Namespace) -> int:
 
 def _cmd_bench(args: argparse.Namespace) -> int:
     from spinflip.daemon.commands.bench import format_bench, run_bench
-    result = run_bench(seconds=args.seconds)
+    try:
+        from spinflip.daemon.config import load as load_config
+        cfg = load_config(args.config)
+    except ConfigError as exc:
+        print(f"spinflip bench: {exc}", file=sys.stderr)
+        return 2
+    if args.scaling:
+        from spinflip.daemon.commands.bench import BLOCK_SAMPLES, _noise_u8
+        from spinflip.daemon.commands.bench_stages import format_scaling, run_scaling
+        raw = _noise_u8(max(16384 * 4, int(args.seconds * 2.4e6)), 1)
+        result = run_scaling(raw, BLOCK_SAMPLES)
+        print(json.dumps(result, indent=2) if args.json else format_scaling(result))
+        return 0
+    result = run_bench(seconds=args.seconds, cfg=cfg)
     print(json.dumps(result, indent=2) if args.json else format_bench(result))
     return 0
 

@@ -232,7 +232,7 @@ def test_radiometer_efficiency_with_enbw_bandwidth():
 # ------------------------------------------------------------------- bench
 def test_bench_reports_every_figure():
     r = run_bench(seconds=0.2)
-    for group, names in (("throughput_msps", {"pfb", "fft", "welch"}),
+    for group, names in (("throughput_msps", {"pfb", "fft", "bare_fft", "welch"}),
                          ("realtime_factor_2p4", {"pfb", "fft"}),
                          ("ratio_vs_welch", {"pfb", "fft"}),
                          ("radiometer_efficiency", {"pfb", "fft"}),

@@ -60,6 +60,7 @@ import numpy as np
 import scipy
 import scipy.signal
 
+from spinflip.daemon.commands.bench_stages import bare_fft_ns, core_share, stage_profile
 from spinflip.daemon.dsp.block import Block
 from spinflip.daemon.dsp.channelizer import Channelizer, make_channelizer
 from spinflip.daemon.dsp.samples import complex_to_u8, u8_to_complex
@@ -96,7 +97,7 @@ def _run_ours(blocks: list[np.ndarray], ch: Channelizer) -> int:
     nchan = ch.nchan
     s1, s2, m = np.zeros(nchan), np.zeros(nchan), 0
     for b in blocks:
-        a1, a2, k = ch.sums(u8_to_complex(b))
+        a1, a2, k = ch.sums(ch.load_u8(b))
         s1 += a1
         s2 += a2
         m += k
@@ -165,7 +166,7 @@ def radiometer_efficiency(method: str, nchan: int = 1024, taps: int = 4, seed: i
 
 
 def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e6,
-              seed: int = 1, taps: int = 4) -> dict:
+              seed: int = 1, taps: int = 4, cfg: dict | None = None) -> dict:
     """Measure DSP throughput against scipy.signal.welch, and radiometer efficiency.
 
     Parameters
@@ -189,6 +190,8 @@ def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e
         {pfb, fft} (throughput / 2.4 MS/s), ``ratio_vs_welch`` {pfb, fft},
         ``radiometer_efficiency`` {pfb, fft} (measured) and ``radiometer_efficiency_expected``
         {pfb, fft} (from the coefficients), ``enbw_bins`` and ``enbw_hz`` {pfb, fft},
+        ``simulator`` {simulated_s_per_wall_s, block_samples, sample_rate} (the simulator alone
+        under ``--fast``, :func:`spinflip.daemon.commands.bench_sim.simulator_speed`),
         ``spectrometer_msps`` {plain, flagged} (the daemon's PFB spectrometer without and with
         interference flagging), ``flagging_cost_share`` (t_flagged / t_plain - 1),
         ``nchan``, ``taps``, ``sample_rate``, ``seconds_of_data``, ``block_samples``,
@@ -198,11 +201,15 @@ def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e
     raw = _noise_u8(n, seed)
     blocks = _blocks(raw)
     chans = {k: make_channelizer(k, nchan, taps=taps) for k in ("pfb", "fft")}
-    best = {"pfb": np.inf, "fft": np.inf, "welch": np.inf, "plain": np.inf, "flagged": np.inf}
+    xs = [u8_to_complex(b) for b in blocks]
+    best = {"pfb": np.inf, "fft": np.inf, "bare_fft": np.inf, "welch": np.inf, "plain": np.inf,
+            "flagged": np.inf}
     for _ in range(_REPEATS):
         for name in best:
             t0 = time.perf_counter()
-            if name == "welch":
+            if name == "bare_fft":
+                bare_fft_ns(xs, nchan)
+            elif name == "welch":
                 _run_welch(blocks, nchan)
             elif name == "plain":
                 _run_spectrometer(blocks, nchan, taps, None, sample_rate)
@@ -213,8 +220,21 @@ def run_bench(seconds: float = 2.0, nchan: int = 1024, sample_rate: float = 2.4e
             best[name] = min(best[name], time.perf_counter() - t0)
     msps = {k: n / v / 1e6 for k, v in best.items()}
     ours = ("pfb", "fft")
+    if cfg is None:
+        from spinflip.daemon.config import defaults
+        cfg = defaults()
+    fs_cfg = float(cfg["source"]["sample_rate"])
+    raw_cfg = _noise_u8(max(int(cfg["spectrometer"]["channels"]) * 4, int(seconds * fs_cfg)),
+                        seed + 7)
+    from spinflip.daemon.commands.bench_sim import simulator_speed
+    sim = simulator_speed(min(3.0, max(0.5, seconds)))
     return {
-        "throughput_msps": {k: msps[k] for k in ("pfb", "fft", "welch")},
+        "simulator": sim,
+        "throughput_msps": {k: msps[k] for k in ("pfb", "fft", "bare_fft", "welch")},
+        "fraction_of_bare_fft": {k: msps[k] / msps["bare_fft"] for k in ours},
+        "stage_ns_per_sample": {k: stage_profile(blocks, chans[k]) for k in ours},
+        "core_share": (cs := core_share(cfg, raw_cfg, raw_cfg.size / 2 / fs_cfg))["share"],
+        "core_share_config": {k: v for k, v in cs.items() if k != "share"},
         "realtime_factor_2p4": {k: msps[k] * 1e6 / REAL_TIME_RATE for k in ours},
         "ratio_vs_welch": {k: msps[k] / msps["welch"] for k in ours},
         "spectrometer_msps": {"plain": msps["plain"], "flagged": msps["flagged"]},
@@ -245,10 +265,21 @@ def format_bench(r: dict) -> str:
         f"    Hann FFT chain    : {t['fft']:7.1f} MS/s = {rt['fft']:5.1f} x real time "
         f"at 2.4 MS/s, {q['fft']:.2f} x scipy.signal.welch",
         f"    scipy.signal.welch: {t['welch']:7.1f} MS/s (Hann, no overlap, two-sided)",
+        f"    bare scipy.fft.fft: {t['bare_fft']:7.1f} MS/s (complex64 rows of N, workers=1): "
+        f"PFB chain {r['fraction_of_bare_fft']['pfb']:.2f}, Hann FFT chain "
+        f"{r['fraction_of_bare_fft']['fft']:.2f} of it",
+        "  per stage, ns per sample (conversion, taps/window, DFT, power, sums):",
+        *[f"    {name:8}: " + ", ".join(f"{k} {v:.2f}" for k, v in r["stage_ns_per_sample"][key].items())
+          for key, name in (("pfb", "PFB"), ("fft", "Hann FFT"))],
+        f"  share of one core at the configured {r['core_share_config']['sample_rate'] / 1e6:g} MS/s, "
+        f"{r['core_share_config']['nchan']} channels ({r['core_share_config']['method']}):",
+        *[f"    {k:20}: {v:6.3f}" for k, v in r["core_share"].items()],
         "  interference flagging (impulses, spectral kurtosis, carriers) in the spectrometer:",
         f"    without {r['spectrometer_msps']['plain']:7.1f} MS/s, with "
         f"{r['spectrometer_msps']['flagged']:7.1f} MS/s: flagging adds "
         f"{100 * r['flagging_cost_share']:.0f} % to the DSP chain",
+        f"  simulator (default configuration, --fast): {r['simulator']['simulated_s_per_wall_s']:.1f} "
+        "simulated s per wall s",
         "  radiometer efficiency (1.0 = ideal radiometer of bandwidth ENBW):",
         f"    PFB     : {e['pfb']:.3f} measured, {ex['pfb']:.3f} expected, "
         f"ENBW {bw['pfb']:.3f} channels",

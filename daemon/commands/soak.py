@@ -11,7 +11,10 @@ What a station left alone for days needs, measured on this machine:
   since numpy's allocations make the RSS swing by several MB from one second to the next;
 * **CPU share**: CPU seconds the daemon used (``/proc/PID/stat`` utime + stime) per second of
   wall-clock time; 1.0 is one core busy. The simulator makes its samples itself, which a
-  dongle does for free, so this is an upper bound of what a station needs.
+  dongle does for free, so this is an upper bound of what a station needs; with
+  ``--source replay:FILE`` a capture is paced in real time (looped, ``source.replay_loop``),
+  which costs almost nothing, so the share is the daemon's own at the chosen sample rate and
+  channel count (total power: a capture holds one LO; T_sys fixed; flagging on).
 
 It runs ``spinflip run`` as a child process with a temporary configuration (live simulator,
 looking near the zenith; loopback sockets on free ports) and a temporary output folder, and
@@ -47,6 +50,31 @@ lon = 0.0
 lat = 80.0
 [spectrometer]
 integration_s = {integration_s}
+[publish]
+data = "tcp://127.0.0.1:{data}"
+control = "tcp://127.0.0.1:{control}"
+"""
+
+#: The daemon's own cost on a capture (``--source replay:FILE``): the file replayed in real time
+#: and looped, total power (a capture holds one LO), T_sys fixed (no noise source to fire),
+#: interference flagging as configured by default (on).
+_REPLAY_CONFIG = """
+[sim]
+start = "now"
+[source]
+kind = "replay"
+path = "{path}"
+replay_loop = true
+sample_rate = {sample_rate}
+[calibration]
+tsys_from = "fixed"
+[pointing]
+frame = "azel"
+lon = 0.0
+lat = 80.0
+[spectrometer]
+integration_s = {integration_s}
+channels = {channels}
 [publish]
 data = "tcp://127.0.0.1:{data}"
 control = "tcp://127.0.0.1:{control}"
@@ -118,13 +146,23 @@ class _Subscriber(threading.Thread):
 
 
 def run_soak(seconds: float = 600.0, integration_s: float = 5.0,
-             log: Callable[[str], None] | None = None) -> dict:
-    """Run the daemon for ``seconds`` and measure it; see the module docstring."""
+             log: Callable[[str], None] | None = None, replay: str | None = None,
+             sample_rate: float = 2.4e6, channels: int = 1024) -> dict:
+    """Run the daemon for ``seconds`` and measure it; see the module docstring. ``replay``: a
+    ``.cu8`` capture replayed in real time (looped) instead of the simulator, at
+    ``sample_rate`` with ``channels`` channels, so the CPU share is the daemon's own."""
     log = log or (lambda msg: print(msg, file=sys.stderr, flush=True))
     ports = {"data": free_loopback_port(), "control": free_loopback_port()}
     with tempfile.TemporaryDirectory(prefix="spinflip-soak-") as tmp:
         cfg = Path(tmp) / "soak.toml"
-        cfg.write_text(_CONFIG.format(integration_s=integration_s, **ports))
+        if replay is None:
+            cfg.write_text(_CONFIG.format(integration_s=integration_s, **ports))
+        else:
+            path = Path(replay).expanduser().resolve()
+            cfg.write_text(_REPLAY_CONFIG.format(
+                path=str(path).replace("\\", "\\\\").replace('"', '\\"'),
+                sample_rate=float(sample_rate), channels=int(channels),
+                integration_s=integration_s, **ports))
         out = Path(tmp) / "out"
         stop = threading.Event()
         subs = [_Subscriber(f"tcp://127.0.0.1:{ports['data']}", stop) for _ in range(2)]
@@ -180,6 +218,9 @@ def run_soak(seconds: float = 600.0, integration_s: float = 5.0,
     growth = (rss_end - rss_warm) / rss_warm if rss_warm else float("nan")
     return {
         "seconds": seconds, "exit_code": proc.returncode,
+        "source": "simulator" if replay is None else f"replay:{replay}",
+        "sample_rate": sample_rate if replay is not None else 2.4e6,
+        "channels": channels if replay is not None else 1024,
         "stderr_tail": stderr.strip().splitlines()[-3:] if stderr else [],
         "samples_received": status.get("samples_received"),
         "samples_lost": status.get("samples_lost"),
@@ -211,8 +252,11 @@ def verdict(r: dict) -> list[str]:
 
 
 def format_soak(r: dict) -> str:
+    what = ("real-time simulator" if r["source"] == "simulator" else
+            f"{r['source']} in real time, {r['sample_rate'] / 1e6:g} MS/s, {r['channels']} "
+            "channels")
     lines = [
-        f"soak of {r['seconds']:.0f} s, real-time simulator, two subscribers ({r['cores']} cores)",
+        f"soak of {r['seconds']:.0f} s, {what}, two subscribers ({r['cores']} cores)",
         f"  samples lost       {r['samples_lost']} of {r['samples_received']} received (target 0)",
         f"  messages missed    {r['messages_missed'][0]} and {r['messages_missed'][1]} "
         f"(of {sum(r['messages'][0].values())} and {sum(r['messages'][1].values())})",
@@ -227,7 +271,8 @@ def format_soak(r: dict) -> str:
     return "\n".join(lines)
 
 
-def soak_main(seconds: float, as_json: bool, check: bool) -> int:
-    r = run_soak(seconds)
+def soak_main(seconds: float, as_json: bool, check: bool, replay: str | None = None,
+              sample_rate: float = 2.4e6, channels: int = 1024) -> int:
+    r = run_soak(seconds, replay=replay, sample_rate=sample_rate, channels=channels)
     print(json.dumps(r, indent=2) if as_json else format_soak(r))
     return 1 if (check and verdict(r)) else 0

@@ -63,6 +63,7 @@ from __future__ import annotations
 
 import numpy as np
 import scipy.fft
+from numpy.lib.stride_tricks import as_strided
 
 __all__ = ["Channelizer", "StreamingChannelizer", "make_channelizer", "power_sums",
            "WINDOWS", "PROTOTYPE_WIDTH"]
@@ -79,7 +80,12 @@ KAISER_BETA = 8.6
 #: Window names accepted by :func:`make_channelizer`.
 WINDOWS = ("hann", "hamming", "blackman", "kaiser")
 
-_CHUNK = 128   # spectra per pass: keeps the working set (128 x taps x N x 8 bytes) in cache
+#: Samples per pass (chunk_spectra = CHUNK_SAMPLES / N spectra, at most 128): the pass's frames
+#: (about 1 MB at any N) stay in the CPU's cache between the taps, the DFT and the power.
+CHUNK_SAMPLES = 131072
+#: The ADC's zero and full scale in codes: sample = (code - 127.5) / 127.5 (as dsp.samples).
+U8_ZERO = 127.5
+U8_SCALE = 127.5
 
 
 def _window(name: str, length: int, periodic: bool) -> np.ndarray:
@@ -135,9 +141,20 @@ class Channelizer:
         self.coeffs = coeffs.astype(np.float32).reshape(taps, nchan)
         # the same real coefficients interleaved (re, im) to weight complex samples seen as floats
         self._coeffs_iq = np.repeat(self.coeffs, 2, axis=1)
+        # and divided by 127.5, for samples loaded from bytes as (code - 127.5) (see load_u8)
+        self._coeffs_iq_u8 = np.repeat((coeffs / U8_SCALE).astype(np.float32).reshape(taps, nchan),
+                                       2, axis=1)
         #: 1 / sum(h^2): white noise of variance s^2 gives mean power s^2 per channel
         self.norm = np.float32(1.0 / np.sum(coeffs ** 2))
         self._enbw_bins = self._enbw_from_response(coeffs, self.nchan)
+        #: spectra per pass: CHUNK_SAMPLES / N (at most 128, at least 1)
+        self.chunk_spectra = max(1, min(128, CHUNK_SAMPLES // self.nchan))
+        self._y = np.empty(0, dtype=np.float32)        # weighted frames of one pass, (c, 2N)
+        self._p = np.empty(0, dtype=np.float32)        # power of one pass, (c, N)
+        self._buf = np.empty(0, dtype=np.complex64)    # history + samples loaded by load_u8
+        self._loaded: np.ndarray | None = None         # the view load_u8 handed out last
+        self._loaded_at = 0                            # where it starts in _buf
+        self._history_u8 = False                       # history in (code - 127.5) units
 
     # ----------------------------------------------------------------- sizes
     @property
@@ -150,26 +167,94 @@ class Channelizer:
         return max(0, (int(nsamples) - self.history_samples) // self.nchan)
 
     # --------------------------------------------------------------- frames
-    def _prepare(self, x: np.ndarray) -> tuple[np.ndarray, int]:
-        """Samples to work on and the number m of spectra they give (stateless: x itself)."""
-        x = np.asarray(x, dtype=np.complex64).reshape(-1)
-        return x, self.n_spectra(x.size)
+    def _stream(self, x: np.ndarray) -> tuple[np.ndarray, bool]:
+        """The samples to work on (history first, for streaming) and whether they are in
+        (code - 127.5) units (loaded by :meth:`load_u8`)."""
+        if self._loaded is not None and x is self._loaded:
+            self._loaded = None
+            # history in front, unless reset() dropped it since the load
+            start = self._loaded_at - self.pending_samples
+            return self._buf[start: self._loaded_at + x.size], True
+        self._loaded = None
+        return self._with_history(np.asarray(x, dtype=np.complex64).reshape(-1)), False
+
+    def _with_history(self, x: np.ndarray) -> np.ndarray:
+        return x                                    # stateless: no history
+
+    def _keep(self, stream: np.ndarray, m: int, u8: bool) -> None:
+        """Keep what the next call needs (stateless: nothing)."""
+
+    @property
+    def pending_samples(self) -> int:
+        """Samples held for the next call (always 0 for the stateless channelizer)."""
+        return 0
+
+    def load_u8(self, raw: np.ndarray) -> np.ndarray:
+        """Convert interleaved 8-bit IQ into the channelizer's own buffer, behind its history.
+
+        The samples are stored as ``code - 127.5`` per component (exact in float32, one pass
+        over the bytes, no look-up), i.e. 127.5 times :func:`u8_to_complex`'s values; the
+        factor 1 / 127.5 is folded into the coefficients, so :meth:`sums` and :meth:`power`
+        of the returned view give the same spectra as of ``u8_to_complex(raw)`` (to float32
+        rounding). The view is valid until the next ``load_u8``; pass it (unsliced) to
+        :meth:`sums` or :meth:`power`. Scale-free users (the impulse blanker) may read it.
+
+        Parameters
+        ----------
+        raw : uint8 array of even length (I, Q interleaved)
+
+        Returns
+        -------
+        ndarray of complex64
+            The new samples, in units of 1 / 127.5 full scale.
+        """
+        raw = np.ascontiguousarray(raw, dtype=np.uint8).reshape(-1)
+        if raw.size % 2:
+            raise ValueError("interleaved IQ needs an even number of bytes")
+        h, n = self.pending_samples, raw.size // 2
+        if self._buf.size < h + n:
+            self._buf = np.empty(h + n, dtype=np.complex64)
+        self._loaded_history()
+        self._loaded_at = h
+        view = self._buf[h:h + n]
+        np.subtract(raw, np.float32(U8_ZERO), out=view.view(np.float32))
+        self._loaded = view
+        return view
+
+    def _loaded_history(self) -> None:
+        """Put the history in front of loaded samples (stateless: none)."""
 
     def _rows(self, x: np.ndarray, m: int) -> np.ndarray:
         """Rows of N samples as float32 (re, im) pairs: shape (m + taps - 1, 2N), a view."""
         return x[: (m + self.taps - 1) * self.nchan].view(np.float32).reshape(-1, 2 * self.nchan)
 
-    def _chunk_power(self, rows: np.ndarray, j: int, k: int) -> np.ndarray:
-        """Power of spectra j .. k-1 in DFT order (not shifted), float32 (k - j, N)."""
-        # weighted overlap-add: y_j = sum_t h_t * x_(j + t), rows being consecutive N-sample frames
-        y = rows[j:k] * self._coeffs_iq[0]
-        for t in range(1, self.taps):
-            y += rows[j + t:k + t] * self._coeffs_iq[t]
+    def _work(self, c: int) -> tuple[np.ndarray, np.ndarray]:
+        """Preallocated work arrays for a pass of ``c`` spectra: frames (c, 2N), power (c, N)."""
+        need = self.chunk_spectra * 2 * self.nchan
+        if self._y.size < need:
+            self._y = np.empty(need, dtype=np.float32)
+            self._p = np.empty(need // 2, dtype=np.float32)
+        return (self._y[: c * 2 * self.nchan].reshape(c, 2 * self.nchan),
+                self._p[: c * self.nchan].reshape(c, self.nchan))
+
+    def _chunk_power(self, rows: np.ndarray, j: int, k: int, h: np.ndarray) -> np.ndarray:
+        """|X|^2 of spectra j .. k-1 in DFT order (not shifted, not normalised), float32
+        (k - j, N), in the work array (valid until the next pass)."""
+        c, n2 = k - j, 2 * self.nchan
+        y, p = self._work(c)
+        if self.taps == 1:
+            np.multiply(rows[j:k], h[0], out=y)
+        else:
+            # weighted overlap-add y_j = sum_t h_t x_(j + t) as one contraction over a strided
+            # view (taps, c, 2N) of the rows: no temporaries
+            s0, s1 = rows.strides
+            v = as_strided(rows[j:], shape=(self.taps, c, n2), strides=(s0, s0, s1),
+                           writeable=False)
+            np.einsum("tjn,tn->jn", v, h, out=y)
         spec = scipy.fft.fft(y.view(np.complex64), axis=1, workers=1, overwrite_x=True)
-        p = spec.real ** 2          # |X|^2 = re^2 + im^2, float32
-        p += spec.imag ** 2
-        p *= self.norm
-        return p
+        f = spec.view(np.float32)
+        np.square(f, out=f)                         # |X|^2 = re^2 + im^2 on the float view
+        return np.add(f[:, 0::2], f[:, 1::2], out=p)
 
     # --------------------------------------------------------------- output
     def power(self, x: np.ndarray) -> np.ndarray:
@@ -178,33 +263,36 @@ class Channelizer:
         Parameters
         ----------
         x : ndarray of complex64
-            Contiguous baseband samples.
+            Contiguous baseband samples (or the view returned by :meth:`load_u8`).
 
         Returns
         -------
         ndarray of float32, shape (m, nchan)
             P_j[k] = |X_j[k]|^2 / sum(h^2), channels fftshifted (DC at index nchan // 2).
         """
-        x, m = self._prepare(x)
+        x, u8 = self._stream(x)
+        m = self.n_spectra(x.size)
         out = np.empty((m, self.nchan), dtype=np.float32)
         if m:
             rows = self._rows(x, m)
-            for j in range(0, m, _CHUNK):
-                k = min(m, j + _CHUNK)
-                out[j:k] = self._chunk_power(rows, j, k)
+            h = self._coeffs_iq_u8 if u8 else self._coeffs_iq
+            for j in range(0, m, self.chunk_spectra):
+                k = min(m, j + self.chunk_spectra)
+                np.multiply(self._chunk_power(rows, j, k, h), self.norm, out=out[j:k])
+        self._keep(x, m, u8)
         return np.fft.fftshift(out, axes=1)
 
     def sums(self, x: np.ndarray, exclude: np.ndarray | None = None
              ) -> tuple[np.ndarray, np.ndarray, int]:
         """Sums of power and of power squared over the spectra of ``x``, never all held at once.
 
-        Equivalent to ``power_sums(self.power(x))`` with less memory traffic: each run of
-        128 spectra is summed in float32 (relative rounding below 1e-5) and accumulated in
-        float64.
+        Equivalent to ``power_sums(self.power(x))`` with less memory traffic: each pass of
+        :attr:`chunk_spectra` spectra is summed in float32 (relative rounding below 1e-5),
+        accumulated in float64, and normalised at the end (S1 by 1 / sum(h^2), S2 by its square).
 
         Parameters
         ----------
-        x : complex64 samples
+        x : complex64 samples, or the view returned by :meth:`load_u8`
         exclude : bool[m] or None
             Spectra to leave out (e.g. blanked by impulse detection); ``m`` is
             :meth:`spectra_for` ``(x.size)``.
@@ -216,7 +304,8 @@ class Channelizer:
         m : int
             Number of spectra summed.
         """
-        x, m = self._prepare(x)
+        x, u8 = self._stream(x)
+        m = self.n_spectra(x.size)
         s1 = np.zeros(self.nchan)
         s2 = np.zeros(self.nchan)
         used = m
@@ -224,17 +313,23 @@ class Channelizer:
             if exclude is not None:
                 exclude = np.asarray(exclude, dtype=bool)
                 if exclude.shape != (m,):
+                    self._keep(x, m, u8)
                     raise ValueError(f"exclude has shape {exclude.shape}; expected ({m},)")
                 used = m - int(exclude.sum())
             rows = self._rows(x, m)
-            for j in range(0, m, _CHUNK):
-                k = min(m, j + _CHUNK)
-                p = self._chunk_power(rows, j, k)
+            h = self._coeffs_iq_u8 if u8 else self._coeffs_iq
+            for j in range(0, m, self.chunk_spectra):
+                k = min(m, j + self.chunk_spectra)
+                p = self._chunk_power(rows, j, k, h)
                 if exclude is not None and exclude[j:k].any():
                     p[exclude[j:k]] = 0.0
                 s1 += p.sum(axis=0)
-                p *= p
+                np.square(p, out=p)
                 s2 += p.sum(axis=0)
+            norm = float(self.norm)
+            s1 *= norm
+            s2 *= norm * norm
+        self._keep(x, m, u8)
         return np.fft.fftshift(s1), np.fft.fftshift(s2), used
 
     def spectra_for(self, nsamples: int) -> int:
@@ -313,17 +408,29 @@ class StreamingChannelizer(Channelizer):
         """Samples held for the next call."""
         return int(self._history.size)
 
-    def _prepare(self, x: np.ndarray) -> tuple[np.ndarray, int]:
-        x = np.asarray(x, dtype=np.complex64).reshape(-1)
+    def _history_as(self, u8: bool) -> np.ndarray:
+        """The history in the units of the samples it goes in front of."""
+        if u8 == self._history_u8 or not self._history.size:
+            return self._history
+        return self._history * np.float32(U8_SCALE if u8 else 1.0 / U8_SCALE)
+
+    def _with_history(self, x: np.ndarray) -> np.ndarray:
         if self._history.size:
-            x = np.concatenate([self._history, x])
-        m = self.n_spectra(x.size)
-        self._history = x[m * self.nchan:].copy()   # the next spectrum starts at sample m N
-        return x, m
+            return np.concatenate([self._history_as(False), x])
+        return x
+
+    def _loaded_history(self) -> None:
+        self._buf[: self._history.size] = self._history_as(True)
+
+    def _keep(self, stream: np.ndarray, m: int, u8: bool) -> None:
+        # the next spectrum starts at sample m N
+        self._history = stream[m * self.nchan:].copy()
+        self._history_u8 = u8
 
     def reset(self) -> None:
         """Drop the history (after an LO retune)."""
         self._history = np.zeros(0, dtype=np.complex64)
+        self._history_u8 = False
 
 
 def make_channelizer(method: str, nchan: int, taps: int = 4, window: str = "hann",

@@ -30,13 +30,29 @@ def u8_to_complex(raw: np.ndarray) -> np.ndarray:
     return IQ_LUT[raw.view("<u2")]
 
 
-def complex_to_u8(x: np.ndarray, rng: np.random.Generator | None = None) -> np.ndarray:
+def complex_to_u8(x: np.ndarray, rng: np.random.Generator | None = None,
+                  overwrite: bool = False) -> np.ndarray:
     """Quantise complex samples (full scale +-1) to interleaved uint8, clipping at the rails.
 
     Rounding to the nearest code after mapping x -> 127.5 + 127.5 x, as the dongle's ADC does;
-    values beyond full scale clip to 0 or 255.
+    values beyond full scale clip to 0 or 255. The work is done on the interleaved float view
+    of the samples (I, Q, I, Q, ...), which is already the output's order: scale, offset,
+    round and clip in place, then one cast to uint8.
+
+    Parameters
+    ----------
+    x : complex samples (complex64 stays in float32, other types in float64)
+    rng : unused (kept for callers that pass one)
+    overwrite : ``x`` (C-contiguous complex64 or complex128) may be used as the work space
+        and is left holding the codes as floats
     """
-    out = np.empty(2 * x.size, dtype=np.uint8)
-    out[0::2] = np.clip(np.rint(_ZERO + x.real * 127.5), 0, 255)
-    out[1::2] = np.clip(np.rint(_ZERO + x.imag * 127.5), 0, 255)
-    return out
+    dtype = np.result_type(np.asarray(x).dtype, np.complex64)
+    z = np.ascontiguousarray(x, dtype=dtype).reshape(-1)
+    f = z.view(z.real.dtype)                     # interleaved I, Q
+    if not (overwrite and np.shares_memory(z, x)):
+        f = f.copy()
+    f *= 127.5
+    f += _ZERO
+    np.rint(f, out=f)
+    np.clip(f, 0, 255, out=f)
+    return f.astype(np.uint8)

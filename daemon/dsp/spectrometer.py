@@ -33,7 +33,6 @@ import numpy as np
 
 from spinflip.daemon.dsp.block import REF, SIG, Block
 from spinflip.daemon.dsp.channelizer import make_channelizer
-from spinflip.daemon.dsp.samples import u8_to_complex
 from spinflip.daemon.rfi.impulses import ImpulseBlanker
 from spinflip.daemon.rfi.spectral_kurtosis import sk_flags
 
@@ -138,15 +137,16 @@ class Spectrometer:
         m : float64[nchan] number of spectra in ``s1`` per channel
         """
         integ = self.current
-        x = u8_to_complex(block.raw)
         if block.lo_hz != self._last_lo or block.settle_samples or block.cal_on != self._last_cal:
             self.channelizer.reset()
             if self.blanker is not None:
                 self.blanker.reset()
             self._last_lo = block.lo_hz
             self._last_cal = block.cal_on
-        skip = min(block.settle_samples, x.size)
-        x = x[skip:]
+        skip = min(block.settle_samples, block.raw.size // 2)
+        # converted into the channelizer's buffer behind its history (code - 127.5: the
+        # blanker is scale-free, the channelizer folds 1/127.5 into its coefficients)
+        x = self.channelizer.load_u8(block.raw[2 * skip:])
         sk_bad = None
         if self.flagging is None:
             s1, s2, spectra = self.channelizer.sums(x)

@@ -1,7 +1,9 @@
 """Replay of raw ``.cu8`` captures: interleaved unsigned 8-bit I/Q, the trade's usual format.
 
 A capture holds one LO setting, so switching is off on replay (the schedule is total power);
-sample rate and centre frequency come from the configuration or the command line. The file is
+sample rate and centre frequency come from the configuration or the command line. With
+``source.replay_loop`` the file starts again at its end (time running on), so a short capture
+can pace a long soak of the daemon's own cost. The file is
 checked before anything is processed: missing, empty, odd-length, or shorter than one block
 of samples each stop with a one-line message (exit 2), so nothing is written half.
 """
@@ -95,6 +97,9 @@ class ReplaySource(WallClock):
     def read(self) -> Block | None:
         assert self._fh is not None, "read() after open()"
         data = self._fh.read(2 * self.block_samples)
+        if len(data) < 2 * self.block_samples and self.cfg["source"]["replay_loop"]:
+            self._fh.seek(0)                  # looped: the capture again, time running on
+            data = self._fh.read(2 * self.block_samples)
         if len(data) < 2:
             return None
         data = data[: len(data) // 2 * 2]

@@ -52,6 +52,7 @@ from spinflip.daemon.sky import coordinates
 from spinflip.daemon.sky.beam import beamwidth_deg
 from spinflip.daemon.sky.hi_line import C_M_S, HI_REST_FREQ_HZ
 from spinflip.daemon.sources.base import FiresNoiseSource, SourceError
+from spinflip.daemon.sources.complex_noise import shaped_complex_normal
 from spinflip.daemon.sources.galaxy import ModelGalaxy
 from spinflip.daemon.sources.sample_clock import SampleClock
 
@@ -61,6 +62,7 @@ _RMS_REF = 0.16
 _GARBAGE_S = 0.004             # samples after a retune that are junk (PLL relocking)
 _TSYS_NOMINAL_K = 85.0         # Tsys at which the input rms is _RMS_REF at the reference gain
 _SKY_REFRESH_S = 5.0           # recompute the sky spectrum this often (simulated seconds)
+_V_GRID = np.linspace(-400.0, 400.0, 1601)   # LSRK radio velocity grid of the line model, km/s
 
 
 def tuner_bandpass(f_hz: np.ndarray, sample_rate: float) -> np.ndarray:
@@ -163,6 +165,9 @@ class SimSource(FiresNoiseSource):
         self._anchor: tuple[float, float] | None = None   # (monotonic s, simulated s) of pacing
         self._skip_s = 0.0           # simulated time skipped (a plan waiting under --fast)
         self._sky_cache: dict[tuple, tuple[np.ndarray, dict]] = {}
+        self._where_cache: tuple[tuple, tuple[dict, float]] | None = None
+        self._line_cache: tuple[tuple, np.ndarray] | None = None
+        self._power_cache: dict[tuple, tuple[np.ndarray, np.ndarray]] = {}
         self._tones: dict = {}    # (baseband Hz, samples) -> exp(2 pi i f k / fs), for carriers
         self._index = 0
         self._wall0: float | None = None   # set by open()
@@ -183,15 +188,9 @@ class SimSource(FiresNoiseSource):
                                  tcal_k=sim["noise_source_k"])
             self._sky_cache[bucket] = (np.full(_CHUNK, base), {})
             return self._sky_cache[bucket]
-        with self._pointing_lock:
-            pointing = self.pointing
-        assert pointing is not None, "the sky needs set_pointing() first"
-        coord = pointing(t)
-        pos = coordinates.describe(coord, self.location, t)
-        vframe = float(coordinates.vframe_lsrk_m_s(coord, self.location, t))   # one time
-        v_grid = np.linspace(-400.0, 400.0, 1601)
-        tb = self.galaxy.brightness_temperature(pos["GLON"], pos["GLAT"], v_grid,
-                                                beam_fwhm_deg=self.beam_fwhm_deg)
+        pos, vframe = self._where(t, bucket[0], bucket[3])
+        v_grid = _V_GRID
+        tb = self._line_model(pos["GLON"], pos["GLAT"])
         nu = lo_hz + self.base_freq
         v_lsrk_kms = (C_M_S * (HI_REST_FREQ_HZ - nu) / HI_REST_FREQ_HZ + vframe) / 1e3
         line = np.interp(v_lsrk_kms, v_grid, tb, left=0.0, right=0.0)
@@ -205,6 +204,56 @@ class SimSource(FiresNoiseSource):
         self._sky_cache[bucket] = (line + base, pos)
         return self._sky_cache[bucket]
 
+    def _where(self, t: Time, t_bucket: int, version: int) -> tuple[dict, float]:
+        """(Position, VFRAME m/s) of the beam at ``t``; one computation per sky bucket and
+        pointing, shared by the LO frequencies of a switching cycle."""
+        key = (t_bucket, version)
+        if self._where_cache is not None and self._where_cache[0] == key:
+            return self._where_cache[1]
+        with self._pointing_lock:
+            pointing = self.pointing
+        assert pointing is not None, "the sky needs set_pointing() first"
+        coord = pointing(t)
+        pos = coordinates.describe(coord, self.location, t)
+        vframe = float(coordinates.vframe_lsrk_m_s(coord, self.location, t))   # one time
+        self._where_cache = (key, (pos, vframe))
+        return pos, vframe
+
+    def _line_model(self, glon: float, glat: float) -> np.ndarray:
+        """Beam-smoothed line brightness on :data:`_V_GRID`; kept while the beam stays on the
+        same position (a fixed Galactic pointing never leaves it), recomputed when it moves."""
+        key = (glon, glat, self.beam_fwhm_deg, id(self.galaxy))
+        if self._line_cache is not None and self._line_cache[0] == key:
+            return self._line_cache[1]
+        tb = self.galaxy.brightness_temperature(glon, glat, _V_GRID,
+                                                beam_fwhm_deg=self.beam_fwhm_deg)
+        self._line_cache = (key, tb)
+        return tb
+
+    def _power(self, t: Time, lo_hz: float) -> np.ndarray:
+        """float32 E|X_k|^2 per shaping bin before the gain drift, for the sky at ``t`` seen at
+        ``lo_hz`` with the noise source as it is; cached with the sky spectrum.
+
+        P(f) = B(f) T(f), P_img(f) = 10^-2.5 P(-f) (image at -25 dB), scaled so that the mean
+        temperature at the nominal Tsys gives the reference rms: E|X_k|^2 = N (P + P_img) s
+        with s = 2 A_ref^2 / (mean(B) T_nominal), and x = IFFT(X) has E|x|^2 = mean P s.
+        """
+        sky, _ = self._sky_psd(t, lo_hz)
+        t_cal = self.cfg["sim"]["noise_source_k"] if self.diode_on else 0.0
+        key = (id(sky), t_cal, self.amplitude)
+        cached = self._power_cache.get(key)
+        if cached is not None and cached[0] is sky:     # the very array (ids can be reused)
+            return cached[1]
+        temp = sky + t_cal
+        psd = self.bandpass * temp
+        psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
+        scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * _TSYS_NOMINAL_K)
+        power = (_CHUNK * scale * psd).astype(np.float32)
+        if len(self._power_cache) > 16:
+            self._power_cache.clear()
+        self._power_cache[key] = (sky, power)
+        return power
+
     def _gain(self, t_rel_s: float) -> float:
         sim = self.cfg["sim"]
         return 1.0 + sim["gain_drift"] * np.sin(2 * np.pi * t_rel_s / sim["gain_drift_period_s"])
@@ -212,17 +261,10 @@ class SimSource(FiresNoiseSource):
     # -- the receiver ----------------------------------------------------------------------
     def _samples(self, t_rel_s: float, lo_hz: float, hop: bool) -> np.ndarray:
         t = self.t_start + t_rel_s * u.s
-        temp, _ = self._sky_psd(t, lo_hz)
-        temp = temp + (self.cfg["sim"]["noise_source_k"] if self.diode_on else 0.0)
-        psd = self._gain(t_rel_s) * self.bandpass * temp
-        psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
-        # scale so that the mean temperature at the nominal Tsys gives the reference rms
-        scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * _TSYS_NOMINAL_K)
-        amp = np.sqrt(_CHUNK * psd * scale / 2).astype(np.float32)
-        n_chunks = self.block_samples // _CHUNK
-        w = self.rng.standard_normal((n_chunks, 2, _CHUNK), dtype=np.float32)
-        spec = (w[:, 0] + 1j * w[:, 1]) * amp
-        x = scipy.fft.ifft(spec, axis=1, workers=1).reshape(-1)
+        power = self._power(t, lo_hz) * np.float32(self._gain(t_rel_s))
+        # X_k = sqrt(E|X_k|^2 / 2) (a_k + i b_k) per chunk, x = IFFT(X) in place
+        spec = shaped_complex_normal(self.rng, power, self.block_samples // _CHUNK)
+        x = scipy.fft.ifft(spec, axis=1, workers=1, overwrite_x=True).reshape(-1)
         x += np.complex64(0.006 + 0.004j)                                     # DC offset
         if self.cfg["sim"]["rfi"]:
             self._add_rfi(x, t_rel_s, lo_hz)
@@ -333,6 +375,6 @@ class SimSource(FiresNoiseSource):
             assert self._wall0 is not None, "open() sets both"
             step = self.clock.check()
             t0 = self.clock.time_of(self._wall0 + t_rel)
-        return Block(raw=complex_to_u8(x), lo_hz=lo, sample_rate=self.fs, t0_unix_s=t0,
+        return Block(raw=complex_to_u8(x, overwrite=True), lo_hz=lo, sample_rate=self.fs, t0_unix_s=t0,
                      phase=phase, cal_on=cal_state, lost_before=0,
                      settle_samples=sch.settle_samples if hop else 0, index=i, clock_step_s=step)
