@@ -22,6 +22,7 @@ from __future__ import annotations
 import ctypes
 import os
 from collections.abc import Callable
+from typing import Any
 
 #: Arenas the daemon's process may use.
 ARENA_MAX = 2
@@ -45,7 +46,7 @@ def limit_malloc_arenas(n: int = ARENA_MAX) -> bool:
     """
     if os.environ.get("MALLOC_ARENA_MAX"):
         return False
-    mallopt = _libc_function("mallopt")
+    mallopt: Any = _libc_function("mallopt")
     if mallopt is None:
         return False
     mallopt.argtypes = [ctypes.c_int, ctypes.c_int]

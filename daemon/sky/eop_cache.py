@@ -35,6 +35,7 @@ import sys
 import tempfile
 from importlib import metadata
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -101,7 +102,7 @@ def _digest(arrays: dict[str, np.ndarray]) -> str:
 def _to_arrays(table: object, key: str) -> dict[str, np.ndarray]:
     """The table's columns (data, unit, mask) and metadata as plain arrays."""
     arrays: dict[str, np.ndarray] = {}
-    columns = []
+    columns: list[dict[str, bool | str | None]] = []
     for name in KEPT_COLUMNS:
         col = table[name]  # type: ignore[index]
         unit = getattr(col, "unit", None)
@@ -172,7 +173,8 @@ def _write(path: Path, arrays: dict[str, np.ndarray]) -> None:
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
         buf = io.BytesIO()
-        np.savez(buf, **arrays)
+        save: Any = np.savez        # numpy's stubs take the keywords for flags
+        save(buf, **arrays)
         fd, tmp = tempfile.mkstemp(prefix=".eop-", suffix=".tmp", dir=path.parent)
         try:
             with os.fdopen(fd, "wb") as f:
