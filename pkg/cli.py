@@ -180,8 +180,9 @@ def _cmd_soak(args: argparse.Namespace) -> int:
 
 
 def _cmd_run(args: argparse.Namespace) -> int:
-    from spinflip.daemon.run.heap import limit_malloc_arenas
+    from spinflip.daemon.run.heap import limit_malloc_arenas, map_large_blocks
     limit_malloc_arenas()     # before any thread starts: a steady RSS (daemon/run/heap.py)
+    map_large_blocks()
     from spinflip.daemon import config as config_mod
     from spinflip.daemon.run.observation import Daemon
     from spinflip.daemon.sources.base import parse_source_option

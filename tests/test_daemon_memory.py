@@ -30,6 +30,18 @@ def test_malloc_arenas_capped_unless_the_user_chose(monkeypatch):
         assert heap.limit_malloc_arenas() is True      # mallopt(3) accepted M_ARENA_MAX
 
 
+def test_large_blocks_mapped_unless_the_user_chose(monkeypatch):
+    monkeypatch.setenv("MALLOC_MMAP_THRESHOLD_", "65536")
+    assert heap.map_large_blocks() is False         # the user's setting wins
+    monkeypatch.delenv("MALLOC_MMAP_THRESHOLD_")
+    try:
+        os.confstr("CS_GNU_LIBC_VERSION")
+    except ValueError:
+        assert heap.map_large_blocks() is False     # not glibc: nothing to do
+    else:
+        assert heap.map_large_blocks() is True      # mallopt(3) accepted M_MMAP_THRESHOLD
+
+
 def test_every_commands_path_imports_no_numerical_library():
     """``spinflip --help``, ``ctl`` and the parser import no numpy, scipy, astropy or rich."""
     code = ("import sys, spinflip.cli; "

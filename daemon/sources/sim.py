@@ -61,6 +61,7 @@ _GAIN_REF_DB = 40.2            # gain at which the rms per component is _RMS_REF
 _RMS_REF = 0.16
 _GARBAGE_S = 0.004             # samples after a retune that are junk (PLL relocking)
 _TSYS_NOMINAL_K = 85.0         # Tsys at which the input rms is _RMS_REF at the reference gain
+_CACHED_SKIES = 4              # sky spectra kept (2 LOs x this bucket and the last): memory
 _SKY_REFRESH_S = 5.0           # recompute the sky spectrum this often (simulated seconds)
 _V_GRID = np.linspace(-400.0, 400.0, 1601)   # LSRK radio velocity grid of the line model, km/s
 
@@ -199,7 +200,7 @@ class SimSource(FiresNoiseSource):
         self.truth = TrueSky(tsys_k=base, t_cont_k=t_cont, vframe_m_s=vframe,
                              tcal_k=sim["noise_source_k"], v_grid_km_s=v_grid, tb_k=tb,
                              glon_deg=pos["GLON"], glat_deg=pos["GLAT"])
-        if len(self._sky_cache) > 8:
+        if len(self._sky_cache) >= _CACHED_SKIES:       # both LOs of the current sky
             self._sky_cache.clear()
         self._sky_cache[bucket] = (line + base, pos)
         return self._sky_cache[bucket]
@@ -249,7 +250,7 @@ class SimSource(FiresNoiseSource):
         psd = psd + 10 ** (-2.5) * psd[(-np.arange(_CHUNK)) % _CHUNK]     # image at -25 dB
         scale = 2 * self.amplitude ** 2 / (self.bandpass.mean() * _TSYS_NOMINAL_K)
         power = (_CHUNK * scale * psd).astype(np.float32)
-        if len(self._power_cache) > 16:
+        if len(self._power_cache) >= 2 * _CACHED_SKIES:  # and the noise source on or off
             self._power_cache.clear()
         self._power_cache[key] = (sky, power)
         return power
