@@ -47,9 +47,10 @@ import os
 import stat
 import warnings
 from collections import Counter
-from collections.abc import Iterable, Iterator
+from collections.abc import Callable, Iterable, Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
+from typing import TypeVar
 
 import numpy as np
 import numpy.typing as npt
@@ -494,37 +495,37 @@ class RestFrequencyCheck:
         return None
 
 
+T = TypeVar("T", ScanRows, ScanSummary)
+
+
+def _checked(paths: Iterable[Path | str], read: Callable[[Path], T | Unusable],
+             restfreq: Callable[[T], float], check: RestFrequencyCheck | None
+             ) -> Iterator[T | Unusable]:
+    """``read`` of every scan under ``paths`` in turn, mixed rest frequencies refused."""
+    check = check if check is not None else RestFrequencyCheck()
+    for item in find_scan_files(paths):
+        if isinstance(item, Unusable):
+            yield item
+            continue
+        got = read(item)
+        if isinstance(got, Unusable):
+            yield got
+            continue
+        bad = check(item, restfreq(got))
+        yield bad if bad is not None else got
+
+
 def iter_scans(paths: Iterable[Path | str], *,
                restfreq_check: RestFrequencyCheck | None = None
                ) -> Iterator[ScanRows | Unusable]:
     """Every scan under ``paths`` read in turn (:func:`find_scan_files`, :func:`read_rows`),
     one in memory at a time; mixed rest frequencies are :class:`Unusable` (the first usable
     scan sets the line; pass a shared ``restfreq_check`` to carry it across calls)."""
-    check = restfreq_check if restfreq_check is not None else RestFrequencyCheck()
-    for item in find_scan_files(paths):
-        if isinstance(item, Unusable):
-            yield item
-            continue
-        scan = read_rows(item)
-        if isinstance(scan, ScanRows):
-            bad = check(scan.path, float(scan.restfreq_hz[0]))
-            yield bad if bad is not None else scan
-        else:
-            yield scan
+    return _checked(paths, read_rows, lambda s: float(s.restfreq_hz[0]), restfreq_check)
 
 
 def iter_summaries(paths: Iterable[Path | str], *,
                    restfreq_check: RestFrequencyCheck | None = None
                    ) -> Iterator[ScanSummary | Unusable]:
     """:func:`summarise` of every scan under ``paths`` (as :func:`iter_scans`)."""
-    check = restfreq_check if restfreq_check is not None else RestFrequencyCheck()
-    for item in find_scan_files(paths):
-        if isinstance(item, Unusable):
-            yield item
-            continue
-        s = summarise(item)
-        if isinstance(s, ScanSummary):
-            bad = check(s.path, s.restfreq_hz)
-            yield bad if bad is not None else s
-        else:
-            yield s
+    return _checked(paths, summarise, lambda s: float(s.restfreq_hz), restfreq_check)

@@ -36,7 +36,7 @@ from spinflip.daemon.calibration.y_factor import (
     system_temperature_k,
     y_factor,
 )
-from spinflip.daemon.storage.durable import fsync_dir
+from spinflip.daemon.storage.durable import fsync_dir, replace_atomically
 from spinflip.daemon.utc import utc_iso
 
 #: A record measured at a centre frequency further than this from the current one is refused, Hz.
@@ -331,21 +331,8 @@ def save_record(record: LoadsRecord, folder: str | os.PathLike[str]) -> Path:
     final = folder / f"{record.name}.json"
     if final.exists():
         raise LoadsError(f"calibration record {final} exists already; it is not overwritten")
-    tmp = folder / f"{record.name}.json.tmp"
     text = json.dumps(data, indent=2, allow_nan=False) + "\n"
-    try:
-        with open(tmp, "w", encoding="ascii") as fh:  # "w" truncates a .tmp a crash left
-            fh.write(text)
-            fh.flush()
-            os.fsync(fh.fileno())
-        os.replace(tmp, final)
-    except BaseException:
-        try:
-            tmp.unlink()
-        except OSError:
-            pass
-        raise
-    fsync_dir(folder)
+    replace_atomically(final, text.encode("ascii"))
     return final
 
 

@@ -51,31 +51,29 @@ def _libc_function(name: str) -> Callable[..., int] | None:
         return None
 
 
+def _mallopt(param: int, value: int, user_variable: str) -> bool:
+    """mallopt(3) ``param`` = ``value`` unless the user set ``user_variable`` in the
+    environment (theirs wins) or the C library is not glibc; True when set."""
+    if os.environ.get(user_variable):
+        return False
+    mallopt: Any = _libc_function("mallopt")
+    if mallopt is None:
+        return False
+    mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
+    mallopt.restype = ctypes.c_int
+    return mallopt(param, int(value)) == 1
+
+
 def limit_malloc_arenas(n: int = ARENA_MAX) -> bool:
     """Cap glibc's malloc arenas at ``n`` unless ``MALLOC_ARENA_MAX`` is set; True when set.
 
     Call before the daemon starts its threads (an arena is picked at a thread's first
     allocation).
     """
-    if os.environ.get("MALLOC_ARENA_MAX"):
-        return False
-    mallopt: Any = _libc_function("mallopt")
-    if mallopt is None:
-        return False
-    mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
-    mallopt.restype = ctypes.c_int
-    return mallopt(_M_ARENA_MAX, int(n)) == 1
-
+    return _mallopt(_M_ARENA_MAX, n, "MALLOC_ARENA_MAX")
 
 
 def map_large_blocks(threshold: int = MMAP_THRESHOLD) -> bool:
     """Serve allocations of ``threshold`` bytes or more by mmap, fixed (no dynamic raise),
     unless ``MALLOC_MMAP_THRESHOLD_`` is set; True when set (see the module docstring)."""
-    if os.environ.get("MALLOC_MMAP_THRESHOLD_"):
-        return False
-    mallopt: Any = _libc_function("mallopt")
-    if mallopt is None:
-        return False
-    mallopt.argtypes = [ctypes.c_int, ctypes.c_int]
-    mallopt.restype = ctypes.c_int
-    return mallopt(_M_MMAP_THRESHOLD, int(threshold)) == 1
+    return _mallopt(_M_MMAP_THRESHOLD, threshold, "MALLOC_MMAP_THRESHOLD_")
